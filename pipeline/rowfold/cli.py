@@ -1,0 +1,139 @@
+"""Command line: ``rowfold VERB ...`` (also ``python -m rowfold``).
+
+Verbs call :mod:`rowfold.runner` and nothing deeper. Exit statuses: 0 success, 2 invalid
+job or input (nothing computed or written), 3 written but a quality gate failed, 4 failed
+while running (no earlier result replaced). Errors are one line on stderr; ``--debug``
+adds the traceback.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import sys
+import traceback
+from collections.abc import Sequence
+from pathlib import Path
+from typing import Any
+
+from rowfold import __version__, runner
+from rowfold.cluster import Progress
+from rowfold.errors import EXIT_INVALID, EXIT_RUN_FAILED, RowfoldError
+
+
+def _parser() -> argparse.ArgumentParser:
+    parser = argparse.ArgumentParser(
+        prog="rowfold",
+        description="Out-of-core QR and least squares for tall-skinny matrices on disk.",
+    )
+    parser.add_argument("--version", action="version", version=f"rowfold {__version__}")
+    parser.add_argument("--debug", action="store_true", help="show tracebacks on errors")
+    parser.add_argument("--quiet", action="store_true", help="no progress, only errors")
+    verbs = parser.add_subparsers(dest="verb", required=True, metavar="VERB")
+    run = verbs.add_parser("run", help="run a job; write the result store and reports")
+    run.add_argument("job", type=Path)
+    run.add_argument("--set", dest="overrides", action="append", default=[], metavar="KEY=VALUE")
+    run.add_argument(
+        "--inline", action="store_true", help="run in this process without a Dask cluster"
+    )
+    check = verbs.add_parser("check", help="validate a job file and its inputs, compute nothing")
+    check.add_argument("job", type=Path)
+    check.add_argument("--set", dest="overrides", action="append", default=[], metavar="KEY=VALUE")
+    demo = verbs.add_parser("demo", help="write the demo scenario into DIR and run it")
+    demo.add_argument("dir", nargs="?", type=Path, default=Path("rowfold-demo"))
+    demo.add_argument("--rows", type=int, default=None, help="observations (default 300000)")
+    inspect = verbs.add_parser("inspect", help="describe an input file or a result store")
+    inspect.add_argument("path", type=Path)
+    return parser
+
+
+def _say(message: str) -> None:
+    print(message, flush=True)
+
+
+def _summary(outcome: runner.RunOutcome) -> str:
+    report = outcome.report
+
+    def fmt(value: Any) -> str:
+        return (
+            "n/a" if value is None else f"{value:.2e}" if isinstance(value, float) else str(value)
+        )
+
+    failed = [name for name, gate in report["gates"].items() if not gate["held"]]
+    lines = [
+        f"{report['name']}: {report['method']} on {report['rows']} x {report['cols']} "
+        f"in {report['blocks']} blocks, {report['passes_over_input']} passes over A",
+        f"  rank {report['rank']}, cond(R) {fmt(report['r_condition'])}, "
+        f"orthogonality loss {fmt(report['orthogonality_loss'])}, "
+        f"gram residual {fmt(report['gram_residual'])}",
+        f"  wrote {outcome.output}",
+    ]
+    lines += [f"  warning: {w}" for w in report.get("warnings", [])]
+    if failed:
+        lines.append(f"  quality gate failed: {', '.join(failed)} (see the report)")
+    return "\n".join(lines)
+
+
+def _run(args: argparse.Namespace, progress: Progress) -> int:
+    job = runner.load_job(args.job, tuple(args.overrides))
+    outcome = runner.run_job(job, progress, inline=args.inline)
+    _say(_summary(outcome))
+    return outcome.status
+
+
+def _check(args: argparse.Namespace) -> int:
+    job = runner.load_job(args.job, tuple(args.overrides))
+    summary = runner.check_job(job)
+    _say(
+        f"{args.job}: ok: {summary['rows']} x {summary['cols']} {summary['dtype']}, "
+        f"{summary['blocks']} blocks of {summary['rows_per_block']} rows, "
+        f"method {summary['method']}, output {summary['output']}"
+    )
+    return 0
+
+
+def _demo(args: argparse.Namespace, progress: Progress) -> int:
+    worst = 0
+    for outcome in runner.run_demo(args.dir, progress, rows=args.rows):
+        _say(_summary(outcome))
+        worst = max(worst, outcome.status)
+    return worst
+
+
+def _inspect(args: argparse.Namespace) -> int:
+    _say(json.dumps(runner.inspect_path(args.path), indent=2, default=str))
+    return 0
+
+
+def main(argv: Sequence[str] | None = None) -> int:
+    """Run the command line and return the exit status."""
+    parser = _parser()
+    try:
+        args = parser.parse_args(argv)
+    except SystemExit as exc:
+        return int(exc.code or 0) if exc.code in (0, None) else EXIT_INVALID
+    progress = Progress(stream=None if args.quiet else sys.stderr)
+    try:
+        if args.verb == "run":
+            return _run(args, progress)
+        if args.verb == "check":
+            return _check(args)
+        if args.verb == "demo":
+            return _demo(args, progress)
+        return _inspect(args)
+    except RowfoldError as exc:
+        if args.debug:
+            traceback.print_exc()
+        print(f"rowfold: error: {exc}", file=sys.stderr)
+        return exc.exit_status
+    except KeyboardInterrupt:
+        print("rowfold: interrupted; no result was replaced", file=sys.stderr)
+        return EXIT_RUN_FAILED
+    except Exception as exc:
+        if args.debug:
+            traceback.print_exc()
+        print(
+            f"rowfold: failed: {exc.__class__.__name__}: {exc} (rerun with --debug for details)",
+            file=sys.stderr,
+        )
+        return EXIT_RUN_FAILED

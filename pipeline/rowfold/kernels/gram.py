@@ -1,0 +1,57 @@
+"""Gram products, Cholesky and triangular solves for the CholeskyQR family (BLAS-3)."""
+
+from __future__ import annotations
+
+import numpy as np
+from numpy.linalg import LinAlgError
+from scipy.linalg import blas, lapack
+
+
+def block_gram(block: np.ndarray) -> np.ndarray:
+    """Return ``block^H block`` (n x n, Hermitian) by syrk/herk."""
+    n = block.shape[1]
+    if block.shape[0] == 0:
+        return np.zeros((n, n), dtype=block.dtype)
+    complex_ = np.iscomplexobj(block)
+    (rank_k,) = blas.get_blas_funcs(("herk" if complex_ else "syrk",), (block,))
+    upper = rank_k(1.0, np.asfortranarray(block), trans=2 if complex_ else 1, lower=0)
+    gram = np.triu(upper) + np.triu(upper, 1).conj().T
+    if complex_:
+        np.fill_diagonal(gram, np.real(np.diagonal(gram)))
+    return gram
+
+
+def cross_product(block: np.ndarray, other: np.ndarray) -> np.ndarray:
+    """Return ``block^H other`` (n x k)."""
+    return block.conj().T @ other.reshape(block.shape[0], -1)
+
+
+def cholesky_upper(gram: np.ndarray) -> np.ndarray:
+    """Upper Cholesky factor R with ``R^H R = gram`` (LAPACK potrf).
+
+    Raises
+    ------
+    numpy.linalg.LinAlgError
+        When the matrix is not numerically positive definite; the message gives the
+        leading minor that failed.
+    """
+    (potrf,) = lapack.get_lapack_funcs(("potrf",), (gram,))
+    factor, info = potrf(gram, lower=0, clean=1, overwrite_a=0)
+    if info > 0:
+        raise LinAlgError(f"Cholesky breakdown at leading minor {info} of {gram.shape[0]}")
+    if info < 0:  # pragma: no cover - only on illegal arguments
+        raise ValueError(f"potrf failed with info={info}")
+    return np.asarray(factor)
+
+
+def solve_right_upper(block: np.ndarray, R: np.ndarray) -> np.ndarray:
+    """Return ``block @ inv(R)`` for upper triangular R, by trsm (no inverse formed)."""
+    if block.shape[0] == 0:
+        return np.zeros_like(block, dtype=np.result_type(block, R))
+    dtype = np.result_type(block, R)
+    (trsm,) = blas.get_blas_funcs(("trsm",), (block.astype(dtype, copy=False),))
+    return np.asarray(
+        trsm(
+            1.0, R.astype(dtype, copy=False), np.asfortranarray(block, dtype=dtype), side=1, lower=0
+        )
+    )

@@ -1,0 +1,21 @@
+"""Factorization methods: one module per strategy, one shared protocol, one registry.
+
+Each method composes the pure kernels of :mod:`rowfold.kernels` over row blocks as a Dask
+graph and returns a :class:`~rowfold.methods.base.Factorization`.
+"""
+
+from rowfold.methods import cholqr2, tsqr
+from rowfold.methods.base import Engine, Factorization, Method
+
+REGISTRY: dict[str, Method] = {
+    "tsqr": tsqr.factor,
+    "cholqr2": cholqr2.factor,
+}
+
+
+def get_method(name: str) -> Method:
+    """Return the method registered under ``name`` (names are validated by the spec)."""
+    return REGISTRY[name]
+
+
+__all__ = ["REGISTRY", "Engine", "Factorization", "Method", "get_method"]

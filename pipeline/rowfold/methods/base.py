@@ -1,0 +1,77 @@
+"""The one protocol every factorization method follows.
+
+A method composes kernels over the row blocks of a :class:`~rowfold.blocks.BlockPlan`
+as a Dask graph (``dask.delayed`` with deterministic keys) and runs it through an
+:class:`Engine`. It returns a :class:`Factorization`: R with a real non-negative diagonal,
+``Q^H B`` when there are right-hand sides, and a recipe to form any block of Q from the
+same block of A. Everything downstream (solve, quality, storage) is method-agnostic.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable, Iterator, Sequence
+from dataclasses import dataclass, field
+from typing import Any, Protocol
+
+import numpy as np
+
+from rowfold.blocks import BlockPlan
+from rowfold.spec import MethodSpec
+
+
+class Engine(Protocol):
+    """Runs Dask graphs; the cluster module provides the implementations."""
+
+    def compute(self, tasks: Sequence[Any], label: str) -> list[Any]:
+        """Compute delayed objects and return their values, showing progress."""
+        ...
+
+    def persist(self, tasks: Sequence[Any]) -> list[Any]:
+        """Compute delayed objects but keep the values where they are (workers)."""
+        ...
+
+    def stream(self, tasks: Sequence[Any], label: str) -> Iterator[Any]:
+        """Yield the values of delayed objects in order, holding only a few at a time."""
+        ...
+
+
+# A function of (block of A, recipe) -> block of Q; module-level so it pickles.
+QKernel = Callable[[np.ndarray, Any], np.ndarray]
+
+
+@dataclass(frozen=True)
+class Factorization:
+    """What every method returns.
+
+    Attributes
+    ----------
+    R : ndarray (n, n)
+        Upper triangular, diagonal real and >= 0.
+    qhb : ndarray (n, k) or None
+        ``Q^H B`` for the right-hand sides.
+    q_kernel : QKernel
+        Forms the block of Q from the block of A and that block's recipe.
+    q_recipes : list
+        One recipe per row block (plain values or delayed objects).
+    passes : int
+        Passes over A that the factorization made.
+    details : dict
+        Method-specific figures for the report (e.g. a condition estimate).
+    """
+
+    R: np.ndarray
+    qhb: np.ndarray | None
+    q_kernel: QKernel
+    q_recipes: list[Any]
+    passes: int
+    details: dict[str, Any] = field(default_factory=dict)
+
+
+class Method(Protocol):
+    """A factorization strategy."""
+
+    def __call__(
+        self, plan: BlockPlan, spec: MethodSpec, engine: Engine, want_q: bool
+    ) -> Factorization:
+        """Factor the plan's matrix; ``want_q`` says whether Q blocks will be formed."""
+        ...

@@ -1,0 +1,96 @@
+"""Householder TSQR: local QR per row block, then a reduction tree of stacked R factors.
+
+Pass 1 reads every block once and carries the right-hand sides through the same
+reflectors, so ``Q^H B`` comes from the same pass. When Q is wanted, the tree keeps each
+node's small Q factor (one n x n slice per child) on the workers; a later pass forms the
+block of Q as ``Q_local @ S_i``, where ``S_i`` is the product of the node slices on the
+path from the root to leaf i (the tree's factors applied back down).
+"""
+
+from __future__ import annotations
+
+from typing import Any
+
+import numpy as np
+
+from rowfold.blocks import BlockPlan, load_block
+from rowfold.kernels import householder_q, householder_r, positive_diagonal, stacked_r
+from rowfold.methods._graph import task, tree_levels
+from rowfold.methods.base import Engine, Factorization
+from rowfold.spec import MethodSpec
+
+
+def leaf_factor(plan: BlockPlan, index: int) -> tuple[np.ndarray, np.ndarray | None]:
+    """Read one block and return its (R, Q^H B), zero-padded to n rows."""
+    block, rhs = load_block(plan, index)
+    return householder_r(block, rhs)
+
+
+def node_factor(keep_q: bool, *children: tuple[Any, ...]) -> tuple[Any, Any, Any]:
+    """Reduce children's (R, C[, Q]) to this node's (R, C, Q or None)."""
+    return stacked_r([(child[0], child[1]) for child in children], keep_q)
+
+
+def child_transform(node: tuple[Any, Any, Any], position: int, parent: np.ndarray) -> np.ndarray:
+    """Return the child's slice of the node's Q times the parent's transform."""
+    q = node[2]
+    n = q.shape[1]
+    return np.asarray(q[position * n : (position + 1) * n] @ parent)
+
+
+def q_block(block: np.ndarray, transform: np.ndarray) -> np.ndarray:
+    """Form a block of the thin Q from the block of A and its tree transform."""
+    return householder_q(block) @ transform
+
+
+def fan_in_of(tree: str | int, leaves: int) -> int:
+    """Children per node for a tree name (flat, binary) or a fan-in k."""
+    if tree == "flat":
+        return max(2, leaves)
+    if tree == "binary":
+        return 2
+    return int(tree)
+
+
+def factor(plan: BlockPlan, spec: MethodSpec, engine: Engine, want_q: bool) -> Factorization:
+    """Run Householder TSQR over the plan's row blocks."""
+    leaves = [task(leaf_factor, plan, i) for i in range(plan.blocks)]
+    fan_in = fan_in_of(spec.tree, len(leaves))
+    levels = tree_levels(leaves, fan_in, lambda kids: task(node_factor, want_q, *kids))
+    if want_q:
+        levels = [levels[0], *_persist_levels(engine, levels[1:])]
+    (root,) = engine.compute([levels[-1][0]], "tsqr: factor row blocks")
+    R, signs = positive_diagonal(root[0])
+    qhb = None if root[1] is None else np.conj(signs)[:, None] * root[1]
+    recipes = _leaf_transforms(levels, fan_in, np.diag(signs)) if want_q else []
+    depth = len(levels) - 1
+    return Factorization(
+        R=R,
+        qhb=qhb,
+        q_kernel=q_block,
+        q_recipes=recipes,
+        passes=1,
+        details={"tree": spec.tree, "tree_depth": depth},
+    )
+
+
+def _persist_levels(engine: Engine, levels: list[list[Any]]) -> list[list[Any]]:
+    """Persist every internal node so its Q factor stays on the workers."""
+    flat = [node for level in levels for node in level]
+    kept = iter(engine.persist(flat))
+    return [[next(kept) for _ in level] for level in levels]
+
+
+def _leaf_transforms(levels: list[list[Any]], fan_in: int, root_transform: np.ndarray) -> list[Any]:
+    """Walk the tree top-down and return the transform task of every leaf."""
+    transforms: list[Any] = [root_transform]
+    for depth in range(len(levels) - 1, 0, -1):
+        below: list[Any] = []
+        for index, node in enumerate(levels[depth]):
+            children = len(levels[depth - 1][index * fan_in : (index + 1) * fan_in])
+            below.extend(
+                task(child_transform, node, position, transforms[index])
+                for position in range(children)
+            )
+        transforms = below
+    return transforms

@@ -1,0 +1,498 @@
+"""Parse a YAML job file into frozen, validated objects before any compute starts.
+
+Every error names the file, the key (as a dotted path) and the line it sits on, says what
+was expected and what was found, and is raised as :class:`rowfold.errors.JobError`.
+Relative paths resolve against the folder of the job file.
+"""
+
+from __future__ import annotations
+
+import json
+from collections.abc import Callable, Mapping
+from dataclasses import asdict, dataclass, field
+from pathlib import Path
+from types import MappingProxyType
+from typing import Any
+
+import yaml
+
+from rowfold.errors import JobError
+
+METHOD_NAMES = ("tsqr", "cholqr2")
+TSQR_TREES = ("flat", "binary")
+
+
+@dataclass(frozen=True, slots=True)
+class InputSpec:
+    """Where the matrix and its companions live.
+
+    Attributes
+    ----------
+    path : Path
+        HDF5 file (``.h5``/``.hdf5``) or Zarr store (``.zarr``), absolute.
+    matrix : str
+        Dataset (HDF5) or array path (Zarr) of the m x n matrix A.
+    rhs : str or None
+        Dataset of the right-hand sides, 1-D (m) or 2-D (m x k).
+    weights : str or None
+        Dataset of per-row weights (reserved; rejected until weighted solves exist).
+    rows_per_block : int or None
+        Rows per block; None means choose automatically.
+    """
+
+    path: Path
+    matrix: str
+    rhs: str | None = None
+    weights: str | None = None
+    rows_per_block: int | None = None
+
+
+@dataclass(frozen=True, slots=True)
+class MethodSpec:
+    """The factorization strategy and its options.
+
+    Attributes
+    ----------
+    name : str
+        One of :data:`METHOD_NAMES`.
+    tree : str or int
+        TSQR reduction tree: ``"flat"``, ``"binary"`` or a fan-in k >= 2.
+    """
+
+    name: str = "tsqr"
+    tree: str | int = "binary"
+
+
+@dataclass(frozen=True, slots=True)
+class OutputSpec:
+    """Where and what to write.
+
+    Attributes
+    ----------
+    path : Path
+        Result store, ``.h5``/``.hdf5`` or ``.zarr``, absolute.
+    q : bool
+        Also write the thin Q (m x n).
+    overwrite : bool
+        Replace an existing result.
+    """
+
+    path: Path
+    q: bool = False
+    overwrite: bool = False
+
+
+@dataclass(frozen=True, slots=True)
+class SolveSpec:
+    """Least-squares options.
+
+    Attributes
+    ----------
+    refine : bool
+        Iterative refinement (reserved; rejected until it exists).
+    rank_tolerance : float or None
+        Relative cut-off on the singular values of the column-equilibrated R;
+        None means ``10 * n * eps``.
+    """
+
+    refine: bool = False
+    rank_tolerance: float | None = None
+
+
+@dataclass(frozen=True, slots=True)
+class GateSpec:
+    """Quality gates; a gate set to None is not checked.
+
+    Attributes
+    ----------
+    orthogonality : float or None
+        Largest allowed ``||I - Q^H Q||_F``.
+    residual : float or None
+        Largest allowed ``||A - QR||_F / ||A||_F``.
+    gram : float or None
+        Largest allowed ``||A^H A - R^H R||_F / ||A||_F^2``.
+    """
+
+    orthogonality: float | None = None
+    residual: float | None = None
+    gram: float | None = None
+
+
+@dataclass(frozen=True, slots=True)
+class ClusterSpec:
+    """Where the Dask work runs.
+
+    Attributes
+    ----------
+    address : str or None
+        None for the embedded local cluster, else a scheduler address ``tcp://host:port``.
+    workers : int or None
+        Local workers; None means one per core.
+    threads_per_worker : int or None
+        Threads per local worker; None means cores // workers.
+    processes : bool
+        Local workers as processes (True) or threads of this process (False).
+    """
+
+    address: str | None = None
+    workers: int | None = None
+    threads_per_worker: int | None = None
+    processes: bool = True
+
+
+@dataclass(frozen=True, slots=True)
+class Job:
+    """A whole validated job.
+
+    Attributes
+    ----------
+    name : str
+        Free text used in reports.
+    source : Path
+        The job file it came from.
+    input, method, output, solve, gates, cluster
+        The sections, each validated.
+    resolved : Mapping
+        The job as plain data after overrides and path resolution (goes into the store).
+    """
+
+    name: str
+    source: Path
+    input: InputSpec
+    method: MethodSpec
+    output: OutputSpec
+    solve: SolveSpec = field(default_factory=SolveSpec)
+    gates: GateSpec = field(default_factory=GateSpec)
+    cluster: ClusterSpec = field(default_factory=ClusterSpec)
+    resolved: Mapping[str, Any] = field(default_factory=lambda: MappingProxyType({}))
+
+    def resolved_json(self) -> str:
+        """Return the resolved job as a JSON string."""
+        return json.dumps(self.resolved, sort_keys=True, default=str)
+
+
+# ---------------------------------------------------------------- loading with line numbers
+
+
+@dataclass(slots=True)
+class _Doc:
+    """Plain data parsed from YAML plus the line of every key path."""
+
+    file: Path
+    data: dict[str, Any]
+    lines: dict[tuple[str, ...], int]
+
+    def where(self, keypath: tuple[str, ...]) -> str:
+        """Describe where a key sits, e.g. ``job.yaml line 4``."""
+        for cut in range(len(keypath), 0, -1):
+            line = self.lines.get(keypath[:cut])
+            if line is not None:
+                return f"{self.file.name} line {line}" if line > 0 else "--set"
+        return self.file.name
+
+    def fail(self, keypath: tuple[str, ...], message: str) -> JobError:
+        """Build a JobError for a key path."""
+        key = ".".join(keypath) if keypath else "(top level)"
+        return JobError(f"{self.where(keypath)}: key '{key}': {message}")
+
+
+def _to_plain(
+    node: yaml.Node, path: tuple[str, ...], lines: dict[tuple[str, ...], int], file: Path
+) -> Any:
+    """Convert a composed YAML node into plain Python data, recording key lines."""
+    if isinstance(node, yaml.MappingNode):
+        out: dict[str, Any] = {}
+        for key_node, value_node in node.value:
+            key = str(yaml.safe_load(yaml.serialize(key_node)))
+            sub = (*path, key)
+            if key in out:
+                line = key_node.start_mark.line + 1
+                raise JobError(f"{file.name} line {line}: key '{'.'.join(sub)}' appears twice")
+            lines[sub] = key_node.start_mark.line + 1
+            out[key] = _to_plain(value_node, sub, lines, file)
+        return out
+    if isinstance(node, yaml.SequenceNode):
+        return [_to_plain(item, path, lines, file) for item in node.value]
+    return yaml.safe_load(yaml.serialize(node))
+
+
+def _read_yaml(file: Path) -> _Doc:
+    """Read a job file into a :class:`_Doc`, turning YAML errors into JobError."""
+    try:
+        text = file.read_text(encoding="utf-8")
+    except FileNotFoundError:
+        raise JobError(f"{file}: job file not found") from None
+    except (OSError, UnicodeDecodeError) as exc:
+        raise JobError(f"{file}: cannot read job file ({exc.__class__.__name__}: {exc})") from None
+    try:
+        root = yaml.compose(text, Loader=yaml.SafeLoader)
+    except yaml.MarkedYAMLError as exc:
+        mark = exc.problem_mark
+        where = f"line {mark.line + 1} column {mark.column + 1}" if mark else "somewhere"
+        raise JobError(f"{file.name} {where}: malformed YAML: {exc.problem}") from None
+    except yaml.YAMLError as exc:
+        raise JobError(f"{file.name}: malformed YAML: {exc}") from None
+    lines: dict[tuple[str, ...], int] = {}
+    data = {} if root is None else _to_plain(root, (), lines, file)
+    if not isinstance(data, dict):
+        raise JobError(f"{file.name} line 1: a job file must be a mapping of sections")
+    return _Doc(file=file, data=data, lines=lines)
+
+
+def _apply_override(doc: _Doc, override: str) -> None:
+    """Apply one ``key.path=value`` override to the document."""
+    key, sep, raw = override.partition("=")
+    keypath = tuple(part for part in key.strip().split(".") if part)
+    if not sep or not keypath:
+        raise JobError(f"--set {override!r}: expected key.path=value, e.g. method.name=cholqr2")
+    try:
+        value = yaml.safe_load(raw) if raw.strip() else None
+    except yaml.YAMLError:
+        value = raw
+    node: dict[str, Any] = doc.data
+    for depth, part in enumerate(keypath[:-1]):
+        child = node.setdefault(part, {})
+        if not isinstance(child, dict):
+            raise JobError(
+                f"--set {override!r}: '{'.'.join(keypath[: depth + 1])}' is not a section"
+            )
+        node = child
+    node[keypath[-1]] = value
+    doc.lines[keypath] = 0
+
+
+# ---------------------------------------------------------------- typed field readers
+
+
+class _Section:
+    """Typed access to one section; reports unknown keys after reading."""
+
+    def __init__(self, doc: _Doc, keypath: tuple[str, ...], allowed: tuple[str, ...]) -> None:
+        self.doc = doc
+        self.keypath = keypath
+        raw = doc.data.get(keypath[0], {}) if keypath else doc.data
+        if raw is None:
+            raw = {}
+        if not isinstance(raw, dict):
+            raise doc.fail(keypath, f"expected a mapping of keys, found {_kind(raw)}")
+        self.raw: dict[str, Any] = raw
+        for key in raw:
+            if key not in allowed:
+                hint = ", ".join(allowed)
+                raise doc.fail((*keypath, key), f"unknown key; expected one of: {hint}")
+
+    def get(self, key: str, parse: Callable[[Any], Any], default: Any = None) -> Any:
+        """Read ``key`` with ``parse``; missing or null gives ``default``."""
+        value = self.raw.get(key)
+        if value is None:
+            return default
+        try:
+            return parse(value)
+        except (TypeError, ValueError) as exc:
+            raise self.doc.fail((*self.keypath, key), f"{exc}, found {value!r}") from None
+
+    def require(self, key: str, parse: Callable[[Any], Any]) -> Any:
+        """Read a key that must be present."""
+        if self.raw.get(key) is None:
+            raise self.doc.fail((*self.keypath, key), "required key is missing")
+        return self.get(key, parse)
+
+
+def _kind(value: Any) -> str:
+    """Name the YAML kind of a plain value for error messages."""
+    return {dict: "a mapping", list: "a list", str: "text", bool: "true/false"}.get(
+        type(value), type(value).__name__
+    )
+
+
+def _text(value: Any) -> str:
+    if not isinstance(value, str) or not value.strip():
+        raise TypeError("expected non-empty text")
+    return value
+
+
+def _flag(value: Any) -> bool:
+    if not isinstance(value, bool):
+        raise TypeError("expected true or false")
+    return value
+
+
+def _count(value: Any) -> int:
+    if isinstance(value, bool) or not isinstance(value, int) or value < 1:
+        raise TypeError("expected a whole number >= 1")
+    return value
+
+
+def _auto_or_count(value: Any) -> int | None:
+    if value == "auto":
+        return None
+    try:
+        return _count(value)
+    except TypeError:
+        raise TypeError("expected 'auto' or a whole number >= 1") from None
+
+
+def _positive(value: Any) -> float:
+    if isinstance(value, bool) or not isinstance(value, int | float) or not value > 0:
+        raise TypeError("expected a positive number")
+    return float(value)
+
+
+def _one_of(choices: tuple[str, ...]) -> Callable[[Any], str]:
+    def parse(value: Any) -> str:
+        if value not in choices:
+            raise ValueError(f"expected one of {', '.join(choices)}")
+        return str(value)
+
+    return parse
+
+
+def _tree(value: Any) -> str | int:
+    if value in TSQR_TREES:
+        return str(value)
+    if isinstance(value, int) and not isinstance(value, bool) and value >= 2:
+        return value
+    raise ValueError("expected flat, binary or a fan-in k >= 2")
+
+
+def _suffixed_path(suffixes: tuple[str, ...], base: Path) -> Callable[[Any], Path]:
+    def parse(value: Any) -> Path:
+        path = Path(_text(value)).expanduser()
+        if path.suffix.lower() not in suffixes:
+            raise ValueError(f"expected a path ending in {' or '.join(suffixes)}")
+        return path if path.is_absolute() else (base / path).resolve()
+
+    return parse
+
+
+DATA_SUFFIXES = (".h5", ".hdf5", ".zarr")
+
+
+def _parse_input(doc: _Doc, base: Path) -> InputSpec:
+    section = _Section(doc, ("input",), ("path", "matrix", "rhs", "weights", "rows_per_block"))
+    if section.get("weights", _text) is not None:
+        raise doc.fail(("input", "weights"), "weighted least squares is not available yet")
+    return InputSpec(
+        path=section.require("path", _suffixed_path(DATA_SUFFIXES, base)),
+        matrix=section.require("matrix", _text),
+        rhs=section.get("rhs", _text),
+        rows_per_block=section.get("rows_per_block", _auto_or_count),
+    )
+
+
+def _parse_method(doc: _Doc) -> MethodSpec:
+    section = _Section(doc, ("method",), ("name", "tree"))
+    name = section.get("name", _one_of(METHOD_NAMES), "tsqr")
+    tree = section.get("tree", _tree, "binary")
+    if name != "tsqr" and "tree" in section.raw:
+        raise doc.fail(("method", "tree"), f"only method tsqr takes a tree, not {name}")
+    return MethodSpec(name=name, tree=tree)
+
+
+def _parse_output(doc: _Doc, base: Path) -> OutputSpec:
+    section = _Section(doc, ("output",), ("path", "q", "overwrite"))
+    return OutputSpec(
+        path=section.require("path", _suffixed_path(DATA_SUFFIXES, base)),
+        q=section.get("q", _flag, False),
+        overwrite=section.get("overwrite", _flag, False),
+    )
+
+
+def _parse_solve(doc: _Doc) -> SolveSpec:
+    section = _Section(doc, ("solve",), ("refine", "rank_tolerance"))
+    if section.get("refine", _flag, False):
+        raise doc.fail(("solve", "refine"), "iterative refinement is not available yet")
+    return SolveSpec(rank_tolerance=section.get("rank_tolerance", _positive))
+
+
+def _parse_gates(doc: _Doc) -> GateSpec:
+    section = _Section(doc, ("gates",), ("orthogonality", "residual", "gram"))
+    return GateSpec(
+        orthogonality=section.get("orthogonality", _positive),
+        residual=section.get("residual", _positive),
+        gram=section.get("gram", _positive),
+    )
+
+
+def _parse_cluster(doc: _Doc) -> ClusterSpec:
+    section = _Section(doc, ("cluster",), ("address", "workers", "threads_per_worker", "processes"))
+    return ClusterSpec(
+        address=section.get("address", _text),
+        workers=section.get("workers", _auto_or_count),
+        threads_per_worker=section.get("threads_per_worker", _auto_or_count),
+        processes=section.get("processes", _flag, True),
+    )
+
+
+SECTIONS = ("name", "input", "method", "output", "solve", "gates", "cluster")
+
+
+def load_job(path: str | Path, overrides: tuple[str, ...] = ()) -> Job:
+    """Read, override and validate a job file.
+
+    Parameters
+    ----------
+    path : str or Path
+        The YAML job file.
+    overrides : tuple of str
+        ``key.path=value`` strings from ``--set``, applied in order.
+
+    Returns
+    -------
+    Job
+        The frozen, validated job.
+
+    Raises
+    ------
+    JobError
+        On malformed YAML, unknown keys, wrong types or missing keys.
+    """
+    file = Path(path).expanduser().resolve()
+    doc = _read_yaml(file)
+    for override in overrides:
+        _apply_override(doc, override)
+    _Section(doc, (), SECTIONS)
+    for required in ("input", "output"):
+        if required not in doc.data:
+            raise doc.fail((required,), "required section is missing")
+    base = file.parent
+    name = doc.data.get("name", file.stem)
+    if not isinstance(name, str | int | float):
+        raise doc.fail(("name",), f"expected text, found {_kind(name)}")
+    job = Job(
+        name=str(name),
+        source=file,
+        input=_parse_input(doc, base),
+        method=_parse_method(doc),
+        output=_parse_output(doc, base),
+        solve=_parse_solve(doc),
+        gates=_parse_gates(doc),
+        cluster=_parse_cluster(doc),
+    )
+    return _with_resolved(job)
+
+
+def _with_resolved(job: Job) -> Job:
+    """Attach the plain-data view of the job (paths as strings)."""
+    plain = {
+        "name": job.name,
+        "source": str(job.source),
+        "input": asdict(job.input),
+        "method": asdict(job.method),
+        "output": asdict(job.output),
+        "solve": asdict(job.solve),
+        "gates": asdict(job.gates),
+        "cluster": asdict(job.cluster),
+    }
+    resolved = json.loads(json.dumps(plain, default=str))
+    return Job(
+        name=job.name,
+        source=job.source,
+        input=job.input,
+        method=job.method,
+        output=job.output,
+        solve=job.solve,
+        gates=job.gates,
+        cluster=job.cluster,
+        resolved=MappingProxyType(resolved),
+    )
