@@ -231,7 +231,7 @@ def open_engine(spec: ClusterSpec, progress: Progress) -> Iterator[DistributedEn
             n_workers=workers,
             threads_per_worker=threads,
             processes=spec.processes,
-            dashboard_address=None,
+            dashboard_address=":0",
             silence_logs=40,
         ) as cluster,
         Client(cluster) as client,

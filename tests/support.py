@@ -1,0 +1,67 @@
+"""Test helpers: matrices with prescribed singular values, and small jobs on disk."""
+
+from __future__ import annotations
+
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import yaml
+
+from rowfold.storage import write_arrays
+
+U = 2.0**-53  # unit roundoff of float64 (CHECKS.md: u = 2^-53)
+
+
+def prescribed(
+    m: int, n: int, condition: float, seed: int = 0, dtype: Any = np.float64
+) -> np.ndarray:
+    """Return A = U diag(s) V^H with random orthonormal U (m x n), V (n x n).
+
+    The singular values are spaced geometrically from 1 down to 1/condition
+    (the usual test construction, e.g. CHECKS.md "Matrices with prescribed singular values").
+    """
+    rng = np.random.default_rng(seed)
+    complex_ = np.dtype(dtype).kind == "c"
+
+    def orthonormal(rows: int, cols: int) -> np.ndarray:
+        raw = rng.standard_normal((rows, cols))
+        if complex_:
+            raw = raw + 1j * rng.standard_normal((rows, cols))
+        q, _ = np.linalg.qr(raw)
+        return q
+
+    s = np.geomspace(1.0, 1.0 / condition, n)
+    return ((orthonormal(m, n) * s) @ orthonormal(n, n).conj().T).astype(dtype)
+
+
+def write_job(
+    folder: Path,
+    matrix: np.ndarray,
+    rhs: np.ndarray | None = None,
+    suffix: str = ".h5",
+    out_suffix: str = ".h5",
+    **sections: dict[str, Any],
+) -> Path:
+    """Write ``matrix`` (and ``rhs``) to an input file and a job file; return the job path.
+
+    Keyword arguments are job sections merged over the defaults, e.g.
+    ``method={"name": "cholqr2"}`` or ``input={"rows_per_block": 7}``.
+    """
+    arrays = {"model/A": matrix}
+    if rhs is not None:
+        arrays["model/b"] = rhs
+    write_arrays(folder / f"input{suffix}", arrays, chunk_rows=64)
+    job: dict[str, Any] = {
+        "name": "test-job",
+        "input": {"path": f"input{suffix}", "matrix": "model/A"},
+        "method": {"name": "tsqr"},
+        "output": {"path": f"out{out_suffix}", "overwrite": True},
+    }
+    if rhs is not None:
+        job["input"]["rhs"] = "model/b"
+    for key, values in sections.items():
+        job.setdefault(key, {}).update(values)
+    path = folder / "job.yaml"
+    path.write_text(yaml.safe_dump(job), encoding="utf-8")
+    return path

@@ -1,0 +1,234 @@
+"""Invariants of the thin QR computed by rowfold, against LAPACK and published bounds.
+
+Every check is an invariant (A = QR, Q^H Q = I, R upper triangular with a real
+non-negative diagonal) held to a bound in units of u = 2^-53, on matrices with
+prescribed singular values. Sources:
+
+- Householder QR and TSQR with any tree: loss of orthogonality O(u) and backward error
+  O(u) (Higham, Accuracy and Stability of Numerical Algorithms, 2nd ed. 2002, ch. 19;
+  Demmel, Grigori, Hoemmen, Langou, SIAM J. Sci. Comput. 34(1), 2012). The worst-case
+  constants grow like m*n; we hold the results to 10*n*u, which is common practice for
+  well-implemented Householder QR, not a published constant.
+- CholeskyQR2: ||Q^H Q - I||_F <= 6 (m n u + n (n+1) u) for condition below about 1e8
+  (Yamamoto, Nakatsukasa, Yanagisawa, Fukaya, ETNA 44, 2015; constant from memory per
+  CHECKS.md, so used with that margin only).
+- Uniqueness: with diag(R) > 0 the thin QR is unique and R is the Cholesky factor of
+  A^H A (Trefethen & Bau 1997, Thm 7.2), so R is compared with numpy's LAPACK R after
+  normalising its signs; first-order perturbation of R is bounded by a multiple of
+  kappa * u (Higham 2002, Thm 19.4 with the QR perturbation bounds of ch. 19).
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import h5py
+import numpy as np
+import pytest
+import scipy.linalg
+
+from rowfold import runner, storage
+from rowfold.errors import BreakdownError
+
+from support import U, prescribed, write_job
+
+
+def lapack_r(A: np.ndarray) -> np.ndarray:
+    """numpy/LAPACK R with its signs normalised to a non-negative real diagonal."""
+    R = np.linalg.qr(A, mode="r")
+    d = np.diagonal(R)
+    s = np.where(np.abs(d) > 0, d / np.where(np.abs(d) > 0, np.abs(d), 1), 1)
+    return np.conj(s)[:, None] * R
+
+
+def run_inline(job_path: Path, *overrides: str) -> runner.RunOutcome:
+    return runner.run_job(runner.load_job(job_path, overrides), inline=True)
+
+
+def read_store(path: Path) -> dict[str, np.ndarray]:
+    out = storage.read_result(path)
+    if path.suffix == ".h5":
+        with h5py.File(path, "r") as handle:
+            if "Q" in handle:
+                out["Q"] = handle["Q"][...]
+    else:
+        import zarr
+
+        group = zarr.open_group(str(path), mode="r")
+        if "Q" in group:
+            out["Q"] = group["Q"][...]
+    return out
+
+
+def assert_thin_qr(A: np.ndarray, Q: np.ndarray, R: np.ndarray, limit: float) -> None:
+    """A = QR, Q^H Q = I, R upper triangular with a real non-negative diagonal."""
+    n = A.shape[1]
+    assert np.array_equal(R, np.triu(R)), "R is not upper triangular"
+    diag = np.diagonal(R)
+    assert np.all(np.imag(diag) == 0) and np.all(np.real(diag) >= 0), "diag(R) not real >= 0"
+    loo = np.linalg.norm(np.eye(n) - Q.conj().T @ Q)
+    residual = np.linalg.norm(A - Q @ R) / np.linalg.norm(A)
+    assert loo <= limit, f"loss of orthogonality {loo:.2e} > {limit:.2e}"
+    assert residual <= limit, f"factorization residual {residual:.2e} > {limit:.2e}"
+
+
+# Shapes and block partitions; each row says what it exercises.
+PARTITIONS = [
+    pytest.param(400, 12, None, id="single-block-auto"),
+    pytest.param(400, 12, 400, id="one-block-exact"),
+    pytest.param(401, 12, 50, id="ragged-last-block"),
+    pytest.param(390, 12, 64, id="blocks-do-not-divide-m"),
+    pytest.param(300, 12, 7, id="blocks-shorter-than-n"),
+    pytest.param(200, 40, 41, id="wide-ish-blocks"),
+]
+
+
+@pytest.mark.parametrize("method", ["tsqr", "cholqr2"])
+@pytest.mark.parametrize(("m", "n", "rows_per_block"), PARTITIONS)
+def test_thin_qr_invariants(
+    job_folder: Path, method: str, m: int, n: int, rows_per_block: int | None
+) -> None:
+    A = prescribed(m, n, 1e6, seed=m + n)
+    job = write_job(
+        job_folder,
+        A,
+        input={"rows_per_block": rows_per_block or "auto"},
+        method={"name": method},
+        output={"q": True},
+    )
+    outcome = run_inline(job)
+    got = read_store(outcome.output)
+    # Householder/TSQR: 10 n u (see module docstring); CholeskyQR2: 6 (mnu + n(n+1)u).
+    limit = 10 * n * U if method == "tsqr" else 6 * (m * n * U + n * (n + 1) * U)
+    assert_thin_qr(A, got["Q"], got["R"], limit)
+    assert np.linalg.norm(got["R"] - lapack_r(A)) <= 100 * n * 1e6 * U * np.linalg.norm(A)
+    report = outcome.report
+    assert report["orthogonality_loss"] <= limit
+    assert report["factorization_residual"] <= limit
+
+
+@pytest.mark.parametrize("condition", [1e2, 1e6, 1e10, 1e12])
+def test_tsqr_orthogonality_is_independent_of_condition(job_folder: Path, condition: float) -> None:
+    """TSQR keeps Q orthogonal to O(u) at any condition (Demmel et al. 2012)."""
+    A = prescribed(600, 16, condition, seed=3)
+    job = write_job(job_folder, A, input={"rows_per_block": 100}, output={"q": True})
+    got = read_store(run_inline(job).output)
+    assert_thin_qr(A, got["Q"], got["R"], 10 * 16 * U)
+
+
+@pytest.mark.parametrize("tree", ["flat", "binary", 3])
+def test_trees_give_the_same_r(job_folder: Path, tree: str | int) -> None:
+    """Any reduction tree gives the unique R (Trefethen & Bau Thm 7.2) to O(u)."""
+    A = prescribed(700, 10, 1e4, seed=5)
+    job = write_job(job_folder, A, input={"rows_per_block": 60}, method={"tree": tree})
+    R = read_store(run_inline(job).output)["R"]
+    assert np.linalg.norm(R - lapack_r(A)) <= 100 * 10 * 1e4 * U * np.linalg.norm(A)
+
+
+@pytest.mark.parametrize("method", ["tsqr", "cholqr2"])
+@pytest.mark.parametrize("k", [None, 3])
+def test_solution_matches_lapack_lstsq(job_folder: Path, method: str, k: int | None) -> None:
+    """x agrees with scipy's LAPACK least squares to a multiple of kappa u."""
+    rng = np.random.default_rng(11)
+    A = prescribed(500, 8, 1e3, seed=7)
+    b = rng.standard_normal(500) if k is None else rng.standard_normal((500, k))
+    job = write_job(job_folder, A, b, input={"rows_per_block": 90}, method={"name": method})
+    got = read_store(run_inline(job).output)
+    expected = scipy.linalg.lstsq(A, b)[0]
+    assert got["x"].shape == expected.shape
+    scale = np.linalg.norm(expected)
+    assert np.linalg.norm(got["x"] - expected) <= 1e3 * 1e3 * U * scale
+    assert np.linalg.norm(got["qhb"]) > 0
+
+
+@pytest.mark.parametrize("method", ["tsqr", "cholqr2"])
+def test_complex_input_gives_unitary_q(job_folder: Path, method: str) -> None:
+    """Complex A: Q unitary, conjugate transposes throughout, diag(R) real and >= 0."""
+    A = prescribed(300, 6, 1e3, seed=2, dtype=np.complex128)
+    job = write_job(
+        job_folder, A, input={"rows_per_block": 70}, method={"name": method}, output={"q": True}
+    )
+    got = read_store(run_inline(job).output)
+    limit = 10 * 6 * U if method == "tsqr" else 6 * (300 * 6 * U + 6 * 7 * U)
+    assert_thin_qr(A, got["Q"], got["R"], limit)
+
+
+def test_float32_input_is_accumulated_in_float64(job_folder: Path) -> None:
+    A = prescribed(300, 5, 10.0, seed=4).astype(np.float32)
+    job = write_job(job_folder, A, output={"q": True})
+    got = read_store(run_inline(job).output)
+    assert got["R"].dtype == np.float64
+    assert_thin_qr(A.astype(np.float64), got["Q"], got["R"], 10 * 5 * U)
+
+
+@pytest.mark.parametrize("condition", [1e10, 1e12])
+def test_cholqr2_refuses_beyond_its_range(job_folder: Path, condition: float) -> None:
+    """CholeskyQR2 is reliable only below condition ~1e8 (ETNA 44, 2015): it must refuse."""
+    A = prescribed(400, 10, condition, seed=8)
+    job = write_job(job_folder, A, method={"name": "cholqr2"}, output={"q": True})
+    with pytest.raises(BreakdownError, match="tsqr"):
+        run_inline(job)
+    assert not (job_folder / "out.h5").exists()
+
+
+def lauchli(n: int, mu: float) -> np.ndarray:
+    """Läuchli matrix: ones in the first row, mu on the diagonal below it (Läuchli 1961)."""
+    return np.vstack([np.ones((1, n)), mu * np.eye(n)])
+
+
+def test_lauchli_cholqr2_refuses_and_tsqr_holds(job_folder: Path) -> None:
+    """Björck 1996 / CHECKS.md: at mu = 1e-8 CholeskyQR breaks down, Householder keeps O(u)."""
+    A = lauchli(3, 1e-8)
+    job = write_job(job_folder, A, method={"name": "cholqr2"}, output={"q": True})
+    with pytest.raises(BreakdownError):
+        run_inline(job)
+    job = write_job(job_folder, A, method={"name": "tsqr"}, output={"q": True})
+    got = read_store(run_inline(job).output)
+    assert_thin_qr(A, got["Q"], got["R"], 10 * 3 * U)
+
+
+def test_zarr_input_and_output(job_folder: Path) -> None:
+    A = prescribed(250, 7, 1e3, seed=9)
+    b = np.arange(250.0)
+    job = write_job(
+        job_folder,
+        A,
+        b,
+        suffix=".zarr",
+        out_suffix=".zarr",
+        input={"rows_per_block": 40},
+        output={"q": True},
+    )
+    got = read_store(run_inline(job).output)
+    assert_thin_qr(A, got["Q"], got["R"], 10 * 7 * U)
+    assert np.allclose(got["x"], scipy.linalg.lstsq(A, b)[0], rtol=1e-9, atol=0)
+
+
+def test_distributed_engine_matches_inline(job_folder: Path) -> None:
+    """The same job on the embedded Dask cluster gives the same R as in-line."""
+    A = prescribed(800, 9, 1e5, seed=12)
+    job = write_job(
+        job_folder,
+        A,
+        input={"rows_per_block": 100},
+        cluster={"processes": False, "workers": 2, "threads_per_worker": 1},
+    )
+    on_cluster = runner.run_job(runner.load_job(job))
+    R_cluster = read_store(on_cluster.output)["R"]
+    R_inline = read_store(run_inline(job).output)["R"]
+    assert np.linalg.norm(R_cluster - R_inline) <= 10 * 9 * U * np.linalg.norm(A)
+    assert on_cluster.report["peak_memory_bytes"] > 0
+
+
+def test_rank_deficient_gives_minimum_norm_solution(job_folder: Path) -> None:
+    """An exactly dependent column: rank n-1, x equals numpy's pseudo-inverse solution."""
+    rng = np.random.default_rng(1)
+    A = rng.standard_normal((200, 5))
+    A[:, 4] = A[:, 0] - A[:, 1]
+    b = rng.standard_normal(200)
+    job = write_job(job_folder, A, b, input={"rows_per_block": 30})
+    outcome = run_inline(job)
+    assert outcome.report["rank"] == 4
+    assert set(outcome.report["rank_deficient_columns"]) == {0, 1, 4}
+    x = read_store(outcome.output)["x"]
+    assert np.allclose(x, np.linalg.pinv(A) @ b, rtol=1e-8, atol=1e-10)
