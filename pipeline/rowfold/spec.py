@@ -414,8 +414,43 @@ def _parse_gates(doc: _Doc) -> GateSpec:
     )
 
 
-def _parse_cluster(doc: _Doc) -> ClusterSpec:
-    section = _Section(doc, ("cluster",), ("address", "workers", "threads_per_worker", "processes"))
+CLUSTER_KEYS = ("address", "workers", "threads_per_worker", "processes")
+
+
+def _merge_profile(doc: _Doc, base: Path) -> None:
+    """Fill the cluster section from ``cluster.profile``; keys set in the job win."""
+    section = doc.data.get("cluster")
+    if not isinstance(section, dict) or "profile" not in section:
+        return
+    where = doc.where(("cluster", "profile"))
+    value = section.pop("profile")
+    if value is None:
+        return
+    profile_path = Path(_text_or_fail(doc, value))
+    profile_path = profile_path if profile_path.is_absolute() else (base / profile_path).resolve()
+    profile = _read_yaml(profile_path)
+    cluster = profile.data.get("cluster", profile.data)
+    if not isinstance(cluster, dict):
+        raise JobError(f"{where}: profile {profile_path.name} must hold a cluster mapping")
+    for key, value in cluster.items():
+        if key not in CLUSTER_KEYS:
+            raise JobError(
+                f"{profile_path.name}: unknown cluster key '{key}'; expected one of: "
+                + ", ".join(CLUSTER_KEYS)
+            )
+        section.setdefault(key, value)
+
+
+def _text_or_fail(doc: _Doc, value: Any) -> str:
+    try:
+        return _text(value)
+    except TypeError as exc:
+        raise doc.fail(("cluster", "profile"), f"{exc}, found {value!r}") from None
+
+
+def _parse_cluster(doc: _Doc, base: Path) -> ClusterSpec:
+    _merge_profile(doc, base)
+    section = _Section(doc, ("cluster",), CLUSTER_KEYS)
     return ClusterSpec(
         address=section.get("address", _text),
         workers=section.get("workers", _auto_or_count),
@@ -467,7 +502,7 @@ def load_job(path: str | Path, overrides: tuple[str, ...] = ()) -> Job:
         output=_parse_output(doc, base),
         solve=_parse_solve(doc),
         gates=_parse_gates(doc),
-        cluster=_parse_cluster(doc),
+        cluster=_parse_cluster(doc, base),
     )
     return _with_resolved(job)
 

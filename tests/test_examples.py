@@ -1,0 +1,60 @@
+"""The example jobs and configs in the repository stay valid and equal to what the code writes."""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import pytest
+
+from rowfold import demo
+from rowfold.spec import load_job
+
+ROOT = Path(__file__).resolve().parent.parent
+
+
+@pytest.mark.parametrize("job", sorted((ROOT / "jobs").glob("*.yaml")), ids=lambda p: p.name)
+def test_example_jobs_parse(job: Path) -> None:
+    parsed = load_job(job)
+    assert parsed.input.path.is_absolute()
+    assert parsed.output.path.is_absolute()
+
+
+@pytest.mark.parametrize(
+    ("example", "text"),
+    [
+        ("tarnholm_zero_points_tsqr.yaml", demo.JOB_TSQR),
+        ("tarnholm_zero_points_cholqr2.yaml", demo.JOB_CHOLQR2),
+    ],
+)
+def test_demo_jobs_match_the_examples(example: str, text: str) -> None:
+    assert (ROOT / "jobs" / example).read_text(encoding="utf-8") == text
+
+
+@pytest.mark.parametrize("profile", sorted((ROOT / "configs").glob("*.yaml")), ids=lambda p: p.name)
+def test_cluster_profiles_load(profile: Path, tmp_path: Path) -> None:
+    job = tmp_path / "job.yaml"
+    job.write_text(
+        f"input: {{path: a.h5, matrix: A}}\noutput: {{path: o.h5}}\n"
+        f"cluster: {{profile: {profile}}}\n",
+        encoding="utf-8",
+    )
+    cluster = load_job(job).cluster
+    assert cluster.processes in (True, False)
+
+
+def test_demo_recovers_its_true_parameters(tmp_path: Path) -> None:
+    """The demo's synthetic data were drawn from known parameters; tsqr must recover them
+    to within a few standard errors (a statistical sanity check of the whole pipeline)."""
+    import h5py
+    import numpy as np
+
+    from rowfold import runner
+
+    (job_path, _) = demo.write_scenario(tmp_path, rows=20_000)
+    outcome = runner.run_job(load_job(job_path), inline=True)
+    assert outcome.status == 0
+    with h5py.File(outcome.output, "r") as store:
+        x, stderr = store["x"][...], store["x_stderr"][...]
+    z = np.abs(x - demo.true_parameters()) / stderr
+    assert np.max(z) < 5.0
+    assert abs(outcome.report["residual_std"] - demo.NOISE_MAG) < 0.1 * demo.NOISE_MAG
