@@ -1,4 +1,7 @@
-"""The quality report: a JSON document and a human-readable HTML page with plots."""
+"""Formatting of the quality report: JSON text and a human-readable HTML page with plots.
+
+The figures themselves are assembled by :func:`rowfold.quality.assemble_report`.
+"""
 
 from __future__ import annotations
 
@@ -6,139 +9,15 @@ import base64
 import html
 import io
 import json
-import math
-from typing import TYPE_CHECKING, Any
+from typing import Any
 
 import numpy as np
-
-from rowfold import __version__
-from rowfold.kernels import metrics
-
-if TYPE_CHECKING:
-    from rowfold.blocks import BlockPlan
-    from rowfold.methods.base import Factorization
-    from rowfold.solve import Solution, Statistics
-    from rowfold.spec import Job
 
 CAUTION = (
     "rowfold computes factorizations and least-squares solutions; it does not judge whether a "
     "model suits its purpose. Results that feed engineering or land-survey decisions must be "
     "reviewed by a qualified professional, and local codes and licensed practice govern."
 )
-
-
-def _clean(value: Any) -> Any:
-    """Turn numpy values into JSON data; NaN and infinity become null."""
-    if isinstance(value, dict):
-        return {str(k): _clean(v) for k, v in value.items()}
-    if isinstance(value, list | tuple):
-        return [_clean(v) for v in value]
-    if isinstance(value, np.ndarray):
-        return _clean(value.tolist())
-    if isinstance(value, np.generic):
-        return _clean(value.item())
-    if isinstance(value, float) and not math.isfinite(value):
-        return None
-    return value
-
-
-def _per_rhs(plan: BlockPlan, values: np.ndarray) -> Any:
-    """A number for a 1-D rhs, a list (one per column) for a 2-D rhs."""
-    return float(values[0]) if plan.rhs_1d else [float(v) for v in values]
-
-
-def build_report(
-    job: Job,
-    plan: BlockPlan,
-    fact: Factorization,
-    solution: Solution | None,
-    stats: Statistics | None,
-    sums: metrics.Sums,
-    formed_q: bool,
-    seconds: dict[str, float],
-    peak_memory: int,
-    extra: dict[str, Any],
-) -> dict[str, Any]:
-    """Assemble the report dictionary (the keys SPEC lists, and more)."""
-    from rowfold.quality import check_gates
-
-    sigma = metrics.singular_values(fact.R)
-    norm_a = float(sigma[0]) if sigma.size else 0.0
-    a_fro2 = float(sums["a_fro2"])
-    figures: dict[str, Any] = {
-        "orthogonality_loss": metrics.orthogonality_loss(sums["qhq"]) if formed_q else None,
-        "factorization_residual": (
-            math.sqrt(sums["defect2"] / a_fro2) if formed_q and a_fro2 > 0 else None
-        ),
-        "gram_residual": metrics.gram_residual(sums["gram"], fact.R, a_fro2),
-        "r_condition": metrics.condition_from(sigma),
-    }
-    report: dict[str, Any] = {
-        "rowfold_version": __version__,
-        "name": job.name,
-        "job_file": str(job.source),
-        "method": job.method.name,
-        "method_details": fact.details,
-        "rows": plan.rows,
-        "cols": plan.cols,
-        "rhs_cols": plan.rhs_cols,
-        "dtype": plan.dtype,
-        "blocks": plan.blocks,
-        "rows_per_block": plan.bounds[0][1] - plan.bounds[0][0],
-        "passes_over_input": fact.passes + 1,
-        "seconds": {k: round(v, 4) for k, v in seconds.items()},
-        "peak_memory_bytes": peak_memory,
-        **figures,
-        "r_singular_values": sigma,
-        "r_diagonal": np.real(np.diagonal(fact.R)),
-        "rank": solution.rank if solution else _rank_only(fact.R, job),
-        "warnings": [],
-        "output": str(job.output.path),
-        "caution": CAUTION,
-    }
-    if solution is not None and stats is not None:
-        report.update(_solution_figures(plan, solution, stats, sums, norm_a))
-    else:
-        report.update(
-            {
-                "solution_residual_norm": None,
-                "residual_std": None,
-                "normal_equations_residual": None,
-            }
-        )
-    if report["rank"] < plan.cols:
-        report["warnings"].append(
-            f"rank deficient: numerical rank {report['rank']} of {plan.cols} columns; "
-            "x is the minimum-norm least-squares solution"
-        )
-    gates = check_gates(job.gates, figures)
-    report["gates"] = {
-        name: {"limit": g.limit, "value": g.value, "held": g.held} for name, g in gates.items()
-    }
-    report.update(extra)
-    cleaned: dict[str, Any] = _clean(report)
-    return cleaned
-
-
-def _rank_only(R: np.ndarray, job: Job) -> int:
-    from rowfold.solve import numerical_rank, rank_tolerance
-
-    rank, _ = numerical_rank(R, rank_tolerance(R.shape[1], R.dtype, job.solve.rank_tolerance))
-    return rank
-
-
-def _solution_figures(
-    plan: BlockPlan, solution: Solution, stats: Statistics, sums: metrics.Sums, norm_a: float
-) -> dict[str, Any]:
-    ne = metrics.normal_equations_residual(sums["ahr"], norm_a, sums["res2"])
-    return {
-        "rank_tolerance": solution.tolerance,
-        "rank_deficient_columns": solution.deficient_columns,
-        "degrees_of_freedom": stats.degrees_of_freedom,
-        "solution_residual_norm": _per_rhs(plan, stats.residual_norm),
-        "residual_std": _per_rhs(plan, stats.residual_std),
-        "normal_equations_residual": _per_rhs(plan, ne),
-    }
 
 
 def to_json(report: dict[str, Any]) -> str:

@@ -22,7 +22,7 @@ from rowfold.errors import EXIT_GATE_FAILED, EXIT_OK
 from rowfold.methods import get_method
 from rowfold.methods._graph import task
 from rowfold.methods.base import Engine, Factorization
-from rowfold.report import build_report, render_html, to_json
+from rowfold.report import CAUTION, render_html, to_json
 from rowfold.solve import Solution, Statistics, solve, statistics
 from rowfold.spec import Job, load_job
 
@@ -149,7 +149,7 @@ def _run_on(job: Job, plan: BlockPlan, engine: Any, clock: _Clock, started: floa
         if solution is not None:
             stats = statistics(solution, check.sums["res2"], plan.rows)
         fingerprints = _fingerprints(job, plan, engine)
-        report = build_report(
+        report = quality.assemble_report(
             job=job,
             plan=plan,
             fact=fact,
@@ -159,7 +159,12 @@ def _run_on(job: Job, plan: BlockPlan, engine: Any, clock: _Clock, started: floa
             formed_q=check.formed_q,
             seconds=clock.seconds,
             peak_memory=engine.peak_memory_bytes(),
-            extra={"inputs": fingerprints, "started": started, "finished": time.time()},
+            extra={
+                "inputs": fingerprints,
+                "started": started,
+                "finished": time.time(),
+                "caution": CAUTION,
+            },
         )
         with clock.stage("write"):
             _write_store(writer, job, plan, fact, solution, stats, report)
