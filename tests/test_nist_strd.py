@@ -124,6 +124,7 @@ def _call_main(job: Path) -> int:
     """Run ``rowfold run JOB`` in-process and return its exit status."""
     from rowfold.cli import main
 
+    status: object
     try:
         status = main(["run", str(job)])
     except SystemExit as exc:  # a CLI may also leave through sys.exit

@@ -148,6 +148,7 @@ def _run_on(job: Job, plan: BlockPlan, engine: Any, clock: _Clock, started: floa
         stats = None
         if solution is not None:
             stats = statistics(solution, check.sums["res2"], plan.rows)
+        sums = {**fact.sums, **check.sums}
         fingerprints = _fingerprints(job, plan, engine)
         report = quality.assemble_report(
             job=job,
@@ -155,8 +156,9 @@ def _run_on(job: Job, plan: BlockPlan, engine: Any, clock: _Clock, started: floa
             fact=fact,
             solution=solution,
             stats=stats,
-            sums=check.sums,
+            sums=sums,
             formed_q=check.formed_q,
+            passes=fact.passes + check.passes,
             seconds=clock.seconds,
             peak_memory=engine.peak_memory_bytes(),
             extra={

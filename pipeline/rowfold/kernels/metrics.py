@@ -1,7 +1,8 @@
 """Per-block quality sums and the small metrics built from their totals.
 
-A verification pass computes :func:`block_sums` on every row block, adds them with
-:func:`add_sums`, and turns the total into report figures with the functions below.
+The first pass of every method adds :func:`gram_sums` over the row blocks; the
+verification pass adds :func:`block_sums`; :func:`add_sums` adds them, and the functions
+below turn the totals into report figures.
 """
 
 from __future__ import annotations
@@ -14,6 +15,14 @@ from scipy.linalg import svdvals
 Sums = dict[str, Any]
 
 
+def gram_sums(block: np.ndarray) -> Sums:
+    """Return the first-pass sums of a block: ``a_fro2`` (||A_i||_F^2), ``gram`` (A_i^H A_i)."""
+    from rowfold.kernels.gram import block_gram
+
+    gram = block_gram(block)
+    return {"a_fro2": float(np.real(np.trace(gram))), "gram": gram}
+
+
 def block_sums(
     block: np.ndarray,
     rhs: np.ndarray | None,
@@ -21,18 +30,14 @@ def block_sums(
     R: np.ndarray,
     Q: np.ndarray | None,
 ) -> Sums:
-    """Return the additive quality sums of one row block.
+    """Return the verification sums of one row block.
 
-    Keys: ``a_fro2`` (||A_i||_F^2), ``gram`` (A_i^H A_i); with rhs and x: ``res2``
-    (||r_i||^2 per column) and ``ahr`` (A_i^H r_i); with Q: ``qhq`` (Q_i^H Q_i) and
-    ``defect2`` (||A_i - Q_i R||_F^2).
+    Keys: with rhs and x, ``res2`` (||r_i||^2 per column) and ``ahr`` (A_i^H r_i); with Q,
+    ``qhq`` (Q_i^H Q_i) and ``defect2`` (||A_i - Q_i R||_F^2).
     """
     from rowfold.kernels.gram import block_gram
 
-    sums: Sums = {
-        "a_fro2": float(np.vdot(block, block).real),
-        "gram": block_gram(block),
-    }
+    sums: Sums = {}
     if rhs is not None and x is not None:
         residual = rhs.reshape(block.shape[0], -1) - block @ x.reshape(block.shape[1], -1)
         sums["res2"] = np.sum(np.abs(residual) ** 2, axis=0)

@@ -55,6 +55,9 @@ class Factorization:
         One recipe per row block (plain values or delayed objects).
     passes : int
         Passes over A that the factorization made.
+    sums : dict
+        First-pass sums ``a_fro2`` and ``gram`` (see :func:`rowfold.kernels.metrics.gram_sums`),
+        accumulated while the blocks were read anyway.
     details : dict
         Method-specific figures for the report (e.g. a condition estimate).
     """
@@ -64,6 +67,7 @@ class Factorization:
     q_kernel: QKernel
     q_recipes: list[Any]
     passes: int
+    sums: dict[str, Any]
     details: dict[str, Any] = field(default_factory=dict)
 
 

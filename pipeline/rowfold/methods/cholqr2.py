@@ -94,5 +94,6 @@ def factor(plan: BlockPlan, spec: MethodSpec, engine: Engine, want_q: bool) -> F
         q_kernel=q_block,
         q_recipes=[(first, second)] * plan.blocks,
         passes=2,
+        sums={"a_fro2": float(np.real(np.trace(gram))), "gram": gram},
         details={"first_pass_condition_estimate": estimate},
     )

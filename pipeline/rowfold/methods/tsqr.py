@@ -14,21 +14,23 @@ from typing import Any
 import numpy as np
 
 from rowfold.blocks import BlockPlan, load_block
-from rowfold.kernels import householder_q, householder_r, positive_diagonal, stacked_r
+from rowfold.kernels import householder_q, householder_r, metrics, positive_diagonal, stacked_r
 from rowfold.methods._graph import task, tree_levels
 from rowfold.methods.base import Engine, Factorization
 from rowfold.spec import MethodSpec
 
 
-def leaf_factor(plan: BlockPlan, index: int) -> tuple[np.ndarray, np.ndarray | None]:
-    """Read one block and return its (R, Q^H B), zero-padded to n rows."""
+def leaf_factor(plan: BlockPlan, index: int) -> tuple[Any, Any, Any, metrics.Sums]:
+    """Read one block; return its (R, Q^H B, None, first-pass sums), zero-padded to n rows."""
     block, rhs = load_block(plan, index)
-    return householder_r(block, rhs)
+    R, C = householder_r(block, rhs)
+    return R, C, None, metrics.gram_sums(block)
 
 
-def node_factor(keep_q: bool, *children: tuple[Any, ...]) -> tuple[Any, Any, Any]:
-    """Reduce children's (R, C[, Q]) to this node's (R, C, Q or None)."""
-    return stacked_r([(child[0], child[1]) for child in children], keep_q)
+def node_factor(keep_q: bool, *children: tuple[Any, ...]) -> tuple[Any, Any, Any, metrics.Sums]:
+    """Reduce children's (R, C, Q, sums) to this node's (R, C, Q or None, sums)."""
+    R, C, Q = stacked_r([(child[0], child[1]) for child in children], keep_q)
+    return R, C, Q, metrics.add_sums(*(child[3] for child in children))
 
 
 def child_transform(node: tuple[Any, Any, Any], position: int, parent: np.ndarray) -> np.ndarray:
@@ -70,6 +72,7 @@ def factor(plan: BlockPlan, spec: MethodSpec, engine: Engine, want_q: bool) -> F
         q_kernel=q_block,
         q_recipes=recipes,
         passes=1,
+        sums=root[3],
         details={"tree": spec.tree, "tree_depth": depth},
     )
 
