@@ -8,6 +8,7 @@ A :class:`BlockPlan` is small, frozen and picklable: it holds references to the 
 from __future__ import annotations
 
 from dataclasses import dataclass
+from typing import Protocol
 
 import numpy as np
 
@@ -55,6 +56,28 @@ class BlockPlan:
     def blocks(self) -> int:
         """Number of row blocks."""
         return len(self.bounds)
+
+    def load(self, index: int) -> tuple[np.ndarray, np.ndarray | None]:
+        """Read block ``index`` of A and of the rhs (see :func:`load_block`)."""
+        return load_block(self, index)
+
+
+class BlockSource(Protocol):
+    """Anything that yields row blocks of a tall matrix by index, inside a task.
+
+    :class:`BlockPlan` is the source of the input itself; methods derive others (e.g. a
+    column panel minus its projection on earlier panels). Sources must be small, frozen
+    and picklable: tasks carry them to the workers.
+    """
+
+    @property
+    def blocks(self) -> int:
+        """Number of row blocks."""
+        ...
+
+    def load(self, index: int) -> tuple[np.ndarray, np.ndarray | None]:
+        """Return (block, rhs block or None) for block ``index``."""
+        ...
 
 
 def working_dtype(info: ArrayInfo) -> np.dtype:

@@ -60,9 +60,20 @@ class OutputError(RowfoldError, ValueError):
 
 
 class BreakdownError(RowfoldError, LinAlgError):
-    """A factorization method broke down or cannot guarantee its accuracy (exit 4)."""
+    """A factorization method broke down or cannot guarantee its accuracy (exit 4).
+
+    ``passes`` counts the passes over A made before the method gave up (so a caller that
+    falls back to another method can report the total honestly).
+    """
 
     exit_status = EXIT_RUN_FAILED
+
+    def __init__(self, message: str, passes: int = 0) -> None:
+        super().__init__(message)
+        self.passes = passes
+
+    def __reduce__(self) -> tuple[type, tuple[str, int]]:
+        return (type(self), (str(self), self.passes))
 
 
 class RunError(RowfoldError, RuntimeError):

@@ -21,7 +21,7 @@ from rowfold.cluster import InlineEngine, Progress, open_engine
 from rowfold.errors import EXIT_GATE_FAILED, EXIT_OK
 from rowfold.methods import get_method
 from rowfold.methods._graph import task
-from rowfold.methods.base import Engine, Factorization
+from rowfold.methods.base import Context, Engine, Factorization
 from rowfold.report import CAUTION, render_html, to_json
 from rowfold.solve import Solution, Statistics, solve, statistics
 from rowfold.spec import Job, load_job
@@ -120,9 +120,11 @@ def run_job(job: Job, progress: Progress | None = None, inline: bool = False) ->
         plan = plan_job(job)
         storage.check_output_path(job.output.path, job.output.overwrite)
     with ExitStack() as stack:
+        storage.remove_litter(job.output.path)
+        workdir = stack.enter_context(storage.scratch_folder(job.output.path))
         with clock.stage("cluster_start"):
             engine = stack.enter_context(_engine(job, progress, inline))
-        return _run_on(job, plan, engine, clock, started)
+        return _run_on(job, plan, Context(engine, wants_q(job), workdir), clock, started)
 
 
 @contextmanager
@@ -134,10 +136,11 @@ def _engine(job: Job, progress: Progress, inline: bool) -> Iterator[Any]:
         yield engine
 
 
-def _run_on(job: Job, plan: BlockPlan, engine: Any, clock: _Clock, started: float) -> RunOutcome:
+def _run_on(job: Job, plan: BlockPlan, ctx: Context, clock: _Clock, started: float) -> RunOutcome:
     """The part of a run that needs the engine."""
+    engine = ctx.engine
     with clock.stage("factor"):
-        fact = get_method(job.method.name)(plan, job.method, engine, wants_q(job))
+        fact = get_method(job.method.name)(plan, job.method, ctx)
     with clock.stage("solve"):
         solution = None if fact.qhb is None else solve(fact.R, fact.qhb, job.solve.rank_tolerance)
     with storage.ResultWriter(job.output.path) as writer:

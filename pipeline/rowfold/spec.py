@@ -18,8 +18,22 @@ import yaml
 
 from rowfold.errors import JobError
 
-METHOD_NAMES = ("tsqr", "cholqr2")
+METHOD_NAMES = ("tsqr", "cholqr2", "scholqr3", "bcgs2", "bmgs", "rcholqr", "auto")
 TSQR_TREES = ("flat", "binary")
+INNER_QR = ("householder", "cholqr2", "mgs")
+SKETCHES = ("sparse_sign", "gaussian")
+PRECISIONS = ("float64", "native")
+
+# Which method takes which option (every method takes ``precision``).
+METHOD_OPTIONS: dict[str, tuple[str, ...]] = {
+    "tsqr": ("tree",),
+    "cholqr2": (),
+    "scholqr3": (),
+    "bcgs2": ("panel", "inner"),
+    "bmgs": ("panel", "inner", "reorthogonalize"),
+    "rcholqr": ("sketch", "sketch_rows", "seed"),
+    "auto": (),
+}
 
 
 @dataclass(frozen=True, slots=True)
@@ -56,11 +70,32 @@ class MethodSpec:
     name : str
         One of :data:`METHOD_NAMES`.
     tree : str or int
-        TSQR reduction tree: ``"flat"``, ``"binary"`` or a fan-in k >= 2.
+        tsqr: reduction tree ``"flat"``, ``"binary"`` or a fan-in k >= 2.
+    panel : int
+        bcgs2/bmgs: columns per panel.
+    inner : str
+        bcgs2/bmgs: QR inside a panel, one of :data:`INNER_QR`.
+    reorthogonalize : bool
+        bmgs: a second projection pass per panel.
+    sketch : str
+        rcholqr: random embedding, one of :data:`SKETCHES`.
+    sketch_rows : int or None
+        rcholqr: rows of the sketch; None means 3 n.
+    seed : int
+        rcholqr: seed of the random embedding (recorded in the report).
+    precision : str
+        ``"float64"`` computes float32 input in float64; ``"native"`` keeps float32.
     """
 
     name: str = "tsqr"
     tree: str | int = "binary"
+    panel: int = 16
+    inner: str = "householder"
+    reorthogonalize: bool = False
+    sketch: str = "sparse_sign"
+    sketch_rows: int | None = None
+    seed: int = 0
+    precision: str = "float64"
 
 
 @dataclass(frozen=True, slots=True)
@@ -380,13 +415,33 @@ def _parse_input(doc: _Doc, base: Path) -> InputSpec:
     )
 
 
+def _seed(value: Any) -> int:
+    if isinstance(value, bool) or not isinstance(value, int) or value < 0:
+        raise TypeError("expected a whole number >= 0")
+    return value
+
+
 def _parse_method(doc: _Doc) -> MethodSpec:
-    section = _Section(doc, ("method",), ("name", "tree"))
+    every = ("name", "precision", *sorted({k for keys in METHOD_OPTIONS.values() for k in keys}))
+    section = _Section(doc, ("method",), every)
     name = section.get("name", _one_of(METHOD_NAMES), "tsqr")
-    tree = section.get("tree", _tree, "binary")
-    if name != "tsqr" and "tree" in section.raw:
-        raise doc.fail(("method", "tree"), f"only method tsqr takes a tree, not {name}")
-    return MethodSpec(name=name, tree=tree)
+    for key in section.raw:
+        if key not in ("name", "precision", *METHOD_OPTIONS[name]):
+            takers = [m for m, keys in METHOD_OPTIONS.items() if key in keys]
+            raise doc.fail(
+                ("method", key), f"method {name} takes no '{key}' (it is for {', '.join(takers)})"
+            )
+    return MethodSpec(
+        name=name,
+        tree=section.get("tree", _tree, "binary"),
+        panel=section.get("panel", _count, 16),
+        inner=section.get("inner", _one_of(INNER_QR), "householder"),
+        reorthogonalize=section.get("reorthogonalize", _flag, False),
+        sketch=section.get("sketch", _one_of(SKETCHES), "sparse_sign"),
+        sketch_rows=section.get("sketch_rows", _auto_or_count),
+        seed=section.get("seed", _seed, 0),
+        precision=section.get("precision", _one_of(PRECISIONS), "float64"),
+    )
 
 
 def _parse_output(doc: _Doc, base: Path) -> OutputSpec:

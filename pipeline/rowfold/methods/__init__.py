@@ -4,12 +4,15 @@ Each method composes the pure kernels of :mod:`rowfold.kernels` over row blocks 
 graph and returns a :class:`~rowfold.methods.base.Factorization`.
 """
 
-from rowfold.methods import cholqr2, tsqr
+from rowfold.methods import auto, cholesky, rcholqr, tsqr
 from rowfold.methods.base import Engine, Factorization, Method
 
 REGISTRY: dict[str, Method] = {
     "tsqr": tsqr.factor,
-    "cholqr2": cholqr2.factor,
+    "cholqr2": cholesky.cholqr2,
+    "scholqr3": cholesky.scholqr3,
+    "rcholqr": rcholqr.factor,
+    "auto": auto.factor,
 }
 
 

@@ -11,6 +11,7 @@ from __future__ import annotations
 
 from collections.abc import Callable, Iterator, Sequence
 from dataclasses import dataclass, field
+from pathlib import Path
 from typing import Any, Protocol
 
 import numpy as np
@@ -32,6 +33,10 @@ class Engine(Protocol):
 
     def stream(self, tasks: Sequence[Any], label: str) -> Iterator[Any]:
         """Yield the values of delayed objects in order, holding only a few at a time."""
+        ...
+
+    def peak_memory_bytes(self) -> int:
+        """Peak resident memory of every process that took part, in bytes."""
         ...
 
 
@@ -71,11 +76,30 @@ class Factorization:
     details: dict[str, Any] = field(default_factory=dict)
 
 
+@dataclass(frozen=True)
+class Context:
+    """What a method gets besides the blocks and its options.
+
+    Attributes
+    ----------
+    engine : Engine
+        Runs the Dask graphs.
+    want_q : bool
+        Whether Q blocks will be formed later (methods may keep what that needs).
+    workdir : Path
+        A scratch folder beside the output that the method may create and fill (e.g.
+        with intermediate Q panels); the runner removes it when the job ends. Workers
+        write there too, so on a remote cluster it must be on a shared file system.
+    """
+
+    engine: Engine
+    want_q: bool
+    workdir: Path
+
+
 class Method(Protocol):
     """A factorization strategy."""
 
-    def __call__(
-        self, plan: BlockPlan, spec: MethodSpec, engine: Engine, want_q: bool
-    ) -> Factorization:
-        """Factor the plan's matrix; ``want_q`` says whether Q blocks will be formed."""
+    def __call__(self, plan: BlockPlan, spec: MethodSpec, ctx: Context) -> Factorization:
+        """Factor the plan's matrix."""
         ...

@@ -13,16 +13,16 @@ from typing import Any
 
 import numpy as np
 
-from rowfold.blocks import BlockPlan, load_block
+from rowfold.blocks import BlockPlan, BlockSource
 from rowfold.kernels import householder_q, householder_r, metrics, positive_diagonal, stacked_r
 from rowfold.methods._graph import task, tree_levels
-from rowfold.methods.base import Engine, Factorization
+from rowfold.methods.base import Context, Engine, Factorization
 from rowfold.spec import MethodSpec
 
 
-def leaf_factor(plan: BlockPlan, index: int) -> tuple[Any, Any, Any, metrics.Sums]:
+def leaf_factor(source: BlockSource, index: int) -> tuple[Any, Any, Any, metrics.Sums]:
     """Read one block; return its (R, Q^H B, None, first-pass sums), zero-padded to n rows."""
-    block, rhs = load_block(plan, index)
+    block, rhs = source.load(index)
     R, C = householder_r(block, rhs)
     return R, C, None, metrics.gram_sums(block)
 
@@ -54,18 +54,25 @@ def fan_in_of(tree: str | int, leaves: int) -> int:
     return int(tree)
 
 
-def factor(plan: BlockPlan, spec: MethodSpec, engine: Engine, want_q: bool) -> Factorization:
+def factor(plan: BlockPlan, spec: MethodSpec, ctx: Context) -> Factorization:
     """Run Householder TSQR over the plan's row blocks."""
-    leaves = [task(leaf_factor, plan, i) for i in range(plan.blocks)]
-    fan_in = fan_in_of(spec.tree, len(leaves))
+    engine, want_q = ctx.engine, ctx.want_q
+    return factor_source(plan, spec.tree, engine, want_q)
+
+
+def factor_source(
+    source: BlockSource, tree: str | int, engine: Engine, want_q: bool, label: str = "tsqr"
+) -> Factorization:
+    """Run Householder TSQR over any block source (the input, or a derived panel)."""
+    leaves = [task(leaf_factor, source, i) for i in range(source.blocks)]
+    fan_in = fan_in_of(tree, len(leaves))
     levels = tree_levels(leaves, fan_in, lambda kids: task(node_factor, want_q, *kids))
     if want_q:
         levels = [levels[0], *_persist_levels(engine, levels[1:])]
-    (root,) = engine.compute([levels[-1][0]], "tsqr: factor row blocks")
+    (root,) = engine.compute([levels[-1][0]], f"{label}: factor row blocks")
     R, signs = positive_diagonal(root[0])
     qhb = None if root[1] is None else np.conj(signs)[:, None] * root[1]
     recipes = _leaf_transforms(levels, fan_in, np.diag(signs)) if want_q else []
-    depth = len(levels) - 1
     return Factorization(
         R=R,
         qhb=qhb,
@@ -73,7 +80,7 @@ def factor(plan: BlockPlan, spec: MethodSpec, engine: Engine, want_q: bool) -> F
         q_recipes=recipes,
         passes=1,
         sums=root[3],
-        details={"tree": spec.tree, "tree_depth": depth},
+        details={"tree": tree, "tree_depth": len(levels) - 1},
     )
 
 

@@ -19,6 +19,7 @@ from rowfold.storage.results import (
     read_result,
     remove_litter,
     report_paths,
+    scratch_folder,
 )
 
 __all__ = [
@@ -33,5 +34,6 @@ __all__ = [
     "read_rows",
     "remove_litter",
     "report_paths",
+    "scratch_folder",
     "write_arrays",
 ]

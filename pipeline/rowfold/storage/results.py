@@ -12,6 +12,8 @@ from __future__ import annotations
 import json
 import os
 import shutil
+from collections.abc import Iterator
+from contextlib import contextmanager
 from pathlib import Path
 from types import TracebackType
 from typing import Any
@@ -53,10 +55,25 @@ def report_paths(path: Path) -> tuple[Path, Path]:
 
 
 def remove_litter(path: Path) -> None:
-    """Remove temporary siblings that a killed run left beside ``path``."""
+    """Remove temporary siblings that an earlier, killed run left beside ``path``.
+
+    Siblings of this process (same pid in the name) are left alone.
+    """
+    own = (f"{TMP_PREFIX}{os.getpid()}-", f"{OLD_PREFIX}{os.getpid()}-")
     for prefix in (TMP_PREFIX, OLD_PREFIX):
         for stale in path.parent.glob(f"{prefix}*{path.name}*"):
-            _remove(stale)
+            if not stale.name.startswith(own):
+                _remove(stale)
+
+
+@contextmanager
+def scratch_folder(path: Path) -> Iterator[Path]:
+    """Yield a scratch folder path beside ``path`` (not created); remove it afterwards."""
+    folder = path.with_name(f"{TMP_PREFIX}{os.getpid()}-work-{path.name}")
+    try:
+        yield folder
+    finally:
+        _remove(folder)
 
 
 def _remove(path: Path) -> None:
