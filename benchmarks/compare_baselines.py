@@ -19,6 +19,7 @@ import argparse
 import json
 import os
 import platform
+import resource
 import shutil
 import subprocess
 import sys
@@ -87,9 +88,11 @@ class Measurement:
         Wall time from process start to exit, as seen by the parent.
     peak_tree_bytes : int
         Largest sum of RSS over the process tree seen by the poller.
-    max_single_rss_bytes : int
+    max_single_rss_bytes : int or None
         ``ru_maxrss`` from ``wait4``: the largest single process among the child and the
-        descendants it reaped (a cross-check on the poller, not a tree sum).
+        descendants it reaped (a cross-check on the poller, not a tree sum). Linux carries the
+        parent's own high-water RSS into a spawned child, so a value not above the parent's is
+        no information and is recorded as None.
     returncode : int
         Exit status of the subprocess.
     stderr_tail : str
@@ -98,7 +101,7 @@ class Measurement:
 
     seconds: float
     peak_tree_bytes: int
-    max_single_rss_bytes: int
+    max_single_rss_bytes: int | None
     returncode: int
     stderr_tail: str = ""
 
@@ -118,7 +121,7 @@ class Row:
     peak_tree_mb : float or None
         Largest peak tree RSS over the repeats, in MiB.
     max_single_rss_mb : float or None
-        Largest ``ru_maxrss`` over the repeats, in MiB.
+        Largest informative ``ru_maxrss`` over the repeats, in MiB (see `Measurement`).
     ratio_dask, ratio_read : float or None
         ``seconds`` divided by the dask tsqr row and by the plain read row.
     note : str
@@ -187,7 +190,8 @@ def ensure_data(rows: int, cols: int) -> Path:
     tmp = path.with_suffix(".h5.partial")
     _log(f"generating {path.name} ({rows * cols * 8 / MB:.0f} MiB) ...")
     t0 = time.perf_counter()
-    _write_data(tmp, rows, cols)
+    cmd = [*_self_command(cols), "--child-task", "generate", "--child-data", str(tmp)]
+    subprocess.run([*cmd, "--child-rows", str(rows)], check=True)
     tmp.replace(path)
     _log(f"  done in {time.perf_counter() - t0:.1f} s")
     return path
@@ -214,14 +218,16 @@ def _write_data(path: Path, rows: int, cols: int) -> None:
             b_ds[start:stop] = block @ x_true + 0.01 * rng.standard_normal(stop - start)
 
 
-def warm_cache(path: Path) -> None:
-    """Read the file once (untimed) so every measured run starts from the same page cache."""
-    import h5py
+def warm_cache(path: Path, cols: int) -> None:
+    """Read the file once (untimed, in a subprocess) so every run starts from a warm cache."""
+    out = RESULTS_DIR / "warmup.child.json"
+    cmd = [*_self_command(cols), "--child-task", "read", "--child-data", str(path)]
+    subprocess.run([*cmd, "--child-out", str(out)], check=True)
 
-    with h5py.File(path, "r") as f:
-        ds = f["A"]
-        for start in range(0, ds.shape[0], BLOCK_ROWS * GEN_BLOCK_CHUNKS):
-            ds[start : start + BLOCK_ROWS * GEN_BLOCK_CHUNKS]
+
+def _self_command(cols: int) -> list[str]:
+    """Return the command line that runs this script as a child."""
+    return [sys.executable, str(Path(__file__).resolve()), "--cols", str(cols)]
 
 
 # --------------------------------------------------------------------------------------------
@@ -280,8 +286,11 @@ CHILDREN = {"dask": child_dask, "numpy": child_numpy, "read": child_read}
 
 def run_child(args: argparse.Namespace) -> int:
     """Entry point inside a child process: run one task and write its JSON."""
+    if args.child_task == "generate":
+        _write_data(Path(args.child_data), int(args.child_rows), args.cols)
+        return 0
     fn = CHILDREN[args.child_task]
-    info = fn(Path(args.child_data), args.cols, Path(args.child_r))
+    info = fn(Path(args.child_data), args.cols, Path(args.child_r or os.devnull))
     Path(args.child_out).write_text(json.dumps(info))
     return 0
 
@@ -339,6 +348,7 @@ def measure(cmd: Sequence[str], log_stem: Path, timeout: float) -> Measurement:
     log_stem.parent.mkdir(parents=True, exist_ok=True)
     err_path = log_stem.with_suffix(".stderr")
     with open(log_stem.with_suffix(".stdout"), "wb") as out, open(err_path, "wb") as err:
+        floor = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss * 1024
         t0 = time.perf_counter()
         proc = subprocess.Popen(list(cmd), stdout=out, stderr=err, cwd=RESULTS_DIR)
         poller = TreePoller(proc.pid)
@@ -352,7 +362,9 @@ def measure(cmd: Sequence[str], log_stem: Path, timeout: float) -> Measurement:
         poller.join()
     proc.returncode = os.waitstatus_to_exitcode(status)
     tail = "" if proc.returncode == 0 else _tail(err_path)
-    return Measurement(seconds, poller.peak, usage.ru_maxrss * 1024, proc.returncode, tail)
+    single = usage.ru_maxrss * 1024
+    informative = single if single > floor else None
+    return Measurement(seconds, poller.peak, informative, proc.returncode, tail)
 
 
 def _kill_tree(pid: int) -> None:
@@ -413,10 +425,7 @@ def task_command(
         return [sys.executable, "-m", "rowfold", "run", str(job)]
     stem = RESULTS_DIR / f"{task.key}_{rows}x{cols}"
     return [
-        sys.executable,
-        str(Path(__file__).resolve()),
-        "--cols",
-        str(cols),
+        *_self_command(cols),
         "--child-task",
         task.key,
         "--child-data",
@@ -504,10 +513,11 @@ def run_task(task: Task, data: Path, rows: int, cols: int, opts: argparse.Namesp
             return row
         row.all_seconds.append(m.seconds)
         peaks.append(m.peak_tree_bytes)
-        singles.append(m.max_single_rss_bytes)
+        if m.max_single_rss_bytes is not None:
+            singles.append(m.max_single_rss_bytes)
     row.seconds = min(row.all_seconds)
     row.peak_tree_mb = max(peaks) / MB
-    row.max_single_rss_mb = max(singles) / MB
+    row.max_single_rss_mb = max(singles) / MB if singles else None
     row.extra.update(child_extra(task, rows, cols))
     return row
 
@@ -608,6 +618,7 @@ def environment() -> dict[str, Any]:
         "platform": platform.platform(),
         "cpu_count": os.cpu_count(),
         "ram_bytes": psutil.virtual_memory().total,
+        "load_average_1_5_15": os.getloadavg(),
         "versions": versions,
     }
 
@@ -631,7 +642,7 @@ def compare(opts: argparse.Namespace) -> int:
     RESULTS_DIR.mkdir(parents=True, exist_ok=True)
     data = ensure_data(opts.rows, opts.cols)
     if not opts.no_warmup:
-        warm_cache(data)
+        warm_cache(data, opts.cols)
     results = [run_task(t, data, opts.rows, opts.cols, opts) for t in tasks]
     add_ratios(results)
     done = [t for t, r in zip(tasks, results, strict=True) if r.seconds is not None]
@@ -671,7 +682,7 @@ def memory_scaling(opts: argparse.Namespace) -> int:
     for rows in sizes:
         data = ensure_data(rows, opts.cols)
         if not opts.no_warmup:
-            warm_cache(data)
+            warm_cache(data, opts.cols)
         row = run_task(tsqr, data, rows, opts.cols, opts)
         row.label = f"rowfold tsqr, {rows} rows"
         results.append(row)
@@ -725,7 +736,7 @@ def parse_args(argv: Sequence[str] | None = None) -> argparse.Namespace:
     p.add_argument("--timeout", type=float, default=3600.0, help="seconds per subprocess")
     p.add_argument("--no-warmup", action="store_true", help="skip the untimed cache warm-up read")
     p.add_argument("--clean-data", action="store_true", help="delete benchmarks/data and exit")
-    for hidden in ("--child-task", "--child-data", "--child-out", "--child-r"):
+    for hidden in ("--child-task", "--child-data", "--child-out", "--child-r", "--child-rows"):
         p.add_argument(hidden, help=argparse.SUPPRESS)
     opts = p.parse_args(argv)
     if opts.repeat < 1 or opts.rows < 1 or opts.cols < 1:

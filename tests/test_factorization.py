@@ -22,55 +22,14 @@ from __future__ import annotations
 
 from pathlib import Path
 
-import h5py
 import numpy as np
 import pytest
 import scipy.linalg
 
-from rowfold import runner, storage
+from rowfold import runner
 from rowfold.errors import BreakdownError
 
-from support import U, prescribed, write_job
-
-
-def lapack_r(A: np.ndarray) -> np.ndarray:
-    """numpy/LAPACK R with its signs normalised to a non-negative real diagonal."""
-    R = np.linalg.qr(A, mode="r")
-    d = np.diagonal(R)
-    s = np.where(np.abs(d) > 0, d / np.where(np.abs(d) > 0, np.abs(d), 1), 1)
-    return np.conj(s)[:, None] * R
-
-
-def run_inline(job_path: Path, *overrides: str) -> runner.RunOutcome:
-    return runner.run_job(runner.load_job(job_path, overrides), inline=True)
-
-
-def read_store(path: Path) -> dict[str, np.ndarray]:
-    out = storage.read_result(path)
-    if path.suffix == ".h5":
-        with h5py.File(path, "r") as handle:
-            if "Q" in handle:
-                out["Q"] = handle["Q"][...]
-    else:
-        import zarr
-
-        group = zarr.open_group(str(path), mode="r")
-        if "Q" in group:
-            out["Q"] = group["Q"][...]
-    return out
-
-
-def assert_thin_qr(A: np.ndarray, Q: np.ndarray, R: np.ndarray, limit: float) -> None:
-    """A = QR, Q^H Q = I, R upper triangular with a real non-negative diagonal."""
-    n = A.shape[1]
-    assert np.array_equal(R, np.triu(R)), "R is not upper triangular"
-    diag = np.diagonal(R)
-    assert np.all(np.imag(diag) == 0) and np.all(np.real(diag) >= 0), "diag(R) not real >= 0"
-    loo = np.linalg.norm(np.eye(n) - Q.conj().T @ Q)
-    residual = np.linalg.norm(A - Q @ R) / np.linalg.norm(A)
-    assert loo <= limit, f"loss of orthogonality {loo:.2e} > {limit:.2e}"
-    assert residual <= limit, f"factorization residual {residual:.2e} > {limit:.2e}"
-
+from support import U, assert_thin_qr, lapack_r, prescribed, read_store, run_inline, write_job
 
 # Shapes and block partitions; each row says what it exercises.
 PARTITIONS = [

@@ -80,8 +80,11 @@ class BlockSource(Protocol):
         ...
 
 
-def working_dtype(info: ArrayInfo) -> np.dtype:
-    """Return the dtype rowfold computes in for an input dtype (float64 or complex128).
+def working_dtype(info: ArrayInfo, native: bool = False) -> np.dtype:
+    """Return the dtype rowfold computes in for an input dtype.
+
+    float64/complex128 by default; with ``native`` (``method.precision: native``),
+    float32 and complex64 inputs keep their single precision.
 
     Raises
     ------
@@ -89,9 +92,11 @@ def working_dtype(info: ArrayInfo) -> np.dtype:
         For non-numeric dtypes.
     """
     dtype = np.dtype(info.dtype)
+    if native and dtype in (np.dtype(np.float32), np.dtype(np.complex64)):
+        return dtype
     if dtype.kind == "c":
         return np.dtype(np.complex128)
-    if dtype.kind in "fiub" and dtype.kind != "b":
+    if dtype.kind in "fiu":
         return np.dtype(np.float64)
     raise InputError(
         f"{info.ref.describe()}: dtype {dtype} is not numeric; expected a float, integer "
@@ -151,7 +156,9 @@ def _require_finite(block: np.ndarray, ref: ArrayRef, index: int, start: int) ->
     )
 
 
-def plan_blocks(matrix: ArrayInfo, rhs: ArrayInfo | None, rows_per_block: int | None) -> BlockPlan:
+def plan_blocks(
+    matrix: ArrayInfo, rhs: ArrayInfo | None, rows_per_block: int | None, native: bool = False
+) -> BlockPlan:
     """Validate the input shapes and cut them into row blocks.
 
     Parameters
@@ -162,6 +169,8 @@ def plan_blocks(matrix: ArrayInfo, rhs: ArrayInfo | None, rows_per_block: int | 
         Description of the right-hand sides.
     rows_per_block : int or None
         Rows per block; None chooses with :func:`choose_rows_per_block`.
+    native : bool
+        Keep single precision for float32/complex64 input (see :func:`working_dtype`).
 
     Raises
     ------
@@ -178,10 +187,10 @@ def plan_blocks(matrix: ArrayInfo, rhs: ArrayInfo | None, rows_per_block: int | 
         raise InputError(
             f"{where}: expected at least as many rows as columns, found {rows} x {cols}"
         )
-    dtype = working_dtype(matrix)
+    dtype = working_dtype(matrix, native)
     rhs_cols, rhs_1d = _check_rhs(rhs, rows)
-    if rhs is not None and np.dtype(working_dtype(rhs)).kind == "c":
-        dtype = np.dtype(np.complex128)
+    if rhs is not None:
+        dtype = np.result_type(dtype, working_dtype(rhs, native))
     per_block = rows_per_block or choose_rows_per_block(
         rows, cols, np.dtype(dtype).itemsize, matrix.chunk_rows
     )

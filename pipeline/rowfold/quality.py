@@ -119,6 +119,48 @@ def verify(
     return Verification(total_sums, True)
 
 
+# Published loss-of-orthogonality bounds, as (formula, source); see CHECKS.md. "10 n u"
+# stands for a bound of order u, with a constant that is common practice, not published.
+BOUNDS: dict[str, tuple[str, str]] = {
+    "tsqr": (
+        "10 n u",
+        "O(u) for any tree: Higham 2002 ch. 19; Demmel, Grigori, Hoemmen, Langou, SISC 34(1) 2012",
+    ),
+    "cholqr2": (
+        "6 (m n u + n (n+1) u)",
+        "Yamamoto, Nakatsukasa, Yanagisawa, Fukaya, ETNA 44 (2015), for kappa below ~1e8 "
+        "(constant from memory)",
+    ),
+    "scholqr3": (
+        "6 (m n u + n (n+1) u)",
+        "O(u): Fukaya, Kannan, Nakatsukasa, Yamamoto, Yanagisawa, SISC 42(1) 2020 "
+        "(constant from memory)",
+    ),
+    "rcholqr": ("10 n u", "O(u): Higgins, Szyld, Boman, Yamazaki 2023 (arXiv 2309.05868)"),
+    "bcgs2": ("10 n u", "O(u): Barlow & Smoktunowicz, Numer. Math. 123 (2013)"),
+    "bmgs+reorthogonalize": ("10 n u", "O(u) with reorthogonalization (common practice)"),
+    "bmgs": (
+        "10 n u kappa",
+        "O(u kappa): Jalby & Philippe, SISC 12(5) 1991 (constant from memory)",
+    ),
+}
+
+
+def published_bound(
+    method: str, reorthogonalize: bool, rows: int, cols: int, kappa: float, dtype: np.dtype
+) -> dict[str, Any]:
+    """The published loss-of-orthogonality bound of a method at condition ``kappa``."""
+    key = "bmgs+reorthogonalize" if method == "bmgs" and reorthogonalize else method
+    formula, source = BOUNDS.get(key, BOUNDS["tsqr"])
+    u = float(np.finfo(dtype).eps) / 2
+    values = {
+        "10 n u": 10 * cols * u,
+        "6 (m n u + n (n+1) u)": 6 * (rows * cols * u + cols * (cols + 1) * u),
+        "10 n u kappa": 10 * cols * u * kappa,
+    }
+    return {"method": key, "formula": formula, "value": values[formula], "source": source}
+
+
 @dataclass(frozen=True)
 class GateResult:
     """One gate: its limit, the measured value and whether it held."""
@@ -189,12 +231,26 @@ def assemble_report(
         "gram_residual": metrics.gram_residual(sums["gram"], fact.R, a_fro2),
         "r_condition": metrics.condition_from(sigma),
     }
+    used = str(fact.details.get("method_used", job.method.name))
+    bound = published_bound(
+        used,
+        job.method.reorthogonalize,
+        plan.rows,
+        plan.cols,
+        figures["r_condition"],
+        fact.R.dtype,
+    )
+    loo = figures["orthogonality_loss"]
+    bound["measured"] = loo
+    bound["within"] = None if loo is None else bool(loo <= bound["value"])
     report: dict[str, Any] = {
         "rowfold_version": __version__,
         "name": job.name,
         "job_file": str(job.source),
         "method": job.method.name,
+        "method_used": used,
         "method_details": fact.details,
+        "orthogonality_bound": bound,
         "rows": plan.rows,
         "cols": plan.cols,
         "rhs_cols": plan.rhs_cols,

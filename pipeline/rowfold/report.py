@@ -51,7 +51,8 @@ def _plot_png(report: dict[str, Any]) -> str | None:
 
 
 _ROWS = (
-    ("method", "method"),
+    ("method", "method asked"),
+    ("method_used", "method used"),
     ("rows", "rows (m)"),
     ("cols", "columns (n)"),
     ("blocks", "row blocks"),
@@ -78,6 +79,10 @@ def _fmt(value: Any) -> str:
     return html.escape(str(value))
 
 
+def _num(value: Any) -> str:
+    return "n/a" if value is None else f"{value:.3g}"
+
+
 def render_html(report: dict[str, Any]) -> str:
     """Render the report as a self-contained HTML page (plot embedded as PNG)."""
     rows = "\n".join(
@@ -94,6 +99,14 @@ def render_html(report: dict[str, Any]) -> str:
     )
     stages = ", ".join(f"{k} {v:.2f} s" for k, v in report.get("seconds", {}).items())
     warnings = "".join(f"<li>{html.escape(w)}</li>" for w in report.get("warnings", []))
+    bound = report.get("orthogonality_bound") or {}
+    bound_text = (
+        f"Published bound for {bound.get('method')}: {bound.get('formula')} = "
+        f"{_num(bound.get('value'))} at the measured condition number "
+        f"({bound.get('source')}); measured loss of orthogonality {_num(bound.get('measured'))}."
+        if bound
+        else ""
+    )
     png = _plot_png(report)
     plot = f'<img alt="singular values of R" src="data:image/png;base64,{png}">' if png else ""
     title = html.escape(f"rowfold report: {report.get('name', '')}")
@@ -107,6 +120,7 @@ th{{text-align:left;padding-right:1em}}td{{font-family:monospace}}
 <p>rowfold {html.escape(str(report.get("rowfold_version")))}; output
 <code>{html.escape(str(report.get("output")))}</code></p>
 <h2>Quality</h2><table>{rows}</table>
+<p>{html.escape(bound_text)}</p>
 <h2>Gates</h2><table>{gates}</table>
 {f"<h2>Warnings</h2><ul>{warnings}</ul>" if warnings else ""}
 <h2>Time per stage</h2><p>{html.escape(stages)}</p>

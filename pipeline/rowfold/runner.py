@@ -70,7 +70,8 @@ def plan_job(job: Job) -> BlockPlan:
     rhs = None
     if job.input.rhs is not None:
         rhs = storage.describe_array(storage.ArrayRef(path, job.input.rhs))
-    return plan_blocks(matrix, rhs, job.input.rows_per_block)
+    native = job.method.precision == "native"
+    return plan_blocks(matrix, rhs, job.input.rows_per_block, native)
 
 
 def check_job(job: Job) -> dict[str, Any]:

@@ -1,7 +1,7 @@
 """``auto``: choose the cheapest method that the data allow, by a ladder.
 
 1. Pass 1 accumulates the Gram ``A^H A``; its Cholesky factor gives a condition estimate.
-2. If the estimate is well below 1e8 (below :data:`CHOLQR2_BELOW`), CholeskyQR2 reuses that
+2. If the estimate is well below 1e8 (100 times below ``u^-1/2``), CholeskyQR2 reuses that
    pass (2 passes in all).
 3. Otherwise shifted CholeskyQR3 reuses it (3 passes in all).
 4. If that breaks down, Householder TSQR (always stable) runs from scratch.
@@ -19,11 +19,17 @@ from rowfold.errors import BreakdownError
 from rowfold.kernels import cholesky_upper
 from rowfold.methods import tsqr
 from rowfold.methods.base import Context, Factorization
-from rowfold.methods.cholesky import cholqr2_from, condition_estimate, gram_pass, scholqr3_from
+from rowfold.methods.cholesky import (
+    cholqr2_from,
+    cholqr2_limit,
+    condition_estimate,
+    gram_pass,
+    scholqr3_from,
+)
 from rowfold.spec import MethodSpec
 
-# "Well below 1e8": two orders of magnitude of margin below CholeskyQR2's limit.
-CHOLQR2_BELOW = 1.0e6
+# "Well below" CholeskyQR2's limit: two orders of magnitude of margin (1e6 in float64).
+MARGIN = 100.0
 
 
 def _estimate(gram: np.ndarray) -> float:
@@ -38,19 +44,20 @@ def factor(plan: BlockPlan, spec: MethodSpec, ctx: Context) -> Factorization:
     engine, want_q = ctx.engine, ctx.want_q
     first = gram_pass(plan, engine, (), "auto: pass 1 (Gram)")
     estimate = _estimate(first["gram"])
+    below = cholqr2_limit(first["gram"].dtype) / MARGIN
     details = {"first_pass_condition_estimate": estimate}
     notes = []
     spent = 0
-    if estimate < CHOLQR2_BELOW:
+    if estimate < below:
         try:
             fact = cholqr2_from(plan, engine, first, details)
-            return _chosen(fact, "cholqr2", f"condition estimate {estimate:.3g} < 1e6", 0)
+            return _chosen(fact, "cholqr2", f"condition estimate {estimate:.3g} < {below:.2g}", 0)
         except BreakdownError as exc:
             notes.append(str(exc))
             spent += exc.passes
     try:
         fact = scholqr3_from(plan, engine, first, plan.rows, details)
-        return _chosen(fact, "scholqr3", f"condition estimate {estimate:.3g} >= 1e6", spent)
+        return _chosen(fact, "scholqr3", f"condition estimate {estimate:.3g} >= {below:.2g}", spent)
     except BreakdownError as exc:
         notes.append(str(exc))
         spent += 1 + exc.passes

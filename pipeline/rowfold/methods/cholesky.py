@@ -29,12 +29,20 @@ from rowfold.methods._graph import sum_tree, task
 from rowfold.methods.base import Context, Engine, Factorization
 from rowfold.spec import MethodSpec
 
-# Largest first-pass condition estimate CholeskyQR2 accepts (about u^(-1/2); ETNA 44, 2015).
-CHOLQR2_LIMIT = 1.0e8
 # Largest condition of the second factor for which CholeskyQR2's Q is trusted: the final
 # loss of orthogonality grows like u * cond(R2)^2 (common practice margin, not published).
 SECOND_FACTOR_LIMIT = 1.0e2
-UNIT_ROUNDOFF = 2.0**-53
+
+
+def unit_roundoff(dtype: np.dtype) -> float:
+    """u of a dtype's real part: 2^-53 for float64, 2^-24 for float32."""
+    return float(np.finfo(dtype).eps) / 2
+
+
+def cholqr2_limit(dtype: np.dtype) -> float:
+    """Largest first-pass condition estimate CholeskyQR2 accepts: u^(-1/2), about 1e8 in
+    float64 (Yamamoto, Nakatsukasa, Yanagisawa, Fukaya, ETNA 44, 2015)."""
+    return 1.0 / np.sqrt(unit_roundoff(dtype))
 
 
 def apply_factors(block: np.ndarray, factors: Sequence[np.ndarray]) -> np.ndarray:
@@ -100,7 +108,8 @@ def condition_estimate(R: np.ndarray) -> float:
 def shift_for(gram: np.ndarray, rows: int) -> float:
     """The published shift ``11 (m n + n (n+1)) u ||A||_F^2`` (SISC 42(1), 2020)."""
     n = gram.shape[0]
-    return 11.0 * (rows * n + n * (n + 1)) * UNIT_ROUNDOFF * float(np.real(np.trace(gram)))
+    u = unit_roundoff(gram.dtype)
+    return 11.0 * (rows * n + n * (n + 1)) * u * float(np.real(np.trace(gram)))
 
 
 def more_passes(
@@ -159,9 +168,10 @@ def cholqr2_from(
     factor = cholesky_or_refuse(first["gram"], "cholqr2", "first", advice)
     estimate = condition_estimate(factor)
     details = {**details, "first_pass_condition_estimate": estimate}
-    if not estimate < CHOLQR2_LIMIT:
+    limit = cholqr2_limit(factor.dtype)
+    if not estimate < limit:
         raise BreakdownError(
-            f"cholqr2: first-pass condition estimate {estimate:.3g} exceeds {CHOLQR2_LIMIT:.0e}; "
+            f"cholqr2: first-pass condition estimate {estimate:.3g} exceeds {limit:.2g}; "
             f"CholeskyQR2 cannot guarantee an orthogonal Q here; {advice}"
         )
     factors = [factor]

@@ -1,0 +1,97 @@
+"""Scratch arrays that a method fills while it runs (e.g. Q built panel by panel).
+
+Each scratch array lives in a Zarr v3 group ``scratch.zarr`` inside the job's scratch
+folder and is chunked as one chunk per row block at full width, so tasks that write
+different row blocks never touch the same chunk. Tasks receive the :class:`ArrayRef`
+(plain strings), never an open handle: :func:`write_rows` opens the array inside the task,
+and reading goes through :func:`rowfold.storage.inputs.read_rows`.
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from rowfold.errors import RunError
+from rowfold.storage.inputs import ArrayRef
+
+SCRATCH_GROUP = "scratch.zarr"
+
+
+def create_work_array(
+    folder: str | Path, name: str, rows: int, cols: int, dtype: Any, chunk_rows: int
+) -> ArrayRef:
+    """Create (or replace) a zero-filled scratch array and return its reference.
+
+    Parameters
+    ----------
+    folder : str or Path
+        The scratch folder; created when missing.
+    name : str
+        Array name inside the scratch group.
+    rows, cols : int
+        Shape of the array.
+    dtype : dtype-like
+        Element type.
+    chunk_rows : int
+        Rows per chunk; use the rows per block so each row block owns one chunk.
+
+    Returns
+    -------
+    ArrayRef
+        Absolute path of the scratch group and the array name.
+
+    Raises
+    ------
+    RunError
+        When the array cannot be created.
+    """
+    import zarr
+
+    target = Path(folder).resolve() / SCRATCH_GROUP
+    try:
+        target.parent.mkdir(parents=True, exist_ok=True)
+        group = zarr.open_group(str(target), mode="a", zarr_format=3)
+        group.create_array(
+            name,
+            shape=(rows, cols),
+            dtype=np.dtype(dtype),
+            chunks=(max(1, chunk_rows), max(1, cols)),
+            fill_value=0,
+            compressors=None,
+            overwrite=True,
+        )
+    except Exception as exc:
+        raise RunError(
+            f"{target}: cannot create the scratch array '{name}' "
+            f"({exc.__class__.__name__}: {exc}); check that the output folder is writable"
+        ) from None
+    return ArrayRef(str(target), name)
+
+
+def write_rows(ref: ArrayRef, start: int, block: np.ndarray, col_start: int = 0) -> None:
+    """Write ``block`` into rows ``start..`` and columns ``col_start..`` of a scratch array.
+
+    Opens the array in ``r+`` mode, writes, and keeps nothing open. A block with no rows
+    writes nothing.
+
+    Raises
+    ------
+    RunError
+        When the rows cannot be written.
+    """
+    rows, cols = block.shape
+    if rows == 0 or cols == 0:
+        return
+    import zarr
+
+    try:
+        array = zarr.open_array(store=ref.path, path=ref.name, mode="r+")
+        array[start : start + rows, col_start : col_start + cols] = block
+    except Exception as exc:
+        raise RunError(
+            f"{ref.describe()}: rows {start}..{start + rows - 1} cannot be written "
+            f"({exc.__class__.__name__}: {exc})"
+        ) from None
