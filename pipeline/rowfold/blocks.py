@@ -41,6 +41,10 @@ class BlockPlan:
         Working dtype (float64 or complex128).
     bounds : tuple of (start, stop)
         Row range of each block, in order, covering ``[0, m)``.
+    weights : ArrayRef or None
+        Per-row weights w >= 0; rows of A and B are scaled by sqrt(w) as they are read.
+    column_scale : tuple of float or None
+        Factors the columns of A are multiplied by as they are read (equilibration).
     """
 
     matrix: ArrayRef
@@ -51,6 +55,8 @@ class BlockPlan:
     rhs_1d: bool
     dtype: str
     bounds: tuple[tuple[int, int], ...]
+    weights: ArrayRef | None = None
+    column_scale: tuple[float, ...] | None = None
 
     @property
     def blocks(self) -> int:
@@ -135,12 +141,40 @@ def load_block(plan: BlockPlan, index: int) -> tuple[np.ndarray, np.ndarray | No
     start, stop = plan.bounds[index]
     a = np.asfortranarray(read_rows(plan.matrix, start, stop), dtype=plan.dtype)
     _require_finite(a, plan.matrix, index, start)
-    if plan.rhs is None:
-        return a, None
-    b = read_rows(plan.rhs, start, stop).astype(plan.dtype, copy=False)
-    b = b.reshape(stop - start, plan.rhs_cols)
-    _require_finite(b, plan.rhs, index, start)
+    b = None
+    if plan.rhs is not None:
+        b = read_rows(plan.rhs, start, stop).astype(plan.dtype, copy=False)
+        b = b.reshape(stop - start, plan.rhs_cols)
+        _require_finite(b, plan.rhs, index, start)
+    if plan.column_scale is not None:
+        a *= np.asarray(plan.column_scale, dtype=a.real.dtype)
+    if plan.weights is not None:
+        root = np.sqrt(load_weights(plan, index))
+        a *= root[:, None]
+        if b is not None:
+            b = b * root[:, None]
     return a, b
+
+
+def load_weights(plan: BlockPlan, index: int) -> np.ndarray:
+    """Read block ``index`` of the weights as float64, checking that each is finite and >= 0.
+
+    Raises
+    ------
+    InputError
+        Naming the row block and the first bad row.
+    """
+    assert plan.weights is not None
+    start, stop = plan.bounds[index]
+    w = np.asarray(read_rows(plan.weights, start, stop), dtype=np.float64).reshape(-1)
+    bad = np.flatnonzero(~(np.isfinite(w) & (w >= 0)))
+    if bad.size:
+        row = start + int(bad[0])
+        raise InputError(
+            f"{plan.weights.describe()}: row block {index} (rows {start}..{stop - 1}): weight "
+            f"{w[bad[0]]!r} at row {row}; weights must be finite and >= 0"
+        )
+    return w
 
 
 def _require_finite(block: np.ndarray, ref: ArrayRef, index: int, start: int) -> None:
@@ -157,7 +191,11 @@ def _require_finite(block: np.ndarray, ref: ArrayRef, index: int, start: int) ->
 
 
 def plan_blocks(
-    matrix: ArrayInfo, rhs: ArrayInfo | None, rows_per_block: int | None, native: bool = False
+    matrix: ArrayInfo,
+    rhs: ArrayInfo | None,
+    rows_per_block: int | None,
+    native: bool = False,
+    weights: ArrayInfo | None = None,
 ) -> BlockPlan:
     """Validate the input shapes and cut them into row blocks.
 
@@ -171,6 +209,8 @@ def plan_blocks(
         Rows per block; None chooses with :func:`choose_rows_per_block`.
     native : bool
         Keep single precision for float32/complex64 input (see :func:`working_dtype`).
+    weights : ArrayInfo or None
+        Per-row weights (1-D, length m, real).
 
     Raises
     ------
@@ -189,6 +229,7 @@ def plan_blocks(
         )
     dtype = working_dtype(matrix, native)
     rhs_cols, rhs_1d = _check_rhs(rhs, rows)
+    _check_weights(weights, rows)
     if rhs is not None:
         dtype = np.result_type(dtype, working_dtype(rhs, native))
     per_block = rows_per_block or choose_rows_per_block(
@@ -203,7 +244,21 @@ def plan_blocks(
         rhs_1d=rhs_1d,
         dtype=np.dtype(dtype).str,
         bounds=split_rows(rows, per_block),
+        weights=None if weights is None else weights.ref,
     )
+
+
+def _check_weights(weights: ArrayInfo | None, rows: int) -> None:
+    """Raise InputError unless the weights are a real 1-D array of length m."""
+    if weights is None:
+        return
+    where = weights.ref.describe()
+    if len(weights.shape) != 1 or weights.shape[0] != rows:
+        raise InputError(
+            f"{where}: expected {rows} weights (one per row of A), found shape {weights.shape}"
+        )
+    if np.dtype(weights.dtype).kind not in "fiu":
+        raise InputError(f"{where}: weights must be real numbers, found dtype {weights.dtype}")
 
 
 def _check_rhs(rhs: ArrayInfo | None, rows: int) -> tuple[int, bool]:

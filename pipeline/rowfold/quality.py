@@ -16,12 +16,14 @@ from typing import Any
 import numpy as np
 
 from rowfold import __version__
-from rowfold.blocks import BlockPlan, load_block
+from rowfold.blocks import BlockPlan, load_block, load_weights
 from rowfold.kernels import metrics
 from rowfold.methods._graph import sum_tree, task
 from rowfold.methods.base import Engine, Factorization
 from rowfold.solve import Solution, Statistics, numerical_rank, rank_tolerance
 from rowfold.spec import GateSpec, Job
+
+ROW_OUTPUTS = ("Q", "residuals", "leverage")
 
 
 def verify_block(
@@ -31,13 +33,27 @@ def verify_block(
     x: np.ndarray | None,
     q_kernel: Callable[[np.ndarray, Any], np.ndarray] | None,
     recipe: Any,
-    keep_q: bool,
-) -> tuple[metrics.Sums, np.ndarray | None]:
-    """Read one block, optionally form its Q, and return (sums, Q block or None)."""
+    outputs: tuple[str, ...],
+) -> tuple[metrics.Sums, dict[str, np.ndarray]]:
+    """Read one block; return its verification sums and the per-row outputs asked for.
+
+    Per-row outputs: ``Q`` (the block of Q), ``residuals`` (weighted residuals
+    ``sqrt(w) (b - A x)``) and ``leverage`` (``h_i = ||q_i||^2``, the diagonal of the hat
+    matrix).
+    """
     block, rhs = load_block(plan, index)
     q = None if q_kernel is None else q_kernel(block, recipe)
     sums = metrics.block_sums(block, rhs, x, R, q)
-    return sums, (q if keep_q else None)
+    if plan.weights is not None:
+        sums["rows_used"] = int(np.count_nonzero(load_weights(plan, index)))
+    rows: dict[str, np.ndarray] = {}
+    if "Q" in outputs and q is not None:
+        rows["Q"] = q
+    if "residuals" in outputs and rhs is not None and x is not None:
+        rows["residuals"] = rhs - block @ x
+    if "leverage" in outputs and q is not None:
+        rows["leverage"] = np.sum(np.abs(q) ** 2, axis=1)
+    return sums, rows
 
 
 def first_of(pair: tuple[Any, Any]) -> Any:
@@ -67,13 +83,17 @@ class Verification:
         return 1 if self.sums else 0
 
 
+RowSink = Callable[[int, dict[str, np.ndarray]], None]
+
+
 def verify(
     plan: BlockPlan,
     fact: Factorization,
     x: np.ndarray | None,
     engine: Engine,
     form_q: bool,
-    write_q: Callable[[int, np.ndarray], None] | None,
+    outputs: tuple[str, ...] = (),
+    sink: RowSink | None = None,
 ) -> Verification:
     """Run the verification pass.
 
@@ -86,11 +106,16 @@ def verify(
         Runs the tasks.
     form_q : bool
         Form Q blocks to measure orthogonality and the factorization residual.
-    write_q : callable or None
-        When given, called with (start row, Q block) for every block, in order; blocks
-        are streamed so only a few are in memory at once.
+    outputs : tuple of str
+        Per-row outputs to hand to ``sink`` (any of :data:`ROW_OUTPUTS`).
+    sink : callable or None
+        Called with (start row, {name: rows}) for every block, in order; blocks are
+        streamed so only a few are in memory at once.
     """
-    q_kernel = fact.q_kernel if (form_q or write_q) else None
+    needs_q = form_q or "Q" in outputs or "leverage" in outputs
+    q_kernel = fact.q_kernel if needs_q else None
+    if q_kernel is None and x is None:
+        return Verification({}, False)
     tasks = [
         task(
             verify_block,
@@ -100,23 +125,106 @@ def verify(
             x,
             q_kernel,
             fact.q_recipes[i] if q_kernel else None,
-            write_q is not None,
+            outputs if sink else (),
         )
         for i in range(plan.blocks)
     ]
-    if q_kernel is None and x is None:
-        return Verification({}, False)
-    if write_q is None:
+    if sink is None or not outputs:
         (total,) = engine.compute(
             [sum_tree([task(first_of, t) for t in tasks], metrics.add_sums)], "verify"
         )
         return Verification(total, q_kernel is not None)
     total_sums: metrics.Sums | None = None
-    for index, (sums, q) in enumerate(engine.stream(tasks, "verify and write Q")):
-        write_q(plan.bounds[index][0], q)
+    for index, (sums, rows) in enumerate(engine.stream(tasks, "verify and write rows")):
+        sink(plan.bounds[index][0], rows)
         total_sums = sums if total_sums is None else metrics.add_sums(total_sums, sums)
     assert total_sums is not None
-    return Verification(total_sums, True)
+    return Verification(total_sums, q_kernel is not None)
+
+
+def column_norm_block(plan: BlockPlan, index: int) -> np.ndarray:
+    """Squared column norms of one (weighted) block."""
+    block, _ = load_block(plan, index)
+    return np.sum(np.abs(block) ** 2, axis=0)
+
+
+def column_norms(plan: BlockPlan, engine: Engine) -> np.ndarray:
+    """Column norms of the (weighted) matrix, in one pass (for ``solve.scale_columns``)."""
+    tasks = [task(column_norm_block, plan, i) for i in range(plan.blocks)]
+    (total,) = engine.compute([sum_tree(tasks, metrics.add_arrays)], "column norms")
+    return np.sqrt(np.asarray(total))
+
+
+WORST_ROWS = 20
+
+
+@dataclass(frozen=True)
+class Screening:
+    """Standardized-residual screening (survey practice: data snooping).
+
+    Attributes
+    ----------
+    flag_above : float
+        Threshold on |standardized residual|.
+    flagged : list of int
+        Count of flagged rows per right-hand side.
+    worst : list of dict
+        The largest |standardized residuals|: row, rhs column, residual, leverage, value.
+    """
+
+    flag_above: float
+    flagged: list[int]
+    worst: list[dict[str, Any]]
+
+
+def standardized(residuals: np.ndarray, leverage: np.ndarray, sigma: np.ndarray) -> np.ndarray:
+    """``r_i / (sigma sqrt(1 - h_i))``; NaN where ``1 - h_i`` is not positive."""
+    spare = 1.0 - leverage
+    safe = np.where(spare > 0, spare, np.nan)
+    return residuals / (np.sqrt(safe)[:, None] * np.where(sigma > 0, sigma, np.nan)[None, :])
+
+
+def screen_residuals(
+    read: Callable[[str, int, int], np.ndarray],
+    write: Callable[[int, np.ndarray], None],
+    plan: BlockPlan,
+    sigma: np.ndarray,
+    flag_above: float,
+) -> Screening:
+    """Compute standardized residuals block by block from stored residuals and leverages.
+
+    ``read(name, start, stop)`` reads rows of a stored array; ``write(start, rows)``
+    stores the standardized residuals. Memory holds one block at a time.
+    """
+    flagged = np.zeros(plan.rhs_cols, dtype=int)
+    worst: list[tuple[float, int, int, float, float]] = []
+    for start, stop in plan.bounds:
+        r = read("residuals", start, stop).reshape(stop - start, plan.rhs_cols)
+        h = read("leverage", start, stop)
+        z = standardized(r, h, sigma)
+        write(start, z)
+        size = np.abs(z)
+        flagged += np.sum(size > flag_above, axis=0)
+        top = np.argsort(np.nan_to_num(size, nan=-1.0), axis=None)[::-1][:WORST_ROWS]
+        for flat in top:
+            row, col = divmod(int(flat), plan.rhs_cols)
+            if np.isfinite(size[row, col]):
+                worst.append((float(size[row, col]), start + row, col, r[row, col], h[row]))
+        worst = sorted(worst, reverse=True)[:WORST_ROWS]
+    return Screening(
+        flag_above,
+        [int(v) for v in flagged],
+        [
+            {
+                "row": row,
+                "rhs": col,
+                "residual": float(np.real(res)),
+                "leverage": float(lev),
+                "standardized": value,
+            }
+            for value, row, col, res, lev in worst
+        ],
+    )
 
 
 # Published loss-of-orthogonality bounds, as (formula, source); see CHECKS.md. "10 n u"
@@ -138,7 +246,10 @@ BOUNDS: dict[str, tuple[str, str]] = {
     ),
     "rcholqr": ("10 n u", "O(u): Higgins, Szyld, Boman, Yamazaki 2023 (arXiv 2309.05868)"),
     "bcgs2": ("10 n u", "O(u): Barlow & Smoktunowicz, Numer. Math. 123 (2013)"),
-    "bmgs+reorthogonalize": ("10 n u", "O(u) with reorthogonalization (common practice)"),
+    "bmgs+reorthogonalize": (
+        "10 n u",
+        "O(u) with a second projection: Barlow & Smoktunowicz, Numer. Math. 123 (2013)",
+    ),
     "bmgs": (
         "10 n u kappa",
         "O(u kappa): Jalby & Philippe, SISC 12(5) 1991 (constant from memory)",
@@ -286,7 +397,9 @@ def assemble_report(
     report["gates"] = {
         name: {"limit": g.limit, "value": g.value, "held": g.held} for name, g in gates.items()
     }
+    warnings = report["warnings"] + list(extra.get("warnings", []))
     report.update(extra)
+    report["warnings"] = warnings
     cleaned: dict[str, Any] = _clean(report)
     return cleaned
 

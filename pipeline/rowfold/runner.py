@@ -7,9 +7,9 @@ whole result is ready; the result store and its reports are committed together.
 from __future__ import annotations
 
 import time
-from collections.abc import Callable, Iterator
+from collections.abc import Iterator
 from contextlib import ExitStack, contextmanager
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from pathlib import Path
 from typing import Any
 
@@ -19,9 +19,11 @@ from rowfold import __version__, quality, storage
 from rowfold.blocks import BlockPlan, plan_blocks
 from rowfold.cluster import InlineEngine, Progress, open_engine
 from rowfold.errors import EXIT_GATE_FAILED, EXIT_OK
+from rowfold.kernels import metrics
 from rowfold.methods import get_method
 from rowfold.methods._graph import task
 from rowfold.methods.base import Context, Engine, Factorization
+from rowfold.refine import refine
 from rowfold.report import CAUTION, render_html, to_json
 from rowfold.solve import Solution, Statistics, solve, statistics
 from rowfold.spec import Job, load_job
@@ -70,8 +72,11 @@ def plan_job(job: Job) -> BlockPlan:
     rhs = None
     if job.input.rhs is not None:
         rhs = storage.describe_array(storage.ArrayRef(path, job.input.rhs))
+    weights = None
+    if job.input.weights is not None:
+        weights = storage.describe_array(storage.ArrayRef(path, job.input.weights))
     native = job.method.precision == "native"
-    return plan_blocks(matrix, rhs, job.input.rows_per_block, native)
+    return plan_blocks(matrix, rhs, job.input.rows_per_block, native, weights)
 
 
 def check_job(job: Job) -> dict[str, Any]:
@@ -140,40 +145,56 @@ def _engine(job: Job, progress: Progress, inline: bool) -> Iterator[Any]:
 def _run_on(job: Job, plan: BlockPlan, ctx: Context, clock: _Clock, started: float) -> RunOutcome:
     """The part of a run that needs the engine."""
     engine = ctx.engine
+    extra: dict[str, Any] = {"warnings": []}
+    norms = None
+    if job.solve.scale_columns:
+        with clock.stage("scale"):
+            norms = quality.column_norms(plan, engine)
+            plan = replace(plan, column_scale=tuple(1.0 / np.where(norms > 0, norms, 1.0)))
     with clock.stage("factor"):
         fact = get_method(job.method.name)(plan, job.method, ctx)
     with clock.stage("solve"):
         solution = None if fact.qhb is None else solve(fact.R, fact.qhb, job.solve.rank_tolerance)
+    refine_passes = 0
+    if job.solve.refine and solution is not None:
+        with clock.stage("refine"):
+            solution, refine_passes = _refined(job, plan, fact, solution, ctx, extra)
     with storage.ResultWriter(job.output.path) as writer:
         with clock.stage("verify"):
-            write_q = _q_writer(writer, plan) if job.output.q else None
+            outputs = _row_outputs(job, plan)
+            sink = _row_sink(writer, plan, outputs) if outputs else None
             x = None if solution is None else solution.x
-            check = quality.verify(plan, fact, x, engine, wants_q(job), write_q)
+            check = quality.verify(plan, fact, x, engine, wants_q(job), outputs, sink)
         stats = None
         if solution is not None:
-            stats = statistics(solution, check.sums["res2"], plan.rows)
-        sums = {**fact.sums, **check.sums}
-        fingerprints = _fingerprints(job, plan, engine)
+            used = int(check.sums.get("rows_used", plan.rows))
+            stats = statistics(solution, check.sums["res2"], used)
+        if stats is not None and job.solve.residuals:
+            with clock.stage("screen"):
+                extra["residual_screening"] = _screen(writer, plan, stats, job)
+        if norms is not None:
+            extra["column_scaling"] = _scaling_figures(fact.R, norms)
         report = quality.assemble_report(
             job=job,
             plan=plan,
             fact=fact,
             solution=solution,
             stats=stats,
-            sums=sums,
+            sums={**fact.sums, **check.sums},
             formed_q=check.formed_q,
-            passes=fact.passes + check.passes,
+            passes=fact.passes + check.passes + refine_passes + (1 if norms is not None else 0),
             seconds=clock.seconds,
             peak_memory=engine.peak_memory_bytes(),
             extra={
-                "inputs": fingerprints,
+                **extra,
+                "inputs": _fingerprints(job, plan, engine),
                 "started": started,
                 "finished": time.time(),
                 "caution": CAUTION,
             },
         )
         with clock.stage("write"):
-            _write_store(writer, job, plan, fact, solution, stats, report)
+            _write_store(writer, job, plan, fact, solution, stats, report, norms)
             json_path, html_path = storage.report_paths(job.output.path)
             writer.add_file(json_path, to_json(report))
             writer.add_file(html_path, render_html(report))
@@ -182,15 +203,88 @@ def _run_on(job: Job, plan: BlockPlan, ctx: Context, clock: _Clock, started: flo
     return RunOutcome(EXIT_GATE_FAILED if failed else EXIT_OK, report, job.output.path)
 
 
-def _q_writer(writer: storage.ResultWriter, plan: BlockPlan) -> Callable[[int, np.ndarray], None]:
-    """Create the Q array in the store and return a function that fills its rows."""
+def _refined(
+    job: Job,
+    plan: BlockPlan,
+    fact: Factorization,
+    solution: Solution,
+    ctx: Context,
+    extra: dict[str, Any],
+) -> tuple[Solution, int]:
+    """Refine x when the problem has full rank; record what happened in ``extra``."""
+    if solution.rank < plan.cols:
+        extra["warnings"].append("solve.refine skipped: the problem is rank deficient")
+        return solution, 0
+    outcome = refine(plan, fact, solution.x, ctx.engine, ctx.workdir, job.solve.refine_iterations)
+    extra["refinement"] = {
+        "iterations": outcome.iterations,
+        "last_correction": outcome.last_correction,
+        "corrections": outcome.history,
+        "passes": outcome.passes,
+    }
+    return replace(solution, x=outcome.x), outcome.passes
+
+
+def _row_outputs(job: Job, plan: BlockPlan) -> tuple[str, ...]:
+    """Per-row arrays the verification pass must hand over for writing."""
+    names: list[str] = []
+    if job.output.q:
+        names.append("Q")
+    if job.solve.residuals and plan.rhs is not None:
+        names += ["residuals", "leverage"]
+    return tuple(names)
+
+
+def _row_sink(
+    writer: storage.ResultWriter, plan: BlockPlan, outputs: tuple[str, ...]
+) -> quality.RowSink:
+    """Create the per-row arrays in the store; return a function that fills their rows."""
     chunk = plan.bounds[0][1] - plan.bounds[0][0]
-    writer.create("Q", (plan.rows, plan.cols), np.dtype(plan.dtype), chunk)
+    dtype = np.dtype(plan.dtype)
+    real = np.zeros(0, dtype=dtype).real.dtype
+    shapes = {
+        "Q": (plan.rows, plan.cols),
+        "residuals": (plan.rows, plan.rhs_cols),
+        "leverage": (plan.rows,),
+    }
+    for name in outputs:
+        writer.create(name, shapes[name], real if name == "leverage" else dtype, chunk)
 
-    def write(start: int, block: np.ndarray) -> None:
-        writer.write_rows("Q", start, block)
+    def sink(start: int, rows: dict[str, np.ndarray]) -> None:
+        for name, block in rows.items():
+            writer.write_rows(name, start, block)
 
-    return write
+    return sink
+
+
+def _screen(
+    writer: storage.ResultWriter, plan: BlockPlan, stats: Statistics, job: Job
+) -> dict[str, Any]:
+    """Standardized residuals into the store, and the screening summary for the report."""
+    chunk = plan.bounds[0][1] - plan.bounds[0][0]
+    writer.create("standardized_residuals", (plan.rows, plan.rhs_cols), np.float64, chunk)
+
+    def write(start: int, rows: np.ndarray) -> None:
+        writer.write_rows("standardized_residuals", start, np.real(rows))
+
+    screening = quality.screen_residuals(
+        writer.read_rows, write, plan, stats.residual_std, job.solve.flag_above
+    )
+    return {
+        "flag_above": screening.flag_above,
+        "flagged": screening.flagged[0] if plan.rhs_1d else screening.flagged,
+        "worst": screening.worst,
+    }
+
+
+def _scaling_figures(R_scaled: np.ndarray, norms: np.ndarray) -> dict[str, Any]:
+    """Condition numbers with and without column equilibration."""
+    unscaled = R_scaled * norms[None, :]
+    return {
+        "column_norms": norms,
+        "r_condition_equilibrated": metrics.condition_from(metrics.singular_values(R_scaled)),
+        "r_condition_unscaled": metrics.condition_from(metrics.singular_values(unscaled)),
+    }
 
 
 def _fingerprints(job: Job, plan: BlockPlan, engine: Engine) -> dict[str, Any]:
@@ -219,13 +313,20 @@ def _write_store(
     solution: Solution | None,
     stats: Statistics | None,
     report: dict[str, Any],
+    norms: np.ndarray | None,
 ) -> None:
-    """Write R, x, x_stderr, qhb and the store attributes."""
-    writer.put("R", fact.R)
+    """Write R, x, x_stderr, qhb (unscaled when columns were equilibrated) and attributes."""
+    real = np.zeros(0, dtype=fact.R.dtype).real.dtype
+    scale = np.ones(plan.cols, dtype=real)
+    if norms is not None:
+        scale = np.where(norms > 0, norms, 1.0).astype(real)
+    writer.put("R", fact.R * scale[None, :])
     if solution is not None and stats is not None and fact.qhb is not None:
-        writer.put("x", _shaped(plan, solution.x))
-        writer.put("x_stderr", _shaped(plan, stats.x_stderr))
+        writer.put("x", _shaped(plan, solution.x / scale[:, None]))
+        writer.put("x_stderr", _shaped(plan, stats.x_stderr / scale[:, None]))
         writer.put("qhb", _shaped(plan, fact.qhb))
+        if job.solve.covariance:
+            writer.put("x_covariance", _covariance(plan, solution, stats, scale))
     writer.set_attrs(
         {
             "rowfold_version": __version__,
@@ -236,6 +337,16 @@ def _write_store(
             "inputs": report["inputs"],
         }
     )
+
+
+def _covariance(
+    plan: BlockPlan, solution: Solution, stats: Statistics, scale: np.ndarray
+) -> np.ndarray:
+    """``sigma_j^2 (R^H R)^+`` per right-hand side: n x n, or k x n x n for a 2-D rhs."""
+    w = solution.inverse_rows / scale[:, None]
+    unit = w @ w.conj().T
+    per_rhs = np.stack([s**2 * unit for s in stats.residual_std])
+    return per_rhs[0] if plan.rhs_1d else per_rhs
 
 
 def inspect_path(path: str | Path) -> dict[str, Any]:

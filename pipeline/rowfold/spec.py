@@ -49,7 +49,7 @@ class InputSpec:
     rhs : str or None
         Dataset of the right-hand sides, 1-D (m) or 2-D (m x k).
     weights : str or None
-        Dataset of per-row weights (reserved; rejected until weighted solves exist).
+        Dataset of per-row weights w >= 0 (weighted least squares).
     rows_per_block : int or None
         Rows per block; None means choose automatically.
     """
@@ -124,14 +124,29 @@ class SolveSpec:
     Attributes
     ----------
     refine : bool
-        Iterative refinement (reserved; rejected until it exists).
+        Augmented-system iterative refinement with extended-precision residuals.
+    refine_iterations : int
+        Most refinement corrections to compute.
     rank_tolerance : float or None
         Relative cut-off on the singular values of the column-equilibrated R;
         None means ``10 * n * eps``.
+    covariance : bool
+        Also write the full covariance of x (``x_covariance``).
+    residuals : bool
+        Write the residuals, leverages and standardized residuals, and screen them.
+    flag_above : float
+        Standardized residuals larger than this in magnitude are flagged.
+    scale_columns : bool
+        Equilibrate the columns of A to unit norm before factoring (results unscaled).
     """
 
     refine: bool = False
+    refine_iterations: int = 10
     rank_tolerance: float | None = None
+    covariance: bool = False
+    residuals: bool = False
+    flag_above: float = 3.0
+    scale_columns: bool = False
 
 
 @dataclass(frozen=True, slots=True)
@@ -405,9 +420,8 @@ DATA_SUFFIXES = (".h5", ".hdf5", ".zarr")
 
 def _parse_input(doc: _Doc, base: Path) -> InputSpec:
     section = _Section(doc, ("input",), ("path", "matrix", "rhs", "weights", "rows_per_block"))
-    if section.get("weights", _text) is not None:
-        raise doc.fail(("input", "weights"), "weighted least squares is not available yet")
     return InputSpec(
+        weights=section.get("weights", _text),
         path=section.require("path", _suffixed_path(DATA_SUFFIXES, base)),
         matrix=section.require("matrix", _text),
         rhs=section.get("rhs", _text),
@@ -454,10 +468,25 @@ def _parse_output(doc: _Doc, base: Path) -> OutputSpec:
 
 
 def _parse_solve(doc: _Doc) -> SolveSpec:
-    section = _Section(doc, ("solve",), ("refine", "rank_tolerance"))
-    if section.get("refine", _flag, False):
-        raise doc.fail(("solve", "refine"), "iterative refinement is not available yet")
-    return SolveSpec(rank_tolerance=section.get("rank_tolerance", _positive))
+    keys = (
+        "refine",
+        "refine_iterations",
+        "rank_tolerance",
+        "covariance",
+        "residuals",
+        "flag_above",
+        "scale_columns",
+    )
+    section = _Section(doc, ("solve",), keys)
+    return SolveSpec(
+        refine=section.get("refine", _flag, False),
+        refine_iterations=section.get("refine_iterations", _count, 10),
+        rank_tolerance=section.get("rank_tolerance", _positive),
+        covariance=section.get("covariance", _flag, False),
+        residuals=section.get("residuals", _flag, False),
+        flag_above=section.get("flag_above", _positive, 3.0),
+        scale_columns=section.get("scale_columns", _flag, False),
+    )
 
 
 def _parse_gates(doc: _Doc) -> GateSpec:

@@ -58,6 +58,14 @@ def add_sums(*parts: Sums) -> Sums:
     return total
 
 
+def add_arrays(*parts: np.ndarray) -> np.ndarray:
+    """Add arrays (a tree-sum combiner)."""
+    total = np.array(parts[0], copy=True)
+    for part in parts[1:]:
+        total = total + part
+    return total
+
+
 def orthogonality_loss(qhq: np.ndarray) -> float:
     """Return ``||I - Q^H Q||_F``."""
     return float(np.linalg.norm(np.eye(qhq.shape[0]) - qhq))

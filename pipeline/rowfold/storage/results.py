@@ -157,6 +157,13 @@ class ResultWriter:
         else:
             self._handle[name][start : start + block.shape[0]] = block
 
+    def read_rows(self, name: str, start: int, stop: int) -> np.ndarray:
+        """Read back rows of an array written earlier in this store."""
+        if self.is_hdf5:
+            with _HDF5_LOCK:
+                return np.asarray(self._handle[name][start:stop])
+        return np.asarray(self._handle[name][start:stop])
+
     def put(self, name: str, array: np.ndarray) -> None:
         """Write a whole (small) array."""
         array = np.asarray(array)
