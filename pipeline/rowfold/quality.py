@@ -155,6 +155,16 @@ def column_norms(plan: BlockPlan, engine: Engine) -> np.ndarray:
     return np.sqrt(np.asarray(total))
 
 
+def equilibration(norms: np.ndarray) -> np.ndarray:
+    """Column multipliers that bring each column norm into [2^-0.5, 2^0.5).
+
+    Powers of two, so scaling A is exact and adds no rounding error (the same reason
+    LAPACK's equilibration offers radix-power scaling); zero columns keep multiplier 1.
+    """
+    safe = np.where(norms > 0, norms, 1.0)
+    return np.asarray(2.0 ** -np.round(np.log2(safe)))
+
+
 WORST_ROWS = 20
 
 

@@ -98,8 +98,10 @@ def check_job(job: Job) -> dict[str, Any]:
 
 
 def wants_q(job: Job) -> bool:
-    """Q is formed when it is written, or when a gate needs its figures."""
-    return job.output.q or job.gates.orthogonality is not None or job.gates.residual is not None
+    """Q is formed when it is written, when a gate needs its figures, or when refinement or
+    leverages need its blocks."""
+    gates = job.gates.orthogonality is not None or job.gates.residual is not None
+    return job.output.q or gates or job.solve.refine or job.solve.residuals
 
 
 def run_job(job: Job, progress: Progress | None = None, inline: bool = False) -> RunOutcome:
@@ -146,11 +148,11 @@ def _run_on(job: Job, plan: BlockPlan, ctx: Context, clock: _Clock, started: flo
     """The part of a run that needs the engine."""
     engine = ctx.engine
     extra: dict[str, Any] = {"warnings": []}
-    norms = None
+    scale = None
     if job.solve.scale_columns:
         with clock.stage("scale"):
-            norms = quality.column_norms(plan, engine)
-            plan = replace(plan, column_scale=tuple(1.0 / np.where(norms > 0, norms, 1.0)))
+            scale = quality.equilibration(quality.column_norms(plan, engine))
+            plan = replace(plan, column_scale=tuple(scale))
     with clock.stage("factor"):
         fact = get_method(job.method.name)(plan, job.method, ctx)
     with clock.stage("solve"):
@@ -172,8 +174,8 @@ def _run_on(job: Job, plan: BlockPlan, ctx: Context, clock: _Clock, started: flo
         if stats is not None and job.solve.residuals:
             with clock.stage("screen"):
                 extra["residual_screening"] = _screen(writer, plan, stats, job)
-        if norms is not None:
-            extra["column_scaling"] = _scaling_figures(fact.R, norms)
+        if scale is not None:
+            extra["column_scaling"] = _scaling_figures(fact.R, scale)
         report = quality.assemble_report(
             job=job,
             plan=plan,
@@ -182,7 +184,7 @@ def _run_on(job: Job, plan: BlockPlan, ctx: Context, clock: _Clock, started: flo
             stats=stats,
             sums={**fact.sums, **check.sums},
             formed_q=check.formed_q,
-            passes=fact.passes + check.passes + refine_passes + (1 if norms is not None else 0),
+            passes=fact.passes + check.passes + refine_passes + (1 if scale is not None else 0),
             seconds=clock.seconds,
             peak_memory=engine.peak_memory_bytes(),
             extra={
@@ -194,7 +196,7 @@ def _run_on(job: Job, plan: BlockPlan, ctx: Context, clock: _Clock, started: flo
             },
         )
         with clock.stage("write"):
-            _write_store(writer, job, plan, fact, solution, stats, report, norms)
+            _write_store(writer, job, plan, fact, solution, stats, report, scale)
             json_path, html_path = storage.report_paths(job.output.path)
             writer.add_file(json_path, to_json(report))
             writer.add_file(html_path, render_html(report))
@@ -277,11 +279,11 @@ def _screen(
     }
 
 
-def _scaling_figures(R_scaled: np.ndarray, norms: np.ndarray) -> dict[str, Any]:
+def _scaling_figures(R_scaled: np.ndarray, scale: np.ndarray) -> dict[str, Any]:
     """Condition numbers with and without column equilibration."""
-    unscaled = R_scaled * norms[None, :]
+    unscaled = R_scaled / scale[None, :]
     return {
-        "column_norms": norms,
+        "column_multipliers": scale,
         "r_condition_equilibrated": metrics.condition_from(metrics.singular_values(R_scaled)),
         "r_condition_unscaled": metrics.condition_from(metrics.singular_values(unscaled)),
     }
@@ -313,20 +315,21 @@ def _write_store(
     solution: Solution | None,
     stats: Statistics | None,
     report: dict[str, Any],
-    norms: np.ndarray | None,
+    scale: np.ndarray | None,
 ) -> None:
-    """Write R, x, x_stderr, qhb (unscaled when columns were equilibrated) and attributes."""
+    """Write R, x, x_stderr, qhb and the attributes, undoing any column equilibration.
+
+    With column multipliers s (A_s = A diag(s)): R = R_s diag(1/s), x = diag(s) x_s.
+    """
     real = np.zeros(0, dtype=fact.R.dtype).real.dtype
-    scale = np.ones(plan.cols, dtype=real)
-    if norms is not None:
-        scale = np.where(norms > 0, norms, 1.0).astype(real)
-    writer.put("R", fact.R * scale[None, :])
+    s = np.ones(plan.cols, dtype=real) if scale is None else scale.astype(real)
+    writer.put("R", fact.R / s[None, :])
     if solution is not None and stats is not None and fact.qhb is not None:
-        writer.put("x", _shaped(plan, solution.x / scale[:, None]))
-        writer.put("x_stderr", _shaped(plan, stats.x_stderr / scale[:, None]))
+        writer.put("x", _shaped(plan, solution.x * s[:, None]))
+        writer.put("x_stderr", _shaped(plan, stats.x_stderr * s[:, None]))
         writer.put("qhb", _shaped(plan, fact.qhb))
         if job.solve.covariance:
-            writer.put("x_covariance", _covariance(plan, solution, stats, scale))
+            writer.put("x_covariance", _covariance(plan, solution, stats, s))
     writer.set_attrs(
         {
             "rowfold_version": __version__,
@@ -343,7 +346,7 @@ def _covariance(
     plan: BlockPlan, solution: Solution, stats: Statistics, scale: np.ndarray
 ) -> np.ndarray:
     """``sigma_j^2 (R^H R)^+`` per right-hand side: n x n, or k x n x n for a 2-D rhs."""
-    w = solution.inverse_rows / scale[:, None]
+    w = solution.inverse_rows * scale[:, None]
     unit = w @ w.conj().T
     per_rhs = np.stack([s**2 * unit for s in stats.residual_std])
     return per_rhs[0] if plan.rhs_1d else per_rhs
