@@ -29,7 +29,9 @@ def run(job: Path) -> runner.RunOutcome:
 
 def stored(outcome: runner.RunOutcome) -> dict[str, np.ndarray]:
     with h5py.File(outcome.output, "r") as handle:
-        return {name: handle[name][...] for name in handle}
+        return {
+            name: handle[name][...] for name in handle if isinstance(handle[name], h5py.Dataset)
+        }
 
 
 def weighted_job(folder: Path, A: np.ndarray, b: np.ndarray, w: np.ndarray, **sections) -> Path:

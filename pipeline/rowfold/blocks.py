@@ -3,17 +3,25 @@
 A :class:`BlockPlan` is small, frozen and picklable: it holds references to the arrays
 (path + dataset name), the row bounds of each block and the working dtype. Tasks call
 :func:`load_block` with the plan and a block index; the worker opens the file itself.
+
+The matrix is a dense dataset or a CSR group (``plan.sparse``). :func:`load_block` gives a
+dense Fortran block either way (a CSR block is densified, one block at a time);
+:func:`load_sparse_block` gives a CSR block for methods with a sparse-aware pass. Both
+apply the same checks, column selection (``input.fixed_columns``), column scaling and
+row weights, so a densified sparse block equals the dense block bit for bit.
 """
 
 from __future__ import annotations
 
 from dataclasses import dataclass
-from typing import Protocol
+from typing import Any, Protocol
 
 import numpy as np
+import scipy.sparse as sp
 
 from rowfold.errors import InputError
-from rowfold.storage import ArrayInfo, ArrayRef, read_rows
+from rowfold.kernels import sparse as sparse_kernels
+from rowfold.storage import ArrayInfo, ArrayRef, CsrInfo, read_csr_rows, read_rows
 
 # Target bytes of A per row block for rows_per_block: auto (see choose_rows_per_block).
 AUTO_BLOCK_BYTES = 32 * 2**20
@@ -45,6 +53,11 @@ class BlockPlan:
         Per-row weights w >= 0; rows of A and B are scaled by sqrt(w) as they are read.
     column_scale : tuple of float or None
         Factors the columns of A are multiplied by as they are read (equilibration).
+    sparse : bool
+        True when ``matrix`` is a CSR group (see :mod:`rowfold.storage.csr`).
+    fixed_columns : tuple of int
+        Columns of the input left out as they are read (``input.fixed_columns``, held
+        fixed at zero); ``cols`` counts the kept ones, in input order.
     """
 
     matrix: ArrayRef
@@ -57,15 +70,31 @@ class BlockPlan:
     bounds: tuple[tuple[int, int], ...]
     weights: ArrayRef | None = None
     column_scale: tuple[float, ...] | None = None
+    sparse: bool = False
+    fixed_columns: tuple[int, ...] = ()
 
     @property
     def blocks(self) -> int:
         """Number of row blocks."""
         return len(self.bounds)
 
+    @property
+    def input_cols(self) -> int:
+        """Columns of the matrix as stored (kept plus fixed)."""
+        return self.cols + len(self.fixed_columns)
+
+    @property
+    def kept_columns(self) -> np.ndarray:
+        """Input column numbers of the kept columns, ascending."""
+        return np.setdiff1d(np.arange(self.input_cols), np.asarray(self.fixed_columns, int))
+
     def load(self, index: int) -> tuple[np.ndarray, np.ndarray | None]:
         """Read block ``index`` of A and of the rhs (see :func:`load_block`)."""
         return load_block(self, index)
+
+    def load_sparse(self, index: int) -> tuple[sp.csr_matrix, np.ndarray | None]:
+        """Read block ``index`` of a CSR matrix and of the rhs (see :func:`load_sparse_block`)."""
+        return load_sparse_block(self, index)
 
 
 class BlockSource(Protocol):
@@ -86,7 +115,7 @@ class BlockSource(Protocol):
         ...
 
 
-def working_dtype(info: ArrayInfo, native: bool = False) -> np.dtype:
+def working_dtype(info: ArrayInfo | CsrInfo, native: bool = False) -> np.dtype:
     """Return the dtype rowfold computes in for an input dtype.
 
     float64/complex128 by default; with ``native`` (``method.precision: native``),
@@ -133,19 +162,23 @@ def split_rows(rows: int, per_block: int) -> tuple[tuple[int, int], ...]:
 def load_block(plan: BlockPlan, index: int) -> tuple[np.ndarray, np.ndarray | None]:
     """Read block ``index`` of A (and of the rhs) in the working dtype, Fortran order.
 
+    A CSR matrix is read as a CSR block (:func:`load_sparse_block`) and densified.
+
     Raises
     ------
     InputError
         When the block holds NaN or Inf; the message names the row block and the row.
+        For a CSR matrix also when the block's arrays are inconsistent.
     """
+    if plan.sparse:
+        block, b = load_sparse_block(plan, index)
+        return block.toarray(order="F"), b
     start, stop = plan.bounds[index]
     a = np.asfortranarray(read_rows(plan.matrix, start, stop), dtype=plan.dtype)
     _require_finite(a, plan.matrix, index, start)
-    b = None
-    if plan.rhs is not None:
-        b = read_rows(plan.rhs, start, stop).astype(plan.dtype, copy=False)
-        b = b.reshape(stop - start, plan.rhs_cols)
-        _require_finite(b, plan.rhs, index, start)
+    b = _load_rhs(plan, index)
+    if plan.fixed_columns:
+        a = np.asfortranarray(a[:, plan.kept_columns])
     if plan.column_scale is not None:
         a *= np.asarray(plan.column_scale, dtype=a.real.dtype)
     if plan.weights is not None:
@@ -154,6 +187,80 @@ def load_block(plan: BlockPlan, index: int) -> tuple[np.ndarray, np.ndarray | No
         if b is not None:
             b = b * root[:, None]
     return a, b
+
+
+def load_sparse_block(plan: BlockPlan, index: int) -> tuple[sp.csr_matrix, np.ndarray | None]:
+    """Read block ``index`` of a CSR matrix (and of the rhs) in the working dtype.
+
+    The block is checked (``indptr`` non-decreasing, lengths that agree, column numbers
+    in range, values finite), restricted to the kept columns, scaled and weighted like
+    :func:`load_block`, and put in canonical form (sorted column numbers, no duplicates,
+    no stored zeros).
+
+    Raises
+    ------
+    InputError
+        Naming the row block and the first bad row.
+    """
+    start, stop = plan.bounds[index]
+    data, indices, indptr = read_csr_rows(plan.matrix, start, stop)
+    _check_csr_block(plan, index, data, indices, indptr)
+    block = sparse_kernels.csr_block(data, indices, indptr, plan.input_cols, plan.dtype)
+    b = _load_rhs(plan, index)
+    if plan.fixed_columns:
+        block = sparse_kernels.keep_columns(block, plan.kept_columns)
+    columns = None
+    if plan.column_scale is not None:
+        columns = np.asarray(plan.column_scale, dtype=block.data.real.dtype)
+    root = None
+    if plan.weights is not None:
+        root = np.sqrt(load_weights(plan, index))
+        if b is not None:
+            b = b * root[:, None]
+    return sparse_kernels.canonical(sparse_kernels.scale(block, root, columns)), b
+
+
+def _load_rhs(plan: BlockPlan, index: int) -> np.ndarray | None:
+    """Read block ``index`` of the rhs as ``rows x k`` in the working dtype (unweighted)."""
+    if plan.rhs is None:
+        return None
+    start, stop = plan.bounds[index]
+    b = read_rows(plan.rhs, start, stop).astype(plan.dtype, copy=False)
+    b = b.reshape(stop - start, plan.rhs_cols)
+    _require_finite(b, plan.rhs, index, start)
+    return b
+
+
+def _check_csr_block(
+    plan: BlockPlan, index: int, data: np.ndarray, indices: np.ndarray, indptr: np.ndarray
+) -> None:
+    """Raise InputError unless one CSR row block is consistent and finite."""
+    start, stop = plan.bounds[index]
+    where = f"{plan.matrix.describe()}: row block {index} (rows {start}..{stop - 1})"
+    steps = np.diff(indptr)
+    if steps.size and steps.min() < 0:
+        at = int(np.flatnonzero(steps < 0)[0])
+        raise InputError(
+            f"{where}: indptr decreases at row {start + at} ({int(indptr[at])} then "
+            f"{int(indptr[at + 1])} relative to the block); indptr must be non-decreasing"
+        )
+    expected = int(indptr[-1]) if indptr.size else 0
+    if data.shape[0] != expected or indices.shape[0] != expected:
+        raise InputError(
+            f"{where}: indptr gives {expected} stored values but data and indices hold "
+            f"{data.shape[0]} and {indices.shape[0]} there; the CSR arrays disagree"
+        )
+    bad = np.flatnonzero((indices < 0) | (indices >= plan.input_cols))
+    if bad.size:
+        row = start + int(np.searchsorted(indptr, bad[0], side="right")) - 1
+        raise InputError(
+            f"{where}: column index {int(indices[bad[0]])} at row {row} is outside "
+            f"0..{plan.input_cols - 1}; the matrix has {plan.input_cols} columns"
+        )
+    if np.dtype(data.dtype).kind in "fc" and not np.isfinite(data).all():
+        first = int(np.flatnonzero(~np.isfinite(data))[0])
+        row = start + int(np.searchsorted(indptr, first, side="right")) - 1
+        raise InputError(f"{where} holds NaN or Inf, first at row {row}; clean or drop those rows")
 
 
 def load_weights(plan: BlockPlan, index: int) -> np.ndarray:
@@ -191,18 +298,20 @@ def _require_finite(block: np.ndarray, ref: ArrayRef, index: int, start: int) ->
 
 
 def plan_blocks(
-    matrix: ArrayInfo,
+    matrix: ArrayInfo | CsrInfo,
     rhs: ArrayInfo | None,
     rows_per_block: int | None,
     native: bool = False,
     weights: ArrayInfo | None = None,
+    fixed_columns: tuple[int, ...] = (),
 ) -> BlockPlan:
     """Validate the input shapes and cut them into row blocks.
 
     Parameters
     ----------
-    matrix : ArrayInfo
-        Description of A.
+    matrix : ArrayInfo or CsrInfo
+        Description of A: a dense array, or a CSR group (already checked structurally by
+        :func:`rowfold.storage.describe_csr`).
     rhs : ArrayInfo or None
         Description of the right-hand sides.
     rows_per_block : int or None
@@ -211,11 +320,14 @@ def plan_blocks(
         Keep single precision for float32/complex64 input (see :func:`working_dtype`).
     weights : ArrayInfo or None
         Per-row weights (1-D, length m, real).
+    fixed_columns : tuple of int
+        Input columns to leave out (``input.fixed_columns``).
 
     Raises
     ------
     InputError
-        When A is not a non-empty 2-D matrix with m >= n, or the rhs does not match it.
+        When A is not a non-empty 2-D matrix with m >= n (n counting the kept columns),
+        the rhs does not match it, or a fixed column does not exist.
     """
     where = matrix.ref.describe()
     if len(matrix.shape) != 2:
@@ -223,9 +335,11 @@ def plan_blocks(
     rows, cols = matrix.shape
     if rows == 0 or cols == 0:
         raise InputError(f"{where}: the matrix is empty (shape {rows} x {cols})")
-    if rows < cols:
+    fixed = _check_fixed(where, fixed_columns, cols)
+    if rows < cols - len(fixed):
         raise InputError(
-            f"{where}: expected at least as many rows as columns, found {rows} x {cols}"
+            f"{where}: expected at least as many rows as columns, found {rows} x "
+            f"{cols - len(fixed)}" + (f" ({len(fixed)} fixed columns left out)" if fixed else "")
         )
     dtype = working_dtype(matrix, native)
     rhs_cols, rhs_1d = _check_rhs(rhs, rows)
@@ -239,13 +353,52 @@ def plan_blocks(
         matrix=matrix.ref,
         rhs=None if rhs is None else rhs.ref,
         rows=rows,
-        cols=cols,
+        cols=cols - len(fixed),
         rhs_cols=rhs_cols,
         rhs_1d=rhs_1d,
         dtype=np.dtype(dtype).str,
         bounds=split_rows(rows, per_block),
         weights=None if weights is None else weights.ref,
+        sparse=isinstance(matrix, CsrInfo),
+        fixed_columns=fixed,
     )
+
+
+def _check_fixed(where: str, fixed_columns: tuple[int, ...], cols: int) -> tuple[int, ...]:
+    """Return the fixed columns sorted, or raise InputError when one does not exist or
+    none would be left."""
+    fixed = tuple(sorted(set(fixed_columns)))
+    outside = [j for j in fixed if not 0 <= j < cols]
+    if outside:
+        raise InputError(
+            f"{where}: input.fixed_columns names column {outside[0]}, but the matrix has "
+            f"columns 0..{cols - 1}"
+        )
+    if len(fixed) == cols:
+        raise InputError(f"{where}: input.fixed_columns fixes all {cols} columns; keep one")
+    return fixed
+
+
+def expand_columns(plan: BlockPlan, array: np.ndarray, axes: tuple[int, ...] = (0,)) -> np.ndarray:
+    """Put per-column results back in input column numbering, zeros for fixed columns.
+
+    ``array`` has ``plan.cols`` entries along each axis in ``axes`` (e.g. ``x`` along 0,
+    ``R`` or a covariance along (0, 1), or along (-2, -1) for a stack); the result has
+    ``plan.input_cols`` there. A plan without fixed columns returns ``array`` itself.
+    """
+    if not plan.fixed_columns:
+        return array
+    kept = plan.kept_columns
+    shape = list(array.shape)
+    for axis in axes:
+        shape[axis] = plan.input_cols
+    out = np.zeros(shape, dtype=array.dtype)
+    index: list[Any] = [slice(None)] * array.ndim
+    grids = np.ix_(*[kept] * len(axes))
+    for axis, grid in zip(axes, grids, strict=True):
+        index[axis] = grid
+    out[tuple(index)] = array
+    return out
 
 
 def _check_weights(weights: ArrayInfo | None, rows: int) -> None:

@@ -30,10 +30,19 @@ def _parser() -> argparse.ArgumentParser:
     parser.add_argument("--debug", action="store_true", help="show tracebacks on errors")
     parser.add_argument("--quiet", action="store_true", help="no progress, only errors")
     verbs = parser.add_subparsers(dest="verb", required=True, metavar="VERB")
-    run = verbs.add_parser("run", help="run a job; write the result store and reports")
-    run.add_argument("job", type=Path)
+    run = verbs.add_parser("run", help="run jobs; write their result stores and reports")
+    run.add_argument("jobs", type=Path, nargs="+", metavar="JOB", help="job files or folders")
     run.add_argument("--set", dest="overrides", action="append", default=[], metavar="KEY=VALUE")
     run.add_argument(
+        "--inline", action="store_true", help="run in this process without a Dask cluster"
+    )
+    run.add_argument(
+        "--fail-fast", action="store_true", help="stop at the first job that does not exit 0"
+    )
+    update = verbs.add_parser("update", help="fold rows appended since the last run into it")
+    update.add_argument("job", type=Path)
+    update.add_argument("--set", dest="overrides", action="append", default=[], metavar="KEY=VALUE")
+    update.add_argument(
         "--inline", action="store_true", help="run in this process without a Dask cluster"
     )
     check = verbs.add_parser("check", help="validate a job file and its inputs, compute nothing")
@@ -74,10 +83,61 @@ def _summary(outcome: runner.RunOutcome) -> str:
     return "\n".join(lines)
 
 
-def _run(args: argparse.Namespace, progress: Progress) -> int:
-    job = runner.load_job(args.job, tuple(args.overrides))
+def _job_files(paths: list[Path]) -> list[Path]:
+    """Expand folders into the job files they hold (``*.yaml``/``*.yml``, sorted)."""
+    files: list[Path] = []
+    for path in paths:
+        if path.is_dir():
+            files += sorted(p for p in path.iterdir() if p.suffix in (".yaml", ".yml"))
+        else:
+            files.append(path)
+    return files
+
+
+def _run_one(path: Path, args: argparse.Namespace, progress: Progress) -> int:
+    job = runner.load_job(path, tuple(args.overrides))
     outcome = runner.run_job(job, progress, inline=args.inline)
     _say(_summary(outcome))
+    return outcome.status
+
+
+def _run(args: argparse.Namespace, progress: Progress) -> int:
+    files = _job_files(args.jobs)
+    if len(files) == 1:
+        return _run_one(files[0], args, progress)
+    statuses: list[tuple[Path, int, str]] = []
+    for path in files:
+        status, note = _guarded(lambda p=path: _run_one(p, args, progress), args)
+        statuses.append((path, status, note))
+        if status != 0 and args.fail_fast:
+            break
+    _say("\n".join(["job summary:", *(f"  {s}  {p}  {n}".rstrip() for p, s, n in statuses)]))
+    return max(status for _, status, _ in statuses)
+
+
+def _guarded(action: Any, args: argparse.Namespace) -> tuple[int, str]:
+    """Run one job of several; an error is printed and becomes its status."""
+    try:
+        return int(action()), ""
+    except RowfoldError as exc:
+        print(f"rowfold: error: {exc}", file=sys.stderr)
+        return exc.exit_status, str(exc).splitlines()[0][:120]
+    except Exception as exc:
+        if args.debug:
+            traceback.print_exc()
+        print(f"rowfold: failed: {exc.__class__.__name__}: {exc}", file=sys.stderr)
+        return EXIT_RUN_FAILED, exc.__class__.__name__
+
+
+def _update(args: argparse.Namespace, progress: Progress) -> int:
+    job = runner.load_job(args.job, tuple(args.overrides))
+    try:
+        outcome = runner.update_job(job, progress, inline=args.inline)
+    except runner.NoNewRowsError as exc:
+        _say(f"{exc}; nothing to do")
+        return 0
+    added = outcome.report["update"]["rows_added"]
+    _say(f"folded {added} new rows into the earlier result\n" + _summary(outcome))
     return outcome.status
 
 
@@ -116,6 +176,8 @@ def main(argv: Sequence[str] | None = None) -> int:
     try:
         if args.verb == "run":
             return _run(args, progress)
+        if args.verb == "update":
+            return _update(args, progress)
         if args.verb == "check":
             return _check(args)
         if args.verb == "demo":

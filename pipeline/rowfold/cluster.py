@@ -10,6 +10,7 @@ instead. :class:`InlineEngine` runs graphs in this thread (``check``, and unit t
 from __future__ import annotations
 
 import collections
+import logging
 import os
 import resource
 import sys
@@ -213,6 +214,9 @@ def open_engine(spec: ClusterSpec, progress: Progress) -> Iterator[DistributedEn
     """
     from distributed import Client, LocalCluster
 
+    # Task failures are reported by rowfold as one line; keep distributed's own logs quiet.
+    logging.getLogger("distributed").setLevel(logging.CRITICAL)
+
     if spec.address:
         try:
             client = Client(spec.address, timeout="10s")
@@ -232,7 +236,7 @@ def open_engine(spec: ClusterSpec, progress: Progress) -> Iterator[DistributedEn
             threads_per_worker=threads,
             processes=spec.processes,
             dashboard_address=":0",
-            silence_logs=40,
+            silence_logs=logging.CRITICAL,
         ) as cluster,
         Client(cluster) as client,
     ):

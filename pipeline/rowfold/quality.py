@@ -422,12 +422,14 @@ def _rank_only(R: np.ndarray, job: Job) -> int:
 def _solution_figures(
     plan: BlockPlan, solution: Solution, stats: Statistics, sums: metrics.Sums, norm_a: float
 ) -> dict[str, Any]:
-    ne = metrics.normal_equations_residual(sums["ahr"], norm_a, sums["res2"])
+    ne = None
+    if "ahr" in sums:
+        ne = _per_rhs(plan, metrics.normal_equations_residual(sums["ahr"], norm_a, sums["res2"]))
     return {
         "rank_tolerance": solution.tolerance,
         "rank_deficient_columns": solution.deficient_columns,
         "degrees_of_freedom": stats.degrees_of_freedom,
         "solution_residual_norm": _per_rhs(plan, stats.residual_norm),
         "residual_std": _per_rhs(plan, stats.residual_std),
-        "normal_equations_residual": _per_rhs(plan, ne),
+        "normal_equations_residual": ne,
     }

@@ -18,17 +18,28 @@ import numpy as np
 from rowfold import __version__, quality, storage
 from rowfold.blocks import BlockPlan, plan_blocks
 from rowfold.cluster import InlineEngine, Progress, open_engine
-from rowfold.errors import EXIT_GATE_FAILED, EXIT_OK
+from rowfold.errors import EXIT_GATE_FAILED, EXIT_OK, InputError, RowfoldError
 from rowfold.kernels import metrics
 from rowfold.methods import get_method
 from rowfold.methods._graph import task
 from rowfold.methods.base import Context, Engine, Factorization
+from rowfold.provenance import provenance
 from rowfold.refine import refine
 from rowfold.report import CAUTION, render_html, to_json
 from rowfold.solve import Solution, Statistics, solve, statistics
 from rowfold.spec import Job, load_job
 
-__all__ = ["RunOutcome", "check_job", "inspect_path", "load_job", "run_job"]
+__all__ = [
+    "NoNewRowsError",
+    "RunOutcome",
+    "check_job",
+    "inspect_path",
+    "load_job",
+    "run_job",
+    "update_job",
+]
+
+STALE_Q_TEXT = "not formed by update; run `rowfold run` to form Q again"
 
 
 @dataclass
@@ -66,9 +77,12 @@ class _Clock:
 
 
 def plan_job(job: Job) -> BlockPlan:
-    """Describe the job's input arrays and cut them into row blocks (reads no data)."""
+    """Describe the job's input arrays and cut them into row blocks (reads no data).
+
+    ``input.matrix`` may name a dense dataset or a CSR group; which one is found by looking.
+    """
     path = str(job.input.path)
-    matrix = storage.describe_array(storage.ArrayRef(path, job.input.matrix))
+    matrix = storage.describe_matrix(storage.ArrayRef(path, job.input.matrix))
     rhs = None
     if job.input.rhs is not None:
         rhs = storage.describe_array(storage.ArrayRef(path, job.input.rhs))
@@ -76,7 +90,9 @@ def plan_job(job: Job) -> BlockPlan:
     if job.input.weights is not None:
         weights = storage.describe_array(storage.ArrayRef(path, job.input.weights))
     native = job.method.precision == "native"
-    return plan_blocks(matrix, rhs, job.input.rows_per_block, native, weights)
+    return plan_blocks(
+        matrix, rhs, job.input.rows_per_block, native, weights, job.input.fixed_columns
+    )
 
 
 def check_job(job: Job) -> dict[str, Any]:
@@ -190,17 +206,106 @@ def _run_on(job: Job, plan: BlockPlan, ctx: Context, clock: _Clock, started: flo
             extra={
                 **extra,
                 "inputs": _fingerprints(job, plan, engine),
-                "started": started,
-                "finished": time.time(),
+                "provenance": provenance(started, time.time()),
                 "caution": CAUTION,
             },
         )
         with clock.stage("write"):
             _write_store(writer, job, plan, fact, solution, stats, report, scale)
+            _write_state(writer, plan, fact, {**fact.sums, **check.sums}, scale)
             json_path, html_path = storage.report_paths(job.output.path)
             writer.add_file(json_path, to_json(report))
             writer.add_file(html_path, render_html(report))
             writer.commit()
+    failed = any(not gate["held"] for gate in report["gates"].values())
+    return RunOutcome(EXIT_GATE_FAILED if failed else EXIT_OK, report, job.output.path)
+
+
+def update_job(job: Job, progress: Progress | None = None, inline: bool = False) -> RunOutcome:
+    """Fold the rows appended since the earlier result into it (see :mod:`rowfold.update`).
+
+    Raises
+    ------
+    InputError
+        When there is no earlier result, or the input no longer starts with the rows it
+        consumed (run ``run`` instead).
+    """
+    from rowfold import update
+
+    out = job.output.path
+    if not out.exists():
+        raise InputError(f"{out}: no earlier result to update; run `rowfold run` first")
+    started = time.time()
+    clock = _Clock()
+    plan = plan_job(job)
+    state, attrs = storage.read_state(out)
+    rows_done = int(attrs.get("rows_done", -1))
+    if "R" not in state or state["R"].shape[0] != plan.cols or rows_done > plan.rows:
+        raise InputError(
+            f"{out}: the earlier result does not match the input ({plan.rows} x {plan.cols}); "
+            "run `rowfold run` instead of update"
+        )
+    update.check_prefix(plan, attrs, rows_done)
+    if rows_done == plan.rows:
+        raise NoNewRowsError(f"{out}: no rows added since the earlier result ({rows_done} rows)")
+    job = replace(job, gates=replace(job.gates, orthogonality=None, residual=None))
+    with ExitStack() as stack:
+        engine = stack.enter_context(_engine(job, progress or Progress(), inline))
+        with clock.stage("factor"):
+            folded = update.fold(plan, state, attrs, engine)
+        return _commit_update(job, plan, folded, engine, clock, started)
+
+
+class NoNewRowsError(RowfoldError):
+    """``update`` found no new rows; the earlier result stands (exit 0, not a failure)."""
+
+    exit_status = EXIT_OK
+
+
+def _commit_update(
+    job: Job, plan: BlockPlan, folded: Any, engine: Engine, clock: _Clock, started: float
+) -> RunOutcome:
+    """Solve, report and commit an updated result."""
+    fact = folded.fact
+    solution = stats = None
+    if fact.qhb is not None:
+        solution = solve(fact.R, fact.qhb, job.solve.rank_tolerance)
+        stats = statistics(solution, folded.residual_sq, folded.rows_used)
+    sums = {**fact.sums, "res2": folded.residual_sq}
+    extra = {
+        "warnings": ["update: Q and the orthogonality figures are not formed; see q_state"],
+        "update": fact.details["update"],
+        "q_state": STALE_Q_TEXT,
+        "inputs": _fingerprints(job, plan, engine),
+        "provenance": provenance(started, time.time()),
+        "caution": CAUTION,
+    }
+    report = quality.assemble_report(
+        job=job,
+        plan=plan,
+        fact=fact,
+        solution=solution,
+        stats=stats,
+        sums=sums,
+        formed_q=False,
+        seconds=clock.seconds,
+        peak_memory=engine.peak_memory_bytes(),
+        passes=1,
+        extra=extra,
+    )
+    scale = folded.column_scale
+    with storage.ResultWriter(job.output.path) as writer:
+        _write_store(writer, job, plan, fact, solution, stats, report, scale)
+        state_sums = {**fact.sums, "rows_used": folded.rows_used}
+        if folded.residual_factor is not None:
+            factor = folded.residual_factor
+            state_sums["rtr"] = factor.conj().T @ factor
+        _write_state(writer, plan, fact, state_sums, scale)
+        writer.set_attrs({"q_state": STALE_Q_TEXT})
+        json_path, html_path = storage.report_paths(job.output.path)
+        writer.add_file(json_path, to_json(report))
+        writer.add_file(html_path, render_html(report))
+        writer.commit()
     failed = any(not gate["held"] for gate in report["gates"].values())
     return RunOutcome(EXIT_GATE_FAILED if failed else EXIT_OK, report, job.output.path)
 
@@ -291,14 +396,18 @@ def _scaling_figures(R_scaled: np.ndarray, scale: np.ndarray) -> dict[str, Any]:
 
 def _fingerprints(job: Job, plan: BlockPlan, engine: Engine) -> dict[str, Any]:
     """Fingerprint each input on the workers (they are the ones that see the files)."""
-    refs = {"matrix": plan.matrix, "rhs": plan.rhs}
-    shapes = {"matrix": (plan.rows, plan.cols), "rhs": (plan.rows, plan.rhs_cols)}
-    names = [name for name, ref in refs.items() if ref is not None]
-    tasks = [task(storage.fingerprint, refs[name], shapes[name]) for name in names]
-    values = engine.compute(tasks, "fingerprint inputs") if tasks else []
+    refs = {"matrix": plan.matrix, "rhs": plan.rhs, "weights": plan.weights}
+    shapes = {
+        "matrix": (plan.rows, plan.cols),
+        "rhs": (plan.rows,) if plan.rhs_1d else (plan.rows, plan.rhs_cols),
+        "weights": (plan.rows,),
+    }
+    present = {name: ref for name, ref in refs.items() if ref is not None}
+    tasks = [task(storage.fingerprint, ref, shapes[name]) for name, ref in present.items()]
+    values = engine.compute(tasks, "fingerprint inputs")
     return {
-        name: {"path": str(job.input.path), "dataset": refs[name].name, "fingerprint": value}  # type: ignore[union-attr]
-        for name, value in zip(names, values, strict=True)
+        name: {"path": ref.path, "dataset": ref.name, **value}
+        for (name, ref), value in zip(present.items(), values, strict=True)
     }
 
 
@@ -338,6 +447,40 @@ def _write_store(
             "cols": plan.cols,
             "job": job.resolved_json(),
             "inputs": report["inputs"],
+            "provenance": report["provenance"],
+        }
+    )
+
+
+def residual_factor(rtr: np.ndarray) -> np.ndarray:
+    """A square root F (k x k) of the residual Gram r^H r, with F^H F = r^H r."""
+    values, vectors = np.linalg.eigh(rtr)
+    return np.asarray((vectors * np.sqrt(np.clip(values, 0, None))) @ vectors.conj().T)
+
+
+def _write_state(
+    writer: storage.ResultWriter,
+    plan: BlockPlan,
+    fact: Factorization,
+    sums: dict[str, Any],
+    scale: np.ndarray | None,
+) -> None:
+    """What ``update`` needs to fold in later rows without reading these again.
+
+    ``state/R`` and ``state/qhb`` are in working coordinates (after any column scaling),
+    ``state/residual_factor`` F has F^H F = r^H r, ``state/gram`` is A^H A.
+    """
+    writer.put("state/R", fact.R)
+    writer.put("state/gram", np.asarray(sums["gram"]))
+    if fact.qhb is not None and "rtr" in sums:
+        writer.put("state/qhb", fact.qhb)
+        writer.put("state/residual_factor", residual_factor(np.asarray(sums["rtr"])))
+    writer.put("state/column_scale", np.ones(plan.cols) if scale is None else scale)
+    writer.set_attrs(
+        {
+            "rows_done": plan.rows,
+            "a_fro2": float(sums["a_fro2"]),
+            "rows_used": int(sums.get("rows_used", plan.rows)),
         }
     )
 

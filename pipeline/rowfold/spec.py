@@ -52,6 +52,9 @@ class InputSpec:
         Dataset of per-row weights w >= 0 (weighted least squares).
     rows_per_block : int or None
         Rows per block; None means choose automatically.
+    fixed_columns : tuple of int
+        Columns of A whose unknowns are held fixed at zero (a datum): left out before
+        factoring, reported as 0 with standard error 0.
     """
 
     path: Path
@@ -59,6 +62,7 @@ class InputSpec:
     rhs: str | None = None
     weights: str | None = None
     rows_per_block: int | None = None
+    fixed_columns: tuple[int, ...] = ()
 
 
 @dataclass(frozen=True, slots=True)
@@ -218,7 +222,7 @@ class Job:
 
     def resolved_json(self) -> str:
         """Return the resolved job as a JSON string."""
-        return json.dumps(self.resolved, sort_keys=True, default=str)
+        return json.dumps(dict(self.resolved), sort_keys=True, default=str)
 
 
 # ---------------------------------------------------------------- loading with line numbers
@@ -246,24 +250,49 @@ class _Doc:
         return JobError(f"{self.where(keypath)}: key '{key}': {message}")
 
 
-def _to_plain(
-    node: yaml.Node, path: tuple[str, ...], lines: dict[tuple[str, ...], int], file: Path
-) -> Any:
-    """Convert a composed YAML node into plain Python data, recording key lines."""
+def _key_lines(
+    node: yaml.Node,
+    path: tuple[str, ...],
+    lines: dict[tuple[str, ...], int],
+    file: Path,
+    seen: set[int],
+) -> None:
+    """Record the line of every mapping key (by dotted path) and refuse duplicate keys."""
+    if id(node) in seen:
+        return
+    seen.add(id(node))
     if isinstance(node, yaml.MappingNode):
-        out: dict[str, Any] = {}
         for key_node, value_node in node.value:
-            key = str(yaml.safe_load(yaml.serialize(key_node)))
-            sub = (*path, key)
-            if key in out:
-                line = key_node.start_mark.line + 1
+            if not isinstance(key_node, yaml.ScalarNode):
+                continue
+            sub = (*path, str(key_node.value))
+            line = key_node.start_mark.line + 1
+            if sub in lines and key_node.value != "<<":
                 raise JobError(f"{file.name} line {line}: key '{'.'.join(sub)}' appears twice")
-            lines[sub] = key_node.start_mark.line + 1
-            out[key] = _to_plain(value_node, sub, lines, file)
-        return out
-    if isinstance(node, yaml.SequenceNode):
-        return [_to_plain(item, path, lines, file) for item in node.value]
-    return yaml.safe_load(yaml.serialize(node))
+            lines[sub] = line
+            _key_lines(value_node, sub, lines, file, seen)
+    elif isinstance(node, yaml.SequenceNode):
+        for item in node.value:
+            _key_lines(item, path, lines, file, seen)
+
+
+def _parse_text(text: str, file: Path) -> tuple[Any, dict[tuple[str, ...], int]]:
+    """Parse YAML text with the safe loader; return the data and the key lines."""
+    try:
+        root = yaml.compose(text, Loader=yaml.SafeLoader)
+        data = yaml.load(text, Loader=yaml.SafeLoader)
+    except yaml.MarkedYAMLError as exc:
+        mark = exc.problem_mark
+        where = f"line {mark.line + 1} column {mark.column + 1}" if mark else "somewhere"
+        raise JobError(f"{file.name} {where}: malformed YAML: {exc.problem}") from None
+    except yaml.YAMLError as exc:
+        raise JobError(f"{file.name}: malformed YAML: {exc}") from None
+    except RecursionError:
+        raise JobError(f"{file.name}: malformed YAML: nested too deeply") from None
+    lines: dict[tuple[str, ...], int] = {}
+    if root is not None:
+        _key_lines(root, (), lines, file, set())
+    return data, lines
 
 
 def _read_yaml(file: Path) -> _Doc:
@@ -274,19 +303,11 @@ def _read_yaml(file: Path) -> _Doc:
         raise JobError(f"{file}: job file not found") from None
     except (OSError, UnicodeDecodeError) as exc:
         raise JobError(f"{file}: cannot read job file ({exc.__class__.__name__}: {exc})") from None
-    try:
-        root = yaml.compose(text, Loader=yaml.SafeLoader)
-    except yaml.MarkedYAMLError as exc:
-        mark = exc.problem_mark
-        where = f"line {mark.line + 1} column {mark.column + 1}" if mark else "somewhere"
-        raise JobError(f"{file.name} {where}: malformed YAML: {exc.problem}") from None
-    except yaml.YAMLError as exc:
-        raise JobError(f"{file.name}: malformed YAML: {exc}") from None
-    lines: dict[tuple[str, ...], int] = {}
-    data = {} if root is None else _to_plain(root, (), lines, file)
+    data, lines = _parse_text(text, file)
+    data = {} if data is None else data
     if not isinstance(data, dict):
         raise JobError(f"{file.name} line 1: a job file must be a mapping of sections")
-    return _Doc(file=file, data=data, lines=lines)
+    return _Doc(file=file, data={str(k): v for k, v in data.items()}, lines=lines)
 
 
 def _apply_override(doc: _Doc, override: str) -> None:
@@ -407,7 +428,10 @@ def _tree(value: Any) -> str | int:
 
 def _suffixed_path(suffixes: tuple[str, ...], base: Path) -> Callable[[Any], Path]:
     def parse(value: Any) -> Path:
-        path = Path(_text(value)).expanduser()
+        try:
+            path = Path(_text(value)).expanduser()
+        except RuntimeError as exc:  # e.g. ~unknownuser
+            raise ValueError(f"cannot expand the path ({exc})") from None
         if path.suffix.lower() not in suffixes:
             raise ValueError(f"expected a path ending in {' or '.join(suffixes)}")
         return path if path.is_absolute() else (base / path).resolve()
@@ -419,14 +443,26 @@ DATA_SUFFIXES = (".h5", ".hdf5", ".zarr")
 
 
 def _parse_input(doc: _Doc, base: Path) -> InputSpec:
-    section = _Section(doc, ("input",), ("path", "matrix", "rhs", "weights", "rows_per_block"))
+    section = _Section(
+        doc, ("input",), ("path", "matrix", "rhs", "weights", "rows_per_block", "fixed_columns")
+    )
     return InputSpec(
         weights=section.get("weights", _text),
         path=section.require("path", _suffixed_path(DATA_SUFFIXES, base)),
         matrix=section.require("matrix", _text),
         rhs=section.get("rhs", _text),
         rows_per_block=section.get("rows_per_block", _auto_or_count),
+        fixed_columns=section.get("fixed_columns", _column_list, ()),
     )
+
+
+def _column_list(value: Any) -> tuple[int, ...]:
+    items = value if isinstance(value, list) else [value]
+    if not all(isinstance(j, int) and not isinstance(j, bool) and j >= 0 for j in items):
+        raise TypeError("expected a list of column numbers >= 0 (counting from 0)")
+    if len(set(items)) != len(items):
+        raise ValueError("expected each column number once")
+    return tuple(sorted(items))
 
 
 def _seed(value: Any) -> int:

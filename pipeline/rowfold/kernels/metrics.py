@@ -32,7 +32,8 @@ def block_sums(
 ) -> Sums:
     """Return the verification sums of one row block.
 
-    Keys: with rhs and x, ``res2`` (||r_i||^2 per column) and ``ahr`` (A_i^H r_i); with Q,
+    Keys: with rhs and x, ``res2`` (||r_i||^2 per column), ``rtr`` (r_i^H r_i, k x k) and
+    ``ahr`` (A_i^H r_i); with Q,
     ``qhq`` (Q_i^H Q_i) and ``defect2`` (||A_i - Q_i R||_F^2).
     """
     from rowfold.kernels.gram import block_gram
@@ -41,6 +42,7 @@ def block_sums(
     if rhs is not None and x is not None:
         residual = rhs.reshape(block.shape[0], -1) - block @ x.reshape(block.shape[1], -1)
         sums["res2"] = np.sum(np.abs(residual) ** 2, axis=0)
+        sums["rtr"] = residual.conj().T @ residual
         sums["ahr"] = block.conj().T @ residual
     if Q is not None:
         sums["qhq"] = block_gram(Q)

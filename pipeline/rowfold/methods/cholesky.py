@@ -11,6 +11,15 @@ factor of that Gram is the next factor. With factors ``R1..Rk``: ``R = Rk ... R1
   Comput. 42(1), 2020): the first Gram gets the shift ``s = 11 (m n + n (n+1)) u ||A||_F^2``
   (||A||_F^2 bounds ||A||_2^2), then two CholeskyQR passes; reliable up to about
   ``1 / (c (m n + n (n+1)) u)``.
+
+Sparse (CSR) input: the first Gram is taken from the CSR blocks (cost ~ nnz per row
+squared, per row). Later passes form ``X = A F1^{-1} F2^{-1} ...`` as the sparse product
+``A @ inv(F1)`` (``inv(F1)`` formed once by a triangular solve on the identity; cost
+nnz * n) followed by triangular solves with the later factors, and take its Gram by syrk.
+Q is formed by the same recipe (:func:`q_block_sparse`) so it matches the X whose Gram gave
+R bit for bit, which is what keeps CholeskyQR2's orthogonality at O(u). The residual
+``||A - QR||`` picks up the rounding of ``inv(F1)``: a small multiple of u in our tests
+(tests/test_sparse.py), where the dense recipe gives about u.
 """
 
 from __future__ import annotations
@@ -19,12 +28,14 @@ from collections.abc import Sequence
 from typing import Any
 
 import numpy as np
+import scipy.sparse as sp
 from numpy.linalg import LinAlgError
 from scipy.linalg import solve_triangular
 
 from rowfold.blocks import BlockPlan, BlockSource
 from rowfold.errors import BreakdownError
 from rowfold.kernels import block_gram, cholesky_upper, cross_product, metrics, solve_right_upper
+from rowfold.kernels import sparse as sparse_kernels
 from rowfold.methods._graph import sum_tree, task
 from rowfold.methods.base import Context, Engine, Factorization
 from rowfold.spec import MethodSpec
@@ -52,12 +63,23 @@ def apply_factors(block: np.ndarray, factors: Sequence[np.ndarray]) -> np.ndarra
     return block
 
 
+def is_sparse(source: BlockSource) -> bool:
+    """True when the source is the input itself and the input is a CSR matrix."""
+    return isinstance(source, BlockPlan) and source.sparse
+
+
 def gram_leaf(source: BlockSource, index: int, factors: tuple[np.ndarray, ...]) -> dict[str, Any]:
     """Gram sums of one block of ``X = A F1^{-1} F2^{-1} ...``.
 
     Keys ``gram`` and ``cross`` (X^H B or None); on the first pass (no factors) also the
-    first-pass sums ``a_fro2`` and ``gram`` of A itself, which are the same numbers.
+    first-pass sums ``a_fro2`` and ``gram`` of A itself, which are the same numbers. The
+    first pass over a CSR input takes them from the CSR block.
     """
+    if not factors and isinstance(source, BlockPlan) and source.sparse:
+        sparse_block, b = source.load_sparse(index)
+        first: dict[str, Any] = sparse_kernels.sparse_gram_sums(sparse_block)
+        first["cross"] = None if b is None else sparse_kernels.sparse_cross(sparse_block, b)
+        return first
     block, rhs = source.load(index)
     x = apply_factors(block, factors)
     sums: dict[str, Any] = metrics.gram_sums(x) if not factors else {"gram": block_gram(x)}
@@ -79,11 +101,58 @@ def q_block(block: np.ndarray, factors: tuple[np.ndarray, ...]) -> np.ndarray:
     return apply_factors(block, factors)
 
 
+SparseRecipe = tuple[np.ndarray, tuple[np.ndarray, ...]]
+"""``(inv(F1), (F2, F3, ...))``: how X (or Q) is formed from a CSR block."""
+
+
+def sparse_recipe(factors: Sequence[np.ndarray]) -> SparseRecipe:
+    """The sparse recipe of a list of factors (the inverse of the first one formed once)."""
+    return sparse_kernels.upper_inverse(factors[0]), tuple(factors[1:])
+
+
+def sparse_apply(block: sp.csr_matrix, recipe: SparseRecipe) -> np.ndarray:
+    """Return ``block @ inv(F1)`` followed by triangular solves with ``F2, F3, ...``."""
+    inverse, rest = recipe
+    return apply_factors(sparse_kernels.sparse_times(block, inverse), rest)
+
+
+def sparse_gram_leaf(plan: BlockPlan, index: int, recipe: SparseRecipe) -> dict[str, Any]:
+    """Gram sums (``gram``, ``cross``) of one block of X formed from a CSR block."""
+    block, rhs = plan.load_sparse(index)
+    x = sparse_apply(block, recipe)
+    return {
+        "gram": sparse_kernels.rows_gram(x),
+        "cross": None if rhs is None else cross_product(x, rhs),
+    }
+
+
+def q_block_sparse(block: np.ndarray, recipe: SparseRecipe) -> np.ndarray:
+    """Form a block of Q from the densified block of a CSR input, by the sparse recipe.
+
+    The dense block goes back to CSR with the structure :func:`rowfold.blocks.load_sparse_block`
+    gave it (canonical form), so the product is the same, bit for bit, as in the passes.
+    """
+    return sparse_apply(sp.csr_matrix(block), recipe)
+
+
 def gram_pass(
-    source: BlockSource, engine: Engine, factors: tuple[np.ndarray, ...], label: str
+    source: BlockSource,
+    engine: Engine,
+    factors: tuple[np.ndarray, ...],
+    label: str,
+    sparse: bool = False,
 ) -> dict[str, Any]:
-    """One pass over the blocks; returns the summed Gram sums of ``X``."""
-    leaves = [task(gram_leaf, source, i, factors) for i in range(source.blocks)]
+    """One pass over the blocks; returns the summed Gram sums of ``X``.
+
+    With ``sparse`` (a CSR input and at least one factor) X is formed by the sparse recipe;
+    the factorization must then form Q by :func:`q_block_sparse` too (``assemble(...,
+    sparse=True)``). The first pass (no factors) over a CSR input is always sparse.
+    """
+    if sparse and factors and isinstance(source, BlockPlan):
+        recipe = sparse_recipe(factors)
+        leaves = [task(sparse_gram_leaf, source, i, recipe) for i in range(source.blocks)]
+    else:
+        leaves = [task(gram_leaf, source, i, factors) for i in range(source.blocks)]
     (total,) = engine.compute([sum_tree(leaves, add_gram_sums)], label)
     result: dict[str, Any] = total
     return result
@@ -119,12 +188,17 @@ def more_passes(
     count: int,
     method: str,
     advice: str,
+    sparse: bool = False,
 ) -> dict[str, Any]:
-    """Run ``count`` further CholeskyQR passes, appending factors; return the last sums."""
+    """Run ``count`` further CholeskyQR passes, appending factors; return the last sums.
+
+    ``sparse`` forms X by the sparse recipe (see :func:`gram_pass`).
+    """
     last: dict[str, Any] = {}
     for done in range(1, count + 1):
         stage = f"pass {len(factors) + 1}"
-        last = gram_pass(source, engine, tuple(factors), f"{method}: {stage} (Gram)")
+        label = f"{method}: {stage} (Gram)"
+        last = gram_pass(source, engine, tuple(factors), label, sparse)
         try:
             factors.append(cholesky_or_refuse(last["gram"], method, stage, advice))
         except BreakdownError as exc:
@@ -139,8 +213,10 @@ def assemble(
     passes: int,
     blocks: int,
     details: dict[str, Any],
+    sparse: bool = False,
 ) -> Factorization:
-    """Combine the factors into R, ``Q^H B`` and the Q recipe."""
+    """Combine the factors into R, ``Q^H B`` and the Q recipe (the sparse one with
+    ``sparse``, matching passes run with ``sparse``)."""
     R = factors[0]
     for factor in factors[1:]:
         R = factor @ R
@@ -149,6 +225,16 @@ def assemble(
     qhb = None
     if last_cross is not None:
         qhb = solve_triangular(factors[-1], last_cross, trans="C", lower=False)
+    if sparse:
+        return Factorization(
+            R=R,
+            qhb=qhb,
+            q_kernel=q_block_sparse,
+            q_recipes=[sparse_recipe(factors)] * blocks,
+            passes=passes,
+            sums={"a_fro2": first_sums["a_fro2"], "gram": first_sums["gram"]},
+            details={**details, "sparse_input": True},
+        )
     return Factorization(
         R=R,
         qhb=qhb,
@@ -175,7 +261,8 @@ def cholqr2_from(
             f"CholeskyQR2 cannot guarantee an orthogonal Q here; {advice}"
         )
     factors = [factor]
-    last = more_passes(source, engine, factors, 1, "cholqr2", advice)
+    sparse = is_sparse(source)
+    last = more_passes(source, engine, factors, 1, "cholqr2", advice, sparse)
     second = condition_estimate(factors[1])
     if second > SECOND_FACTOR_LIMIT:
         raise BreakdownError(
@@ -184,7 +271,7 @@ def cholqr2_from(
             passes=1,
         )
     details["second_pass_condition"] = second
-    return assemble(factors, last["cross"], first, 2, source.blocks, details)
+    return assemble(factors, last["cross"], first, 2, source.blocks, details, sparse)
 
 
 def scholqr3_from(
@@ -201,8 +288,9 @@ def scholqr3_from(
         "first_pass_condition_estimate": condition_estimate(factor),
     }
     factors = [factor]
-    last = more_passes(source, engine, factors, 2, "scholqr3", advice)
-    return assemble(factors, last["cross"], first, 3, source.blocks, details)
+    sparse = is_sparse(source)
+    last = more_passes(source, engine, factors, 2, "scholqr3", advice, sparse)
+    return assemble(factors, last["cross"], first, 3, source.blocks, details, sparse)
 
 
 def cholqr2(plan: BlockPlan, spec: MethodSpec, ctx: Context) -> Factorization:

@@ -1,15 +1,25 @@
 """Storage: every file handle rowfold opens lives here.
 
-Inputs are read by row range from HDF5 or Zarr (:mod:`.inputs`); results and reports are
-written atomically (:mod:`.results`). Nothing here knows about Dask.
+Inputs are read by row range from HDF5 or Zarr, dense (:mod:`.inputs`) or as a CSR group
+(:mod:`.csr`); results and reports are written atomically (:mod:`.results`). Nothing here
+knows about Dask. ``fingerprint`` is the format-aware one from :mod:`.csr`.
 """
 
+from rowfold.storage.csr import (
+    CsrInfo,
+    describe_csr,
+    describe_matrix,
+    fingerprint,
+    is_csr,
+    read_csr_rows,
+    write_csr,
+)
 from rowfold.storage.inputs import (
     ArrayInfo,
     ArrayRef,
     describe_array,
-    fingerprint,
     read_rows,
+    same_prefix,
     write_arrays,
 )
 from rowfold.storage.results import (
@@ -17,6 +27,7 @@ from rowfold.storage.results import (
     check_output_path,
     describe_path,
     read_result,
+    read_state,
     remove_litter,
     report_paths,
     scratch_folder,
@@ -25,15 +36,23 @@ from rowfold.storage.results import (
 __all__ = [
     "ArrayInfo",
     "ArrayRef",
+    "CsrInfo",
     "ResultWriter",
     "check_output_path",
     "describe_array",
+    "describe_csr",
+    "describe_matrix",
     "describe_path",
     "fingerprint",
+    "is_csr",
+    "read_csr_rows",
     "read_result",
     "read_rows",
+    "read_state",
     "remove_litter",
     "report_paths",
+    "same_prefix",
     "scratch_folder",
     "write_arrays",
+    "write_csr",
 ]

@@ -153,7 +153,7 @@ def _describe_zarr(ref: ArrayRef) -> ArrayInfo:
     return ArrayInfo(ref, tuple(obj.shape), np.dtype(obj.dtype).str, chunks[0] if chunks else None)
 
 
-def read_rows(ref: ArrayRef, start: int, stop: int) -> np.ndarray:
+def read_rows(ref: ArrayRef, start: int, stop: int, purpose: str = "data") -> np.ndarray:
     """Read rows ``[start, stop)`` of an array.
 
     Parameters
@@ -162,12 +162,15 @@ def read_rows(ref: ArrayRef, start: int, stop: int) -> np.ndarray:
         The array; opened here and closed before returning.
     start, stop : int
         Row range.
+    purpose : str
+        Recorded in the read log (``ROWFOLD_READ_LOG``): ``data`` or ``fingerprint``.
 
     Returns
     -------
     numpy.ndarray
         The rows, in the array's own dtype.
     """
+    _log_read(ref, start, stop, purpose)
     try:
         if ref.is_hdf5:
             with _HDF5_LOCK, h5py.File(ref.path, "r") as handle:
@@ -182,16 +185,62 @@ def read_rows(ref: ArrayRef, start: int, stop: int) -> np.ndarray:
         ) from None
 
 
-def fingerprint(ref: ArrayRef, shape: tuple[int, ...], sample_rows: int = 1024) -> str:
-    """Hash the shape, the first and the last rows of an array.
+def _log_read(ref: ArrayRef, start: int, stop: int, purpose: str) -> None:
+    """Append a line to the read log named by ``ROWFOLD_READ_LOG``, when set (for tests and
+    audits: it shows exactly which rows a job read)."""
+    log = os.environ.get("ROWFOLD_READ_LOG")
+    if log:
+        with open(log, "a", encoding="utf-8") as handle:
+            handle.write(f"{purpose}\t{ref.path}\t{ref.name}\t{start}\t{stop}\n")
 
-    Cheap enough to run on every job; enough to notice that an input was replaced.
+
+def window_hash(ref: ArrayRef, start: int, stop: int) -> str:
+    """SHA-256 of rows ``[start, stop)`` of an array (its raw bytes)."""
+    data = np.ascontiguousarray(read_rows(ref, start, stop, purpose="fingerprint"))
+    return hashlib.sha256(data.tobytes()).hexdigest()
+
+
+def prefix_windows(rows: int, samples: int = 4, width: int = 1024) -> list[tuple[int, int]]:
+    """Row windows that fingerprint the first ``rows`` rows: ``samples`` evenly spaced
+    windows of ``width`` rows, plus the last window before ``rows``."""
+    if rows <= 0:
+        return []
+    starts = {int(s) for s in np.linspace(0, max(0, rows - width), samples)}
+    starts.add(max(0, rows - width))
+    return [(start, min(rows, start + width)) for start in sorted(starts)]
+
+
+def fingerprint(ref: ArrayRef, shape: tuple[int, ...], rows: int | None = None) -> dict[str, Any]:
+    """Fingerprint an array: its shape and hashes of sampled windows of its first rows.
+
+    Parameters
+    ----------
+    ref : ArrayRef
+        The array.
+    shape : tuple of int
+        Its shape (recorded as is).
+    rows : int, optional
+        Fingerprint only the first ``rows`` rows (default: all). ``update`` recomputes the
+        same windows to check that an input still starts with the rows a result consumed.
     """
-    digest = hashlib.sha256(repr(tuple(shape)).encode())
-    m = shape[0] if shape else 0
-    for start, stop in ((0, min(m, sample_rows)), (max(0, m - sample_rows), m)):
-        digest.update(np.ascontiguousarray(read_rows(ref, start, stop)).tobytes())
-    return "sha256:" + digest.hexdigest()
+    upto = shape[0] if rows is None else rows
+    windows = prefix_windows(upto)
+    return {
+        "shape": list(shape),
+        "rows": upto,
+        "windows": [[start, stop, window_hash(ref, start, stop)] for start, stop in windows],
+    }
+
+
+def same_prefix(ref: ArrayRef, recorded: dict[str, Any]) -> bool:
+    """True when the array's first rows still hash as ``recorded`` (see :func:`fingerprint`)."""
+    try:
+        return all(
+            window_hash(ref, int(start), int(stop)) == digest
+            for start, stop, digest in recorded.get("windows", [])
+        )
+    except InputError:
+        return False
 
 
 def write_arrays(path: str | Path, arrays: dict[str, np.ndarray], chunk_rows: int = 16384) -> None:

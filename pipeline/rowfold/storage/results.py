@@ -11,6 +11,7 @@ from __future__ import annotations
 
 import json
 import os
+import re
 import shutil
 from collections.abc import Iterator
 from contextlib import contextmanager
@@ -54,16 +55,26 @@ def report_paths(path: Path) -> tuple[Path, Path]:
     return stem.with_name(stem.name + ".report.json"), stem.with_name(stem.name + ".report.html")
 
 
+def _litter_pattern(path: Path) -> re.Pattern[str]:
+    """Names of the temporary siblings a run writes for ``path`` (store, scratch, reports)."""
+    json_path, html_path = report_paths(path)
+    names = "|".join(re.escape(p.name) for p in (path, json_path, html_path))
+    return re.compile(rf"^\.rowfold-(?:tmp|old)-(\d+)-(?:work-)?(?:{names})$")
+
+
 def remove_litter(path: Path) -> None:
     """Remove temporary siblings that an earlier, killed run left beside ``path``.
 
-    Siblings of this process (same pid in the name) are left alone.
+    Only names a run for this very output writes are touched, and never those of this
+    process (same pid).
     """
-    own = (f"{TMP_PREFIX}{os.getpid()}-", f"{OLD_PREFIX}{os.getpid()}-")
-    for prefix in (TMP_PREFIX, OLD_PREFIX):
-        for stale in path.parent.glob(f"{prefix}*{path.name}*"):
-            if not stale.name.startswith(own):
-                _remove(stale)
+    pattern = _litter_pattern(path)
+    if not path.parent.is_dir():
+        return
+    for stale in path.parent.iterdir():
+        match = pattern.match(stale.name)
+        if match and int(match.group(1)) != os.getpid():
+            _remove(stale)
 
 
 @contextmanager
@@ -266,19 +277,42 @@ def _plain(value: Any) -> Any:
     return value
 
 
+def read_state(path: Path) -> tuple[dict[str, np.ndarray], dict[str, Any]]:
+    """Read a result store's ``state/`` arrays and its attributes (for ``update``)."""
+    arrays = {
+        name.split("/", 1)[1]: value
+        for name, value in read_result(path).items()
+        if name.startswith("state/")
+    }
+    return arrays, describe_path(path)["attrs"]
+
+
 def read_result(path: Path) -> dict[str, np.ndarray]:
-    """Read every small array of a result store into memory (not Q)."""
+    """Read every small array of a result store into memory (not the m-row arrays).
+
+    Nested arrays are named with their group, e.g. ``state/R``.
+    """
     out: dict[str, np.ndarray] = {}
     if path.suffix.lower() in HDF5_SUFFIXES:
         with _HDF5_LOCK, h5py.File(path, "r") as handle:
-            for name in handle:
-                if name != "Q":
-                    out[name] = np.asarray(handle[name][...])
+
+            def visit(name: str, obj: Any) -> None:
+                if isinstance(obj, h5py.Dataset) and name not in ROW_ARRAYS:
+                    out[name] = np.asarray(obj[...])
+
+            handle.visititems(visit)
         return out
     import zarr
 
     root = zarr.open_group(str(path), mode="r")
     for name, array in root.arrays():
-        if name != "Q":
+        if name not in ROW_ARRAYS:
             out[name] = np.asarray(array[...])
+    for group_name, group in root.groups():
+        for name, array in group.arrays():
+            out[f"{group_name}/{name}"] = np.asarray(array[...])
     return out
+
+
+# Arrays with one row per input row: never read whole into memory.
+ROW_ARRAYS = ("Q", "residuals", "standardized_residuals", "leverage")

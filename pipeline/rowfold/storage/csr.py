@@ -1,0 +1,393 @@
+"""Sparse inputs: a CSR group in HDF5 or Zarr, read by row range.
+
+A CSR matrix is a group holding three 1-D arrays, ``data`` (the stored values),
+``indices`` (their column numbers) and ``indptr`` (m + 1 offsets: row i owns
+``data[indptr[i]:indptr[i + 1]]``), and an attribute ``shape = [m, n]``. Rows
+``[start, stop)`` are read by slicing ``indptr[start:stop + 1]`` and then the matching range
+of ``indices`` and ``data``, so a worker reads only its own rows.
+
+:func:`describe_csr` makes the cheap structural checks (the arrays exist and are 1-D, their
+lengths agree with each other and with ``shape``, their dtypes can be read) without reading
+the arrays; the per-block checks (``indptr`` non-decreasing, column numbers in range) belong
+to the task that loads the block (:mod:`rowfold.blocks`).
+"""
+
+from __future__ import annotations
+
+import hashlib
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+import h5py
+import numpy as np
+
+from rowfold.errors import InputError, InputMissingError
+from rowfold.storage import inputs
+from rowfold.storage.inputs import (
+    _HDF5_LOCK,
+    HDF5_SUFFIXES,
+    ArrayInfo,
+    ArrayRef,
+    _log_read,
+    _missing,
+    _open_zarr,
+    describe_array,
+)
+
+CSR_ARRAYS = ("data", "indices", "indptr")
+"""The arrays a CSR group holds."""
+
+WRITE_CHUNK = 1 << 20
+"""Elements per on-disk chunk of ``data`` and ``indices`` written by :func:`write_csr`."""
+
+PTR_CHUNK = 1 << 16
+"""Elements per on-disk chunk of ``indptr`` written by :func:`write_csr`."""
+
+
+@dataclass(frozen=True, slots=True)
+class CsrInfo:
+    """Shape and dtypes of a CSR group, read from its metadata only.
+
+    Attributes
+    ----------
+    ref : ArrayRef
+        The group (path + group name).
+    shape : tuple of int
+        ``(m, n)`` from the ``shape`` attribute.
+    dtype : str
+        numpy dtype string of ``data``.
+    nnz : int
+        Stored values (length of ``data`` and ``indices``).
+    index_dtype : str
+        numpy dtype string of ``indices``.
+    chunk_rows : None
+        Always None: a CSR group is not chunked by rows (kept so that block planning can
+        treat dense and sparse descriptions alike).
+    """
+
+    ref: ArrayRef
+    shape: tuple[int, ...]
+    dtype: str
+    nnz: int
+    index_dtype: str
+    chunk_rows: int | None = None
+
+
+def _members_hdf5(handle: Any, name: str) -> dict[str, Any] | None:
+    """Describe the object at ``name``: None for a dataset, else its arrays and attributes."""
+    obj = handle.get(name) if name not in ("", ".", "/") else handle
+    if obj is None:
+        raise KeyError(name)
+    if isinstance(obj, h5py.Dataset):
+        return None
+    arrays = {
+        key: (tuple(value.shape), value.dtype.str)
+        for key, value in obj.items()
+        if isinstance(value, h5py.Dataset)
+    }
+    return {"arrays": arrays, "shape": obj.attrs.get("shape")}
+
+
+def _members_zarr(path: str, name: str) -> dict[str, Any] | None:
+    root = _open_zarr(path)
+    obj = root[name] if name not in ("", ".", "/") else root
+    if not hasattr(obj, "members"):
+        return None
+    arrays = {
+        key: (tuple(value.shape), np.dtype(value.dtype).str)
+        for key, value in obj.members()
+        if not hasattr(value, "members")
+    }
+    return {"arrays": arrays, "shape": obj.attrs.get("shape")}
+
+
+def _members(ref: ArrayRef) -> dict[str, Any] | None:
+    """Open the file and describe ``ref``: None when it is a dataset (dense input)."""
+    if not Path(ref.path).exists():
+        raise InputMissingError(f"{ref.path}: input file not found")
+    try:
+        if ref.is_hdf5:
+            with _HDF5_LOCK, h5py.File(ref.path, "r") as handle:
+                return _members_hdf5(handle, ref.name)
+        return _members_zarr(ref.path, ref.name)
+    except KeyError:
+        raise _missing(ref) from None
+    except Exception as exc:
+        kind = "HDF5" if ref.is_hdf5 else "Zarr"
+        raise InputError(
+            f"{ref.path}: cannot open as {kind} ({exc.__class__.__name__}: {exc})"
+        ) from None
+
+
+def is_csr(ref: ArrayRef) -> bool:
+    """True when ``ref`` names a group (a CSR matrix), False for a dense dataset."""
+    return _members(ref) is not None
+
+
+def describe_matrix(ref: ArrayRef) -> ArrayInfo | CsrInfo:
+    """Describe the matrix ``ref`` names: a dense dataset or a CSR group, found by looking.
+
+    Raises
+    ------
+    InputMissingError
+        When the file or the name does not exist.
+    InputError
+        When a CSR group fails a structural check (see :func:`describe_csr`).
+    """
+    members = _members(ref)
+    if members is None:
+        return describe_array(ref)
+    return _check_group(ref, members)
+
+
+def describe_csr(ref: ArrayRef) -> CsrInfo:
+    """Describe a CSR group and make the structural checks, without reading its arrays
+    (beyond the first and last ``indptr`` entries).
+
+    Raises
+    ------
+    InputError
+        When an array is missing, not 1-D or of a dtype that cannot be read; when the
+        ``shape`` attribute is missing or not two whole numbers; when ``indptr`` does not
+        have m + 1 entries from 0 to nnz; when ``indices`` and ``data`` differ in length.
+    """
+    members = _members(ref)
+    if members is None:
+        raise InputError(f"{ref.describe()}: expected a CSR group, found a dataset")
+    return _check_group(ref, members)
+
+
+def _check_group(ref: ArrayRef, members: dict[str, Any]) -> CsrInfo:
+    where = ref.describe()
+    arrays: dict[str, tuple[tuple[int, ...], str]] = members["arrays"]
+    missing = [name for name in CSR_ARRAYS if name not in arrays]
+    if missing:
+        found = ", ".join(sorted(arrays)) or "none"
+        raise InputError(
+            f"{where}: a CSR group needs arrays data, indices and indptr; "
+            f"missing {', '.join(missing)} (found: {found})"
+        )
+    shape = _shape_attr(where, members["shape"])
+    for name in CSR_ARRAYS:
+        if len(arrays[name][0]) != 1:
+            raise InputError(f"{where}/{name}: expected a 1-D array, found shape {arrays[name][0]}")
+    for name in ("indices", "indptr"):
+        if np.dtype(arrays[name][1]).kind not in "iu":
+            raise InputError(
+                f"{where}/{name}: dtype {np.dtype(arrays[name][1])} cannot be read as "
+                "column numbers or offsets; expected an integer dtype"
+            )
+    nnz = arrays["data"][0][0]
+    if arrays["indices"][0][0] != nnz:
+        raise InputError(
+            f"{where}: indices has {arrays['indices'][0][0]} entries but data has {nnz}; "
+            "the CSR arrays disagree"
+        )
+    m = shape[0]
+    if arrays["indptr"][0][0] != m + 1:
+        raise InputError(
+            f"{where}/indptr: expected m + 1 = {m + 1} entries (shape {list(shape)}), "
+            f"found {arrays['indptr'][0][0]}"
+        )
+    first, last = (int(v) for v in _read_slice(ArrayRef(ref.path, f"{ref.name}/indptr"), m))
+    if first != 0 or last != nnz:
+        raise InputError(
+            f"{where}/indptr: expected to run from 0 to nnz = {nnz}, found {first} .. {last}"
+        )
+    return CsrInfo(ref, shape, arrays["data"][1], nnz, arrays["indices"][1])
+
+
+def _shape_attr(where: str, raw: Any) -> tuple[int, int]:
+    """The ``shape`` attribute as (m, n), or InputError."""
+    if raw is None:
+        raise InputError(f"{where}: CSR group has no 'shape' attribute; expected [m, n]")
+    values = np.asarray(raw).reshape(-1)
+    if values.size != 2 or values.dtype.kind not in "iuf" or np.any(values != np.round(values)):
+        raise InputError(f"{where}: attribute 'shape' must be [m, n], found {raw!r}")
+    m, n = (int(v) for v in values)
+    if m < 0 or n < 0:
+        raise InputError(f"{where}: attribute 'shape' must be >= 0, found [{m}, {n}]")
+    return m, n
+
+
+def _read_slice(ref: ArrayRef, last: int) -> tuple[int, int]:
+    """Read entries 0 and ``last`` of a 1-D array (the ends of ``indptr``)."""
+    if ref.is_hdf5:
+        with _HDF5_LOCK, h5py.File(ref.path, "r") as handle:
+            dataset = handle[ref.name]
+            return int(dataset[0]), int(dataset[last])
+    array = _open_zarr(ref.path)[ref.name]
+    return int(array[0]), int(array[last])
+
+
+def read_csr_rows(
+    ref: ArrayRef, start: int, stop: int, purpose: str = "data"
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Read rows ``[start, stop)`` of a CSR group.
+
+    Parameters
+    ----------
+    ref : ArrayRef
+        The group; opened here and closed before returning.
+    start, stop : int
+        Row range.
+    purpose : str
+        Recorded in the read log (``ROWFOLD_READ_LOG``): ``data`` or ``fingerprint``.
+
+    Returns
+    -------
+    data, indices : numpy.ndarray
+        The stored values (own dtype) and their column numbers (int64) of those rows.
+    indptr : numpy.ndarray
+        ``stop - start + 1`` offsets into them (int64), rebased to start at 0. When the
+        ``indptr`` slice on disk decreases anywhere this is returned as read (rebased) with
+        ``data`` and ``indices`` empty; checking it is the caller's job.
+
+    Raises
+    ------
+    InputError
+        When the arrays cannot be read.
+    """
+    _log_read(ref, start, stop, purpose)
+    try:
+        if ref.is_hdf5:
+            with _HDF5_LOCK, h5py.File(ref.path, "r") as handle:
+                group = handle[ref.name] if ref.name not in ("", ".", "/") else handle
+                return _read_from(group, start, stop)
+        root = _open_zarr(ref.path)
+        group = root[ref.name] if ref.name not in ("", ".", "/") else root
+        return _read_from(group, start, stop)
+    except Exception as exc:
+        raise InputError(
+            f"{ref.describe()}: rows {start}..{stop - 1} cannot be read "
+            f"({exc.__class__.__name__}: {exc})"
+        ) from None
+
+
+def _read_from(group: Any, start: int, stop: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    ptr = np.asarray(group["indptr"][start : stop + 1], dtype=np.int64)
+    lo, hi = (int(ptr[0]), int(ptr[-1])) if ptr.size else (0, 0)
+    if lo < 0 or hi < lo or np.any(np.diff(ptr) < 0):
+        data = np.zeros(0, dtype=group["data"].dtype)
+        return data, np.zeros(0, dtype=np.int64), ptr - lo
+    data = np.asarray(group["data"][lo:hi])
+    indices = np.asarray(group["indices"][lo:hi], dtype=np.int64)
+    return data, indices, ptr - lo
+
+
+def window_hash(ref: ArrayRef, start: int, stop: int) -> str:
+    """SHA-256 of rows ``[start, stop)`` of a CSR group, as (data, indices, indptr)."""
+    digest = hashlib.sha256()
+    for part in read_csr_rows(ref, start, stop, purpose="fingerprint"):
+        digest.update(np.ascontiguousarray(part).tobytes())
+    return digest.hexdigest()
+
+
+def fingerprint(ref: ArrayRef, shape: tuple[int, ...], rows: int | None = None) -> dict[str, Any]:
+    """Fingerprint a dense array or a CSR group (the same record for both).
+
+    Dense arrays go to :func:`rowfold.storage.inputs.fingerprint`; for a CSR group the same
+    row windows are hashed as (data, indices, indptr) by :func:`window_hash`.
+    """
+    if not is_csr(ref):
+        return inputs.fingerprint(ref, shape, rows)
+    upto = shape[0] if rows is None else rows
+    return {
+        "shape": list(shape),
+        "rows": upto,
+        "format": "csr",
+        "windows": [
+            [start, stop, window_hash(ref, start, stop)]
+            for start, stop in inputs.prefix_windows(upto)
+        ],
+    }
+
+
+def write_csr(
+    path: str | Path,
+    group: str,
+    matrix: Any,
+    extra_arrays: dict[str, np.ndarray] | None = None,
+) -> None:
+    """Write a sparse matrix into the CSR layout rowfold reads (HDF5 or Zarr).
+
+    Parameters
+    ----------
+    path : str or Path
+        ``.h5``/``.hdf5`` file or ``.zarr`` store; created if missing, else opened for
+        appending (other arrays in it are kept).
+    group : str
+        Group to write, e.g. ``network/A``; replaced if present. Name it in
+        ``input.matrix``.
+    matrix : scipy.sparse matrix or array
+        Any scipy.sparse format (converted to CSR), or a dense 2-D array.
+    extra_arrays : dict, optional
+        Further arrays to write beside it (e.g. ``{"network/b": b, "network/w": w}``);
+        each replaced if present.
+
+    Examples
+    --------
+    >>> import scipy.sparse as sp
+    >>> write_csr("levels.h5", "network/A", sp.random(1000, 20, density=0.1))  # doctest: +SKIP
+    """
+    import scipy.sparse as sp
+
+    csr = sp.csr_array(matrix)
+    arrays = {
+        f"{group}/data": csr.data,
+        f"{group}/indices": csr.indices,
+        f"{group}/indptr": csr.indptr,
+    }
+    target = Path(path)
+    target.parent.mkdir(parents=True, exist_ok=True)
+    shape = np.asarray(csr.shape, dtype=np.int64)
+    extra = dict(extra_arrays or {})
+    if target.suffix.lower() in HDF5_SUFFIXES:
+        _write_hdf5(target, group, shape, arrays, extra)
+    else:
+        _write_zarr(target, group, shape, arrays, extra)
+
+
+def _chunk(name: str, array: np.ndarray) -> tuple[int, ...]:
+    rows = PTR_CHUNK if name.endswith("/indptr") else WRITE_CHUNK
+    return (max(1, min(rows, array.shape[0])), *array.shape[1:])
+
+
+def _write_hdf5(
+    target: Path,
+    group: str,
+    shape: np.ndarray,
+    arrays: dict[str, np.ndarray],
+    extra: dict[str, np.ndarray],
+) -> None:
+    with _HDF5_LOCK, h5py.File(target, "a") as handle:
+        for name in (group, *extra):
+            if name in handle:
+                del handle[name]
+        created = handle.create_group(group)
+        created.attrs["shape"] = shape
+        for name, array in {**arrays, **extra}.items():
+            handle.create_dataset(name, data=array, chunks=_chunk(name, array))
+
+
+def _write_zarr(
+    target: Path,
+    group: str,
+    shape: np.ndarray,
+    arrays: dict[str, np.ndarray],
+    extra: dict[str, np.ndarray],
+) -> None:
+    import zarr
+
+    root = zarr.open_group(str(target), mode="a")
+    for name in (group, *extra):
+        if name in root:
+            del root[name]
+    created = root.require_group(group)
+    created.attrs["shape"] = [int(v) for v in shape]
+    for name, array in {**arrays, **extra}.items():
+        out = root.create_array(
+            name, shape=array.shape, dtype=array.dtype, chunks=_chunk(name, array)
+        )
+        out[...] = array
