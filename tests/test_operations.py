@@ -1,0 +1,179 @@
+"""Nightly operation: update by appended rows, several jobs per run, provenance.
+
+References: a full refactorization by rowfold itself and numpy/scipy LAPACK (the update must
+equal a full run up to rounding, ~kappa u); the read log shows which rows were read.
+"""
+
+from __future__ import annotations
+
+import json
+from pathlib import Path
+
+import h5py
+import numpy as np
+import pytest
+import scipy.linalg
+import yaml
+
+from rowfold import storage
+from rowfold.cli import main
+
+from support import U, prescribed
+
+
+def make_input(folder: Path, A: np.ndarray, b: np.ndarray, suffix: str) -> Path:
+    """Write A and b as growable arrays (HDF5 maxshape None; Zarr arrays can grow)."""
+    path = folder / f"obs{suffix}"
+    if suffix == ".h5":
+        with h5py.File(path, "w") as handle:
+            handle.create_dataset(
+                "A", data=A, maxshape=(None, A.shape[1]), chunks=(100, A.shape[1])
+            )
+            handle.create_dataset("b", data=b, maxshape=(None,), chunks=(100,))
+    else:
+        storage.write_arrays(path, {"A": A, "b": b}, chunk_rows=100)
+    return path
+
+
+def append_rows(path: Path, A_new: np.ndarray, b_new: np.ndarray) -> None:
+    if path.suffix == ".h5":
+        with h5py.File(path, "a") as handle:
+            m = handle["A"].shape[0]
+            handle["A"].resize((m + len(A_new), A_new.shape[1]))
+            handle["A"][m:] = A_new
+            handle["b"].resize((m + len(b_new),))
+            handle["b"][m:] = b_new
+        return
+    import zarr
+
+    group = zarr.open_group(str(path), mode="a")
+    group["A"].append(A_new, axis=0)
+    group["b"].append(b_new, axis=0)
+
+
+def write_job(folder: Path, data: Path, **extra: object) -> Path:
+    job = {
+        "input": {"path": data.name, "matrix": "A", "rhs": "b", "rows_per_block": 150},
+        "output": {"path": "result.h5", "overwrite": True},
+        **extra,
+    }
+    path = folder / "job.yaml"
+    path.write_text(yaml.safe_dump(job), encoding="utf-8")
+    return path
+
+
+def result(folder: Path) -> tuple[dict[str, np.ndarray], dict[str, object]]:
+    arrays = storage.read_result(folder / "result.h5")
+    report = json.loads((folder / "result.report.json").read_text(encoding="utf-8"))
+    return arrays, report
+
+
+@pytest.mark.parametrize("suffix", [".h5", ".zarr"])
+def test_update_equals_a_full_run_and_reads_only_new_rows(
+    tmp_path: Path, suffix: str, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    rng = np.random.default_rng(41)
+    A = prescribed(1050, 6, 1e4, seed=41)
+    b = A @ rng.standard_normal(6) + 1e-3 * rng.standard_normal(1050)
+    data = make_input(tmp_path, A[:1000], b[:1000], suffix)
+    job = write_job(tmp_path, data)
+    assert main(["--quiet", "run", str(job), "--inline"]) == 0
+    append_rows(data, A[1000:], b[1000:])  # 5% more rows
+    log = tmp_path / "reads.log"
+    monkeypatch.setenv("ROWFOLD_READ_LOG", str(log))
+    assert main(["--quiet", "update", str(job), "--inline"]) == 0
+    monkeypatch.delenv("ROWFOLD_READ_LOG")
+    data_reads = [
+        line.split("\t") for line in log.read_text().splitlines() if line.startswith("data")
+    ]
+    assert data_reads and all(int(start) >= 1000 for _, _, _, start, _ in data_reads)
+    updated, report = result(tmp_path)
+    assert report["update"] == {"rows_before": 1000, "rows_added": 50}
+    assert main(["--quiet", "run", str(job), "--inline"]) == 0
+    full, full_report = result(tmp_path)
+    kappa_u = 1e4 * U
+    assert np.linalg.norm(updated["R"] - full["R"]) <= 100 * kappa_u * np.linalg.norm(full["R"])
+    assert np.allclose(updated["x"], full["x"], rtol=100 * kappa_u, atol=0)
+    assert np.allclose(updated["x"], scipy.linalg.lstsq(A, b)[0], rtol=1e-9)
+    assert report["residual_std"] == pytest.approx(full_report["residual_std"], rel=1e-10)
+    assert np.allclose(updated["x_stderr"], full["x_stderr"], rtol=1e-10)
+
+
+def test_update_refuses_changed_old_rows(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    A = prescribed(600, 4, 10.0, seed=42)
+    data = make_input(tmp_path, A, A[:, 0].copy(), ".h5")
+    job = write_job(tmp_path, data)
+    assert main(["--quiet", "run", str(job), "--inline"]) == 0
+    before = (tmp_path / "result.h5").read_bytes()
+    with h5py.File(data, "a") as handle:
+        handle["A"][10, 2] += 1.0
+    append_rows(data, A[:20], A[:20, 0])
+    capsys.readouterr()
+    assert main(["--quiet", "update", str(job), "--inline"]) == 2
+    err = capsys.readouterr().err
+    assert "run `rowfold run` instead" in err and "obs.h5:A" in err
+    assert (tmp_path / "result.h5").read_bytes() == before
+
+
+def test_update_without_new_rows_changes_nothing(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    A = prescribed(300, 3, 10.0, seed=43)
+    job = write_job(tmp_path, make_input(tmp_path, A, A[:, 0].copy(), ".h5"))
+    assert main(["--quiet", "run", str(job), "--inline"]) == 0
+    before = (tmp_path / "result.h5").read_bytes()
+    assert main(["--quiet", "update", str(job), "--inline"]) == 0
+    assert "nothing to do" in capsys.readouterr().out
+    assert (tmp_path / "result.h5").read_bytes() == before
+
+
+def test_update_without_earlier_result_is_refused(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    A = prescribed(300, 3, 10.0, seed=44)
+    job = write_job(tmp_path, make_input(tmp_path, A, A[:, 0].copy(), ".h5"))
+    assert main(["--quiet", "update", str(job), "--inline"]) == 2
+    assert "no earlier result" in capsys.readouterr().err
+
+
+def test_several_jobs_run_on_and_exit_with_the_worst_status(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    A = prescribed(300, 3, 10.0, seed=45)
+    data = make_input(tmp_path, A, A[:, 0].copy(), ".h5")
+    jobs = tmp_path / "jobs"
+    jobs.mkdir()
+    good = {"input": {"path": str(data), "matrix": "A"}, "output": {"overwrite": True}}
+    for name, extra in [
+        ("a_good", {}),
+        ("b_missing_dataset", {"input": {"path": str(data), "matrix": "nope"}}),
+        ("c_good", {}),
+    ]:
+        spec = {
+            **good,
+            **extra,
+            "output": {"path": str(tmp_path / f"{name}.h5"), "overwrite": True},
+        }
+        (jobs / f"{name}.yaml").write_text(yaml.safe_dump(spec), encoding="utf-8")
+    assert main(["--quiet", "run", str(jobs), "--inline"]) == 2
+    out = capsys.readouterr().out
+    assert "job summary:" in out
+    assert (tmp_path / "a_good.h5").exists() and (tmp_path / "c_good.h5").exists()
+    (tmp_path / "c_good.h5").unlink()
+    assert main(["--quiet", "run", str(jobs), "--inline", "--fail-fast"]) == 2
+    assert not (tmp_path / "c_good.h5").exists()
+
+
+def test_inspect_shows_provenance(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    A = prescribed(300, 3, 10.0, seed=46)
+    job = write_job(tmp_path, make_input(tmp_path, A, A[:, 0].copy(), ".h5"))
+    assert main(["--quiet", "run", str(job), "--inline"]) == 0
+    capsys.readouterr()
+    assert main(["inspect", str(tmp_path / "result.h5")]) == 0
+    shown = json.loads(capsys.readouterr().out)
+    prov = shown["attrs"]["provenance"]
+    for key in ("rowfold", "numpy", "scipy", "dask", "h5py", "zarr", "blas", "host", "started"):
+        assert key in prov
+    assert shown["attrs"]["inputs"]["matrix"]["windows"]
