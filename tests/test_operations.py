@@ -177,3 +177,75 @@ def test_inspect_shows_provenance(tmp_path: Path, capsys: pytest.CaptureFixture[
     for key in ("rowfold", "numpy", "scipy", "dask", "h5py", "zarr", "blas", "host", "started"):
         assert key in prov
     assert shown["attrs"]["inputs"]["matrix"]["windows"]
+
+
+def test_killed_run_resumes_without_rereading_finished_blocks(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    """SIGKILL mid-way through the first pass; `run --resume` reuses the checkpointed
+    blocks (the read log shows they are not read again) and gives the same R as a fresh run.
+    """
+    import os
+    import signal
+    import subprocess
+    import sys
+    import time
+
+    rng = np.random.default_rng(47)
+    A = rng.standard_normal((240_000, 40))
+    data = make_input(tmp_path, A, A[:, 0].copy(), ".h5")
+    job = write_job(tmp_path, data)
+    text = job.read_text().replace("rows_per_block: 150", "rows_per_block: 8000")
+    job.write_text(text)
+    folder = tmp_path / ".rowfold-checkpoints-result.h5"
+    proc = subprocess.Popen(
+        [
+            sys.executable,
+            "-m",
+            "rowfold",
+            "--quiet",
+            "run",
+            str(job),
+            "--set",
+            "cluster.processes=false",
+            "--set",
+            "cluster.workers=1",
+        ],
+        cwd=tmp_path,
+        start_new_session=True,
+        stdout=subprocess.DEVNULL,
+        stderr=subprocess.DEVNULL,
+    )
+    try:
+        deadline = time.monotonic() + 120
+        while time.monotonic() < deadline and proc.poll() is None:
+            if folder.is_dir() and len(list(folder.glob("tsqr-leaf-*.npz"))) >= 3:
+                break
+            time.sleep(0.02)
+        assert proc.poll() is None, "the run ended before it could be killed"
+        os.killpg(proc.pid, signal.SIGKILL)
+    finally:
+        if proc.poll() is None:
+            os.killpg(proc.pid, signal.SIGKILL)
+        proc.wait(timeout=30)
+    saved = sorted(int(p.stem.split("-")[-1]) for p in folder.glob("tsqr-leaf-*.npz"))
+    assert saved and not (tmp_path / "result.h5").exists()
+    log = tmp_path / "reads.log"
+    monkeypatch.setenv("ROWFOLD_READ_LOG", str(log))
+    assert main(["--quiet", "run", str(job), "--inline", "--resume"]) == 0
+    monkeypatch.delenv("ROWFOLD_READ_LOG")
+    first_pass = [
+        int(line.split("\t")[3]) // 8000
+        for line in log.read_text().splitlines()
+        if line.startswith("data") and line.split("\t")[2] == "A"
+    ]
+    # each block is read once by the verification pass; saved blocks are not read by pass 1
+    reads = {block: first_pass.count(block) for block in range(30)}
+    assert all(reads[block] == 1 for block in saved)
+    assert all(reads[block] == 2 for block in range(30) if block not in saved)
+    resumed, report = result(tmp_path)
+    assert report["method_details"]["resumed_blocks"] == len(saved)
+    assert not folder.exists()
+    assert main(["--quiet", "run", str(job), "--inline"]) == 0
+    fresh, _ = result(tmp_path)
+    assert np.allclose(resumed["R"], fresh["R"], rtol=0, atol=1e-12 * np.abs(fresh["R"]).max())

@@ -39,6 +39,11 @@ def _parser() -> argparse.ArgumentParser:
     run.add_argument(
         "--fail-fast", action="store_true", help="stop at the first job that does not exit 0"
     )
+    run.add_argument(
+        "--resume",
+        action="store_true",
+        help="reuse the checkpoints an interrupted run of the same job left (tsqr)",
+    )
     update = verbs.add_parser("update", help="fold rows appended since the last run into it")
     update.add_argument("job", type=Path)
     update.add_argument("--set", dest="overrides", action="append", default=[], metavar="KEY=VALUE")
@@ -96,7 +101,7 @@ def _job_files(paths: list[Path]) -> list[Path]:
 
 def _run_one(path: Path, args: argparse.Namespace, progress: Progress) -> int:
     job = runner.load_job(path, tuple(args.overrides))
-    outcome = runner.run_job(job, progress, inline=args.inline)
+    outcome = runner.run_job(job, progress, inline=args.inline, resume=args.resume)
     _say(_summary(outcome))
     return outcome.status
 

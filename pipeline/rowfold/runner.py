@@ -6,6 +6,7 @@ whole result is ready; the result store and its reports are committed together.
 
 from __future__ import annotations
 
+import json
 import time
 from collections.abc import Iterator
 from contextlib import ExitStack, contextmanager
@@ -28,6 +29,7 @@ from rowfold.refine import refine
 from rowfold.report import CAUTION, render_html, to_json
 from rowfold.solve import Solution, Statistics, solve, statistics
 from rowfold.spec import Job, load_job
+from rowfold.storage.checkpoints import close_checkpoints, open_checkpoints
 
 __all__ = [
     "NoNewRowsError",
@@ -120,7 +122,9 @@ def wants_q(job: Job) -> bool:
     return job.output.q or gates or job.solve.refine or job.solve.residuals
 
 
-def run_job(job: Job, progress: Progress | None = None, inline: bool = False) -> RunOutcome:
+def run_job(
+    job: Job, progress: Progress | None = None, inline: bool = False, resume: bool = False
+) -> RunOutcome:
     """Run a job end to end and commit its result store and reports.
 
     Parameters
@@ -131,6 +135,9 @@ def run_job(job: Job, progress: Progress | None = None, inline: bool = False) ->
         Where progress goes (nothing by default).
     inline : bool
         Run the graphs in this thread instead of on a Dask cluster (tests, debugging).
+    resume : bool
+        Reuse the first-pass checkpoints that an interrupted run of the same job left
+        (tsqr); blocks already factored are not read again.
 
     Raises
     ------
@@ -148,7 +155,23 @@ def run_job(job: Job, progress: Progress | None = None, inline: bool = False) ->
         workdir = stack.enter_context(storage.scratch_folder(job.output.path))
         with clock.stage("cluster_start"):
             engine = stack.enter_context(_engine(job, progress, inline))
-        return _run_on(job, plan, Context(engine, wants_q(job), workdir), clock, started)
+        inputs = _fingerprints(job, plan, engine)
+        checkpoints = _checkpoints(job, plan, inputs, resume)
+        ctx = Context(engine, wants_q(job), workdir, checkpoints)
+        outcome = _run_on(job, plan, ctx, inputs, clock, started)
+        if checkpoints is not None:
+            close_checkpoints(job.output.path)
+        return outcome
+
+
+def _checkpoints(job: Job, plan: BlockPlan, inputs: dict[str, Any], resume: bool) -> Path | None:
+    """The checkpoint folder for methods that checkpoint their first pass (tsqr)."""
+    if job.method.name != "tsqr" or job.solve.scale_columns:
+        return None
+    resolved = {key: value for key, value in job.resolved.items() if key != "cluster"}
+    manifest = {"job": resolved, "bounds": plan.bounds, "inputs": inputs}
+    folder, _ = open_checkpoints(job.output.path, json.loads(json.dumps(manifest)), resume)
+    return folder
 
 
 @contextmanager
@@ -160,7 +183,14 @@ def _engine(job: Job, progress: Progress, inline: bool) -> Iterator[Any]:
         yield engine
 
 
-def _run_on(job: Job, plan: BlockPlan, ctx: Context, clock: _Clock, started: float) -> RunOutcome:
+def _run_on(
+    job: Job,
+    plan: BlockPlan,
+    ctx: Context,
+    inputs: dict[str, Any],
+    clock: _Clock,
+    started: float,
+) -> RunOutcome:
     """The part of a run that needs the engine."""
     engine = ctx.engine
     extra: dict[str, Any] = {"warnings": []}
@@ -205,7 +235,7 @@ def _run_on(job: Job, plan: BlockPlan, ctx: Context, clock: _Clock, started: flo
             peak_memory=engine.peak_memory_bytes(),
             extra={
                 **extra,
-                "inputs": _fingerprints(job, plan, engine),
+                "inputs": inputs,
                 "provenance": provenance(started, time.time()),
                 "caution": CAUTION,
             },

@@ -90,11 +90,15 @@ class Context:
         A scratch folder beside the output that the method may create and fill (e.g.
         with intermediate Q panels); the runner removes it when the job ends. Workers
         write there too, so on a remote cluster it must be on a shared file system.
+    checkpoints : Path or None
+        Folder for per-block checkpoints of the first pass (tsqr), kept until the result
+        is committed; finished blocks found there are not read again (``run --resume``).
     """
 
     engine: Engine
     want_q: bool
     workdir: Path
+    checkpoints: Path | None = None
 
 
 class Method(Protocol):

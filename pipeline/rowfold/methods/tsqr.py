@@ -9,6 +9,7 @@ path from the root to leaf i (the tree's factors applied back down).
 
 from __future__ import annotations
 
+from pathlib import Path
 from typing import Any
 
 import numpy as np
@@ -18,6 +19,7 @@ from rowfold.kernels import householder_q, householder_r, metrics, positive_diag
 from rowfold.methods._graph import task, tree_levels
 from rowfold.methods.base import Context, Engine, Factorization
 from rowfold.spec import MethodSpec
+from rowfold.storage.checkpoints import load_checkpoint, save_checkpoint
 
 
 def leaf_factor(source: BlockSource, index: int) -> tuple[Any, Any, Any, metrics.Sums]:
@@ -25,6 +27,23 @@ def leaf_factor(source: BlockSource, index: int) -> tuple[Any, Any, Any, metrics
     block, rhs = source.load(index)
     R, C = householder_r(block, rhs)
     return R, C, None, metrics.gram_sums(block)
+
+
+def checkpointed_leaf(
+    source: BlockSource, index: int, path: str
+) -> tuple[Any, Any, Any, metrics.Sums]:
+    """:func:`leaf_factor`, saving its result to ``path`` for a later resume."""
+    result = leaf_factor(source, index)
+    R, C, _, sums = result
+    save_checkpoint(path, {"R": R, "C": C, "a_fro2": sums["a_fro2"], "gram": sums["gram"]})
+    return result
+
+
+def resumed_leaf(path: str) -> tuple[Any, Any, Any, metrics.Sums]:
+    """A leaf result saved by :func:`checkpointed_leaf` (its block is not read again)."""
+    saved = load_checkpoint(path)
+    sums = {"a_fro2": float(saved["a_fro2"]), "gram": saved["gram"]}
+    return saved["R"], saved.get("C"), None, sums
 
 
 def node_factor(keep_q: bool, *children: tuple[Any, ...]) -> tuple[Any, Any, Any, metrics.Sums]:
@@ -56,15 +75,52 @@ def fan_in_of(tree: str | int, leaves: int) -> int:
 
 def factor(plan: BlockPlan, spec: MethodSpec, ctx: Context) -> Factorization:
     """Run Householder TSQR over the plan's row blocks."""
-    engine, want_q = ctx.engine, ctx.want_q
-    return factor_source(plan, spec.tree, engine, want_q)
+    leaves = None
+    if ctx.checkpoints is not None:
+        leaves = _checkpoint_leaves(plan, ctx.checkpoints)
+    fact = factor_source(plan, spec.tree, ctx.engine, ctx.want_q, leaves=leaves)
+    if leaves is not None:
+        fact.details["resumed_blocks"] = sum(1 for leaf in leaves if leaf.resumed)
+    return fact
+
+
+class _Leaf:
+    """A leaf task and whether it comes from a checkpoint."""
+
+    def __init__(self, node: Any, resumed: bool) -> None:
+        self.node = node
+        self.resumed = resumed
+
+
+def _checkpoint_leaves(plan: BlockPlan, folder: Path) -> list[_Leaf]:
+    """Leaf tasks that save checkpoints, or load the ones a killed run left."""
+    leaves = []
+    for i in range(plan.blocks):
+        path = folder / f"tsqr-leaf-{i:07d}.npz"
+        if path.exists():
+            leaves.append(_Leaf(task(resumed_leaf, str(path)), True))
+        else:
+            leaves.append(_Leaf(task(checkpointed_leaf, plan, i, str(path)), False))
+    return leaves
 
 
 def factor_source(
-    source: BlockSource, tree: str | int, engine: Engine, want_q: bool, label: str = "tsqr"
+    source: BlockSource,
+    tree: str | int,
+    engine: Engine,
+    want_q: bool,
+    label: str = "tsqr",
+    leaves: list[Any] | None = None,
 ) -> Factorization:
-    """Run Householder TSQR over any block source (the input, or a derived panel)."""
-    leaves = [task(leaf_factor, source, i) for i in range(source.blocks)]
+    """Run Householder TSQR over any block source (the input, or a derived panel).
+
+    ``leaves`` may supply the leaf tasks (e.g. with checkpoints); by default each leaf
+    reads and factors one block of the source.
+    """
+    if leaves is None:
+        leaves = [task(leaf_factor, source, i) for i in range(source.blocks)]
+    else:
+        leaves = [leaf.node if isinstance(leaf, _Leaf) else leaf for leaf in leaves]
     fan_in = fan_in_of(tree, len(leaves))
     levels = tree_levels(leaves, fan_in, lambda kids: task(node_factor, want_q, *kids))
     if want_q:
