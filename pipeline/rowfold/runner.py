@@ -19,7 +19,13 @@ import numpy as np
 from rowfold import __version__, quality, storage
 from rowfold.blocks import BlockPlan, plan_blocks
 from rowfold.cluster import InlineEngine, Progress, open_engine
-from rowfold.errors import EXIT_GATE_FAILED, EXIT_OK, InputError, RowfoldError
+from rowfold.errors import (
+    EXIT_GATE_FAILED,
+    EXIT_INVALID,
+    EXIT_OK,
+    InputError,
+    RowfoldError,
+)
 from rowfold.kernels import metrics
 from rowfold.methods import get_method
 from rowfold.methods._graph import task
@@ -158,7 +164,12 @@ def run_job(
         inputs = _fingerprints(job, plan, engine)
         checkpoints = _checkpoints(job, plan, inputs, resume)
         ctx = Context(engine, wants_q(job), workdir, checkpoints)
-        outcome = _run_on(job, plan, ctx, inputs, clock, started)
+        try:
+            outcome = _run_on(job, plan, ctx, inputs, clock, started)
+        except RowfoldError as exc:
+            if checkpoints is not None and exc.exit_status == EXIT_INVALID:
+                close_checkpoints(job.output.path)  # a bad input: nothing worth resuming
+            raise
         if checkpoints is not None:
             close_checkpoints(job.output.path)
         return outcome
