@@ -156,6 +156,26 @@ def run_job(
     with clock.stage("plan"):
         plan = plan_job(job)
         storage.check_output_path(job.output.path, job.output.overwrite)
+    try:
+        outcome = _run_with_engine(job, plan, progress, inline, resume, clock, started)
+    except RowfoldError as exc:
+        if exc.exit_status == EXIT_INVALID:  # a bad input: no checkpoint is worth resuming
+            close_checkpoints(job.output.path)
+        raise
+    close_checkpoints(job.output.path)
+    return outcome
+
+
+def _run_with_engine(
+    job: Job,
+    plan: BlockPlan,
+    progress: Progress,
+    inline: bool,
+    resume: bool,
+    clock: _Clock,
+    started: float,
+) -> RunOutcome:
+    """Start the engine and scratch folder, run, and shut them down (before cleanup)."""
     with ExitStack() as stack:
         storage.remove_litter(job.output.path)
         workdir = stack.enter_context(storage.scratch_folder(job.output.path))
@@ -164,15 +184,7 @@ def run_job(
         inputs = _fingerprints(job, plan, engine)
         checkpoints = _checkpoints(job, plan, inputs, resume)
         ctx = Context(engine, wants_q(job), workdir, checkpoints)
-        try:
-            outcome = _run_on(job, plan, ctx, inputs, clock, started)
-        except RowfoldError as exc:
-            if checkpoints is not None and exc.exit_status == EXIT_INVALID:
-                close_checkpoints(job.output.path)  # a bad input: nothing worth resuming
-            raise
-        if checkpoints is not None:
-            close_checkpoints(job.output.path)
-        return outcome
+        return _run_on(job, plan, ctx, inputs, clock, started)
 
 
 def _checkpoints(job: Job, plan: BlockPlan, inputs: dict[str, Any], resume: bool) -> Path | None:
