@@ -18,7 +18,7 @@ from typing import Any
 
 from rowfold import __version__, runner
 from rowfold.cluster import Progress
-from rowfold.errors import EXIT_INVALID, EXIT_RUN_FAILED, RowfoldError
+from rowfold.errors import EXIT_INVALID, EXIT_RUN_FAILED, JobError, RowfoldError
 
 
 def _parser() -> argparse.ArgumentParser:
@@ -43,6 +43,17 @@ def _parser() -> argparse.ArgumentParser:
         "--resume",
         action="store_true",
         help="reuse the checkpoints an interrupted run of the same job left (tsqr)",
+    )
+    compare = verbs.add_parser("compare", help="run one job with several methods side by side")
+    compare.add_argument("job", type=Path)
+    compare.add_argument(
+        "--methods", required=True, help="comma-separated method names, e.g. tsqr,cholqr2,auto"
+    )
+    compare.add_argument(
+        "--set", dest="overrides", action="append", default=[], metavar="KEY=VALUE"
+    )
+    compare.add_argument(
+        "--inline", action="store_true", help="run in this process without a Dask cluster"
     )
     update = verbs.add_parser("update", help="fold rows appended since the last run into it")
     update.add_argument("job", type=Path)
@@ -134,6 +145,21 @@ def _guarded(action: Any, args: argparse.Namespace) -> tuple[int, str]:
         return EXIT_RUN_FAILED, exc.__class__.__name__
 
 
+def _compare(args: argparse.Namespace, progress: Progress) -> int:
+    job = runner.load_job(args.job, tuple(args.overrides))
+    methods = [name.strip() for name in args.methods.split(",") if name.strip()]
+    unknown = [name for name in methods if name not in runner.METHOD_NAMES]
+    if unknown or not methods:
+        raise JobError(
+            f"--methods {args.methods!r}: unknown method {', '.join(unknown) or '(none given)'}; "
+            f"expected names from: {', '.join(runner.METHOD_NAMES)}"
+        )
+    records, json_path, html_path = runner.compare_job(job, methods, progress, args.inline)
+    _say(runner.comparison_table(records))
+    _say(f"wrote {json_path}\nwrote {html_path}")
+    return 0
+
+
 def _update(args: argparse.Namespace, progress: Progress) -> int:
     job = runner.load_job(args.job, tuple(args.overrides))
     try:
@@ -183,6 +209,8 @@ def main(argv: Sequence[str] | None = None) -> int:
             return _run(args, progress)
         if args.verb == "update":
             return _update(args, progress)
+        if args.verb == "compare":
+            return _compare(args, progress)
         if args.verb == "check":
             return _check(args)
         if args.verb == "demo":

@@ -166,6 +166,8 @@ def equilibration(norms: np.ndarray) -> np.ndarray:
 
 
 WORST_ROWS = 20
+# Standardized residuals beyond +-6 are counted in the outermost histogram bins.
+HISTOGRAM_LIMIT = 6.0
 
 
 @dataclass(frozen=True)
@@ -185,6 +187,7 @@ class Screening:
     flag_above: float
     flagged: list[int]
     worst: list[dict[str, Any]]
+    histogram: dict[str, list[float]]
 
 
 def standardized(residuals: np.ndarray, leverage: np.ndarray, sigma: np.ndarray) -> np.ndarray:
@@ -207,6 +210,8 @@ def screen_residuals(
     stores the standardized residuals. Memory holds one block at a time.
     """
     flagged = np.zeros(plan.rhs_cols, dtype=int)
+    edges = np.linspace(-HISTOGRAM_LIMIT, HISTOGRAM_LIMIT, 49)
+    counts = np.zeros(edges.size - 1, dtype=int)
     worst: list[tuple[float, int, int, float, float]] = []
     for start, stop in plan.bounds:
         r = read("residuals", start, stop).reshape(stop - start, plan.rhs_cols)
@@ -215,6 +220,8 @@ def screen_residuals(
         write(start, z)
         size = np.abs(z)
         flagged += np.sum(size > flag_above, axis=0)
+        finite = np.real(z[np.isfinite(z)])
+        counts += np.histogram(np.clip(finite, edges[0], edges[-1]), bins=edges)[0]
         top = np.argsort(np.nan_to_num(size, nan=-1.0), axis=None)[::-1][:WORST_ROWS]
         for flat in top:
             row, col = divmod(int(flat), plan.rhs_cols)
@@ -234,6 +241,7 @@ def screen_residuals(
             }
             for value, row, col, res, lev in worst
         ],
+        {"edges": [float(e) for e in edges], "counts": [int(c) for c in counts]},
     )
 
 

@@ -25,8 +25,8 @@ def to_json(report: dict[str, Any]) -> str:
     return json.dumps(report, indent=2, sort_keys=False) + "\n"
 
 
-def _plot_png(report: dict[str, Any]) -> str | None:
-    """Plot the singular values and |diag(R)| and return a base64 PNG, or None."""
+def _pyplot() -> Any:
+    """matplotlib's pyplot on the Agg backend, or None when matplotlib is missing."""
     try:
         import matplotlib
 
@@ -34,20 +34,66 @@ def _plot_png(report: dict[str, Any]) -> str | None:
         import matplotlib.pyplot as plt
     except ImportError:  # matplotlib is a dependency; keep the report readable without it
         return None
+    return plt
+
+
+def _png(plt: Any, fig: Any) -> str:
+    fig.tight_layout()
+    buffer = io.BytesIO()
+    fig.savefig(buffer, format="png", dpi=100)
+    plt.close(fig)
+    return base64.b64encode(buffer.getvalue()).decode("ascii")
+
+
+def _spectrum(plt: Any, report: dict[str, Any]) -> str:
     sigma = np.asarray(report.get("r_singular_values") or [], dtype=float)
     diag = np.abs(np.asarray(report.get("r_diagonal") or [], dtype=float))
-    fig, ax = plt.subplots(figsize=(7, 3.2), dpi=100)
+    fig, ax = plt.subplots(figsize=(7, 3.2))
     positions = np.arange(1, sigma.size + 1)
     ax.semilogy(positions, np.maximum(sigma, 1e-300), "o-", ms=3, label="singular values of R")
     ax.semilogy(positions, np.maximum(diag, 1e-300), "s", ms=3, label="|diag(R)|")
     ax.set_xlabel("index")
     ax.legend(loc="best", fontsize=8)
     ax.grid(True, which="both", alpha=0.3)
-    fig.tight_layout()
-    buffer = io.BytesIO()
-    fig.savefig(buffer, format="png")
-    plt.close(fig)
-    return base64.b64encode(buffer.getvalue()).decode("ascii")
+    return _png(plt, fig)
+
+
+def _timing(plt: Any, report: dict[str, Any]) -> str:
+    seconds = report.get("seconds") or {}
+    fig, ax = plt.subplots(figsize=(7, 2.6))
+    ax.barh(list(seconds), list(seconds.values()), color="#4a7ab0")
+    ax.set_xlabel("seconds")
+    return _png(plt, fig)
+
+
+def _histogram(plt: Any, report: dict[str, Any]) -> str | None:
+    hist = (report.get("residual_screening") or {}).get("histogram")
+    if not hist:
+        return None
+    edges = np.asarray(hist["edges"])
+    fig, ax = plt.subplots(figsize=(7, 2.8))
+    ax.stairs(hist["counts"], edges, fill=True, color="#b0704a")
+    limit = report["residual_screening"]["flag_above"]
+    for x in (-limit, limit):
+        ax.axvline(x, color="black", lw=0.8, ls="--")
+    ax.set_xlabel("standardized residual (outer bins hold everything beyond)")
+    ax.set_yscale("log")
+    return _png(plt, fig)
+
+
+def plots(report: dict[str, Any]) -> list[tuple[str, str]]:
+    """(title, base64 PNG) of the report's plots."""
+    plt = _pyplot()
+    if plt is None:
+        return []
+    out = [
+        ("Spectrum of R", _spectrum(plt, report)),
+        ("Time per stage", _timing(plt, report)),
+    ]
+    histogram = _histogram(plt, report)
+    if histogram:
+        out.append(("Standardized residuals", histogram))
+    return out
 
 
 _ROWS = (
@@ -107,8 +153,25 @@ def render_html(report: dict[str, Any]) -> str:
         if bound
         else ""
     )
-    png = _plot_png(report)
-    plot = f'<img alt="singular values of R" src="data:image/png;base64,{png}">' if png else ""
+    screening = report.get("residual_screening") or {}
+    worst = "".join(
+        f"<tr><td>{w['row']}</td><td>{w['rhs']}</td><td>{_num(w['residual'])}</td>"
+        f"<td>{_num(w['leverage'])}</td><td>{_num(w['standardized'])}</td></tr>"
+        for w in screening.get("worst", [])
+    )
+    screening_html = (
+        f"<h2>Residual screening</h2><p>{html.escape(str(screening.get('flagged')))} "
+        f"standardized residuals exceed {_num(screening.get('flag_above'))}.</p>"
+        "<table><tr><th>row</th><th>rhs</th><th>residual</th><th>leverage</th>"
+        f"<th>standardized</th></tr>{worst}</table>"
+        if screening
+        else ""
+    )
+    images = "".join(
+        f'<h2>{html.escape(title)}</h2><img alt="{html.escape(title)}" '
+        f'src="data:image/png;base64,{png}">'
+        for title, png in plots(report)
+    )
     title = html.escape(f"rowfold report: {report.get('name', '')}")
     return f"""<!DOCTYPE html>
 <html lang="en"><head><meta charset="utf-8"><title>{title}</title>
@@ -123,8 +186,9 @@ th{{text-align:left;padding-right:1em}}td{{font-family:monospace}}
 <p>{html.escape(bound_text)}</p>
 <h2>Gates</h2><table>{gates}</table>
 {f"<h2>Warnings</h2><ul>{warnings}</ul>" if warnings else ""}
-<h2>Time per stage</h2><p>{html.escape(stages)}</p>
-<h2>Spectrum of R</h2>{plot}
+{screening_html}
+<p>Time per stage: {html.escape(stages)}</p>
+{images}
 <p class="caution">{html.escape(CAUTION)}</p>
 </body></html>
 """

@@ -34,10 +34,11 @@ from rowfold.provenance import provenance
 from rowfold.refine import refine
 from rowfold.report import CAUTION, render_html, to_json
 from rowfold.solve import Solution, Statistics, solve, statistics
-from rowfold.spec import Job, load_job
+from rowfold.spec import METHOD_NAMES, Job, load_job
 from rowfold.storage.checkpoints import close_checkpoints, open_checkpoints
 
 __all__ = [
+    "METHOD_NAMES",
     "NoNewRowsError",
     "RunOutcome",
     "check_job",
@@ -122,10 +123,11 @@ def check_job(job: Job) -> dict[str, Any]:
 
 
 def wants_q(job: Job) -> bool:
-    """Q is formed when it is written, when a gate needs its figures, or when refinement or
-    leverages need its blocks."""
+    """Q is formed when it is written or measured (``output.measure_q``), when a gate needs
+    its figures, or when refinement or leverages need its blocks."""
     gates = job.gates.orthogonality is not None or job.gates.residual is not None
-    return job.output.q or gates or job.solve.refine or job.solve.residuals
+    wanted = job.output.q or job.output.measure_q
+    return wanted or gates or job.solve.refine or job.solve.residuals
 
 
 def run_job(
@@ -272,6 +274,37 @@ def _run_on(
             writer.commit()
     failed = any(not gate["held"] for gate in report["gates"].values())
     return RunOutcome(EXIT_GATE_FAILED if failed else EXIT_OK, report, job.output.path)
+
+
+def comparison_table(records: list[dict[str, Any]]) -> str:
+    """The comparison as a terminal table."""
+    from rowfold import compare
+
+    return compare.text_table(records)
+
+
+def compare_job(
+    job: Job, methods: list[str], progress: Progress | None = None, inline: bool = False
+) -> tuple[list[dict[str, Any]], Path, Path]:
+    """Run one job with several methods on one engine; write and return the comparison.
+
+    Returns the comparison records and the paths of its JSON and HTML files.
+    """
+    from rowfold import compare
+
+    plan = plan_job(job)
+    with _engine(job, progress or Progress(), inline) as engine:
+        inputs = _fingerprints(job, plan, engine)
+
+        def run(method_job: Job) -> RunOutcome:
+            with storage.scratch_folder(method_job.output.path) as workdir:
+                ctx = Context(engine, wants_q(method_job), workdir)
+                return _run_on(method_job, plan, ctx, inputs, _Clock(), time.time())
+
+        rows = [compare.run_row(job, method, run) for method in methods]
+    records = compare.table(rows)
+    json_path, html_path = compare.write(job, records)
+    return records, json_path, html_path
 
 
 def update_job(job: Job, progress: Progress | None = None, inline: bool = False) -> RunOutcome:
@@ -434,6 +467,7 @@ def _screen(
         "flag_above": screening.flag_above,
         "flagged": screening.flagged[0] if plan.rhs_1d else screening.flagged,
         "worst": screening.worst,
+        "histogram": screening.histogram,
     }
 
 

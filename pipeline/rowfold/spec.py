@@ -114,11 +114,15 @@ class OutputSpec:
         Also write the thin Q (m x n).
     overwrite : bool
         Replace an existing result.
+    measure_q : bool
+        Form Q in the verification pass to measure its orthogonality and the
+        factorization residual, without writing it.
     """
 
     path: Path
     q: bool = False
     overwrite: bool = False
+    measure_q: bool = False
 
 
 @dataclass(frozen=True, slots=True)
@@ -495,11 +499,12 @@ def _parse_method(doc: _Doc) -> MethodSpec:
 
 
 def _parse_output(doc: _Doc, base: Path) -> OutputSpec:
-    section = _Section(doc, ("output",), ("path", "q", "overwrite"))
+    section = _Section(doc, ("output",), ("path", "q", "overwrite", "measure_q"))
     return OutputSpec(
         path=section.require("path", _suffixed_path(DATA_SUFFIXES, base)),
         q=section.get("q", _flag, False),
         overwrite=section.get("overwrite", _flag, False),
+        measure_q=section.get("measure_q", _flag, False),
     )
 
 

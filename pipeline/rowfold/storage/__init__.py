@@ -31,6 +31,7 @@ from rowfold.storage.results import (
     remove_litter,
     report_paths,
     scratch_folder,
+    write_text_atomic,
 )
 
 __all__ = [
@@ -55,4 +56,5 @@ __all__ = [
     "scratch_folder",
     "write_arrays",
     "write_csr",
+    "write_text_atomic",
 ]

@@ -62,6 +62,17 @@ def _litter_pattern(path: Path) -> re.Pattern[str]:
     return re.compile(rf"^\.rowfold-(?:tmp|old)-(\d+)-(?:work-)?(?:{names})$")
 
 
+def write_text_atomic(path: Path, text: str) -> None:
+    """Write a text file under a temporary name and rename it into place."""
+    tmp = path.with_name(f"{TMP_PREFIX}{os.getpid()}-{path.name}")
+    try:
+        tmp.write_text(text, encoding="utf-8")
+        os.replace(tmp, path)
+    except OSError as exc:
+        tmp.unlink(missing_ok=True)
+        raise OutputError(f"{path}: cannot write ({exc})") from None
+
+
 def remove_litter(path: Path) -> None:
     """Remove temporary siblings that an earlier, killed run left beside ``path``.
 
