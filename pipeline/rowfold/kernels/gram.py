@@ -6,15 +6,26 @@ import numpy as np
 from numpy.linalg import LinAlgError
 from scipy.linalg import blas, lapack
 
+from rowfold.kernels.householder import as_columns
+
 
 def block_gram(block: np.ndarray) -> np.ndarray:
-    """Return ``block^H block`` (n x n, Hermitian) by syrk/herk."""
+    """Return ``block^H block`` (n x n, Hermitian) by syrk/herk, without copying the block.
+
+    A C-ordered block is used through its transpose (a Fortran view), so neither layout
+    is copied.
+    """
     n = block.shape[1]
     if block.shape[0] == 0:
         return np.zeros((n, n), dtype=block.dtype)
     complex_ = np.iscomplexobj(block)
     (rank_k,) = blas.get_blas_funcs(("herk" if complex_ else "syrk",), (block,))
-    upper = rank_k(1.0, np.asfortranarray(block), trans=2 if complex_ else 1, lower=0)
+    if block.flags.c_contiguous and not block.flags.f_contiguous:
+        # block.T is Fortran-ordered; (block.T)(block.T)^H = conj(block^H block)
+        upper = rank_k(1.0, block.T, trans=0, lower=0)
+        upper = np.conj(upper) if complex_ else upper
+    else:
+        upper = rank_k(1.0, np.asfortranarray(block), trans=2 if complex_ else 1, lower=0)
     gram = np.triu(upper) + np.triu(upper, 1).conj().T
     if complex_:
         np.fill_diagonal(gram, np.real(np.diagonal(gram)))
@@ -23,7 +34,7 @@ def block_gram(block: np.ndarray) -> np.ndarray:
 
 def cross_product(block: np.ndarray, other: np.ndarray) -> np.ndarray:
     """Return ``block^H other`` (n x k)."""
-    return block.conj().T @ other.reshape(block.shape[0], -1)
+    return block.conj().T @ as_columns(other)
 
 
 def cholesky_upper(gram: np.ndarray) -> np.ndarray:
@@ -45,13 +56,17 @@ def cholesky_upper(gram: np.ndarray) -> np.ndarray:
 
 
 def solve_right_upper(block: np.ndarray, R: np.ndarray) -> np.ndarray:
-    """Return ``block @ inv(R)`` for upper triangular R, by trsm (no inverse formed)."""
-    if block.shape[0] == 0:
-        return np.zeros_like(block, dtype=np.result_type(block, R))
+    """Return ``block @ inv(R)`` for upper triangular R, by trsm (no inverse formed).
+
+    The result keeps the block's layout: a C-ordered block is solved through its
+    transpose (``R^-T block^T``), so neither layout is copied on the way in.
+    """
     dtype = np.result_type(block, R)
-    (trsm,) = blas.get_blas_funcs(("trsm",), (block.astype(dtype, copy=False),))
-    return np.asarray(
-        trsm(
-            1.0, R.astype(dtype, copy=False), np.asfortranarray(block, dtype=dtype), side=1, lower=0
-        )
-    )
+    if block.shape[0] == 0:
+        return np.zeros(block.shape, dtype=dtype)
+    factor = R.astype(dtype, copy=False)
+    (trsm,) = blas.get_blas_funcs(("trsm",), (factor,))
+    if block.flags.c_contiguous and not block.flags.f_contiguous:
+        solved = trsm(1.0, factor, block.T.astype(dtype, copy=False), side=0, lower=0, trans_a=1)
+        return np.asarray(solved).T
+    return np.asarray(trsm(1.0, factor, np.asfortranarray(block, dtype=dtype), side=1, lower=0))

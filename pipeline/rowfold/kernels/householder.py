@@ -11,6 +11,11 @@ import numpy as np
 from scipy.linalg import lapack
 
 
+def as_columns(values: np.ndarray) -> np.ndarray:
+    """View a 1-D array as one column; 2-D arrays pass through (works for zero rows)."""
+    return values[:, None] if values.ndim == 1 else values
+
+
 def _geqrf(work: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     """Run LAPACK geqrf in place on a Fortran-ordered array; return (qr, tau)."""
     (geqrf,) = lapack.get_lapack_funcs(("geqrf",), (work,))
@@ -32,13 +37,13 @@ def _form_q(qr: np.ndarray, tau: np.ndarray, cols: int) -> np.ndarray:
 
 def _augment(block: np.ndarray, rhs: np.ndarray | None) -> np.ndarray:
     """Return a Fortran-ordered copy of ``[block | rhs]``."""
-    parts = [block] if rhs is None else [block, rhs.reshape(block.shape[0], -1)]
+    parts = [block] if rhs is None else [block, as_columns(rhs)]
     dtype = np.result_type(*parts)
     return np.asfortranarray(np.concatenate(parts, axis=1).astype(dtype, copy=False))
 
 
 def householder_r(
-    block: np.ndarray, rhs: np.ndarray | None = None
+    block: np.ndarray, rhs: np.ndarray | None = None, overwrite: bool = False
 ) -> tuple[np.ndarray, np.ndarray | None]:
     """Return R (n x n) and ``Q^H rhs`` (n x k) of a block, padded with zero rows.
 
@@ -48,6 +53,9 @@ def householder_r(
         Any number of rows, including fewer than n and zero.
     rhs : ndarray, shape (rows, k), optional
         Right-hand sides carried through the same reflectors.
+    overwrite : bool
+        Without rhs, let LAPACK work in the block itself when it is Fortran-ordered
+        (saves a copy of the block; its contents are destroyed).
 
     Returns
     -------
@@ -57,13 +65,14 @@ def householder_r(
         ``Q^H rhs`` restricted to the first n rows.
     """
     rows, n = block.shape
-    k = 0 if rhs is None else rhs.reshape(rows, -1).shape[1]
+    k = 0 if rhs is None else as_columns(rhs).shape[1]
     dtype = np.result_type(block, rhs) if rhs is not None else block.dtype
     R = np.zeros((n, n), dtype=dtype)
     C = None if rhs is None else np.zeros((n, k), dtype=dtype)
     if rows == 0:
         return R, C
-    qr, _ = _geqrf(_augment(block, rhs))
+    in_place = overwrite and rhs is None and block.flags.f_contiguous and block.flags.writeable
+    qr, _ = _geqrf(block if in_place else _augment(block, rhs))
     top = min(rows, n)
     R[:top] = np.triu(qr[:top, :n])
     if C is not None:

@@ -12,6 +12,8 @@ from typing import Any
 import numpy as np
 from scipy.linalg import svdvals
 
+from rowfold.kernels.householder import as_columns
+
 Sums = dict[str, Any]
 
 
@@ -40,7 +42,7 @@ def block_sums(
 
     sums: Sums = {}
     if rhs is not None and x is not None:
-        residual = rhs.reshape(block.shape[0], -1) - block @ x.reshape(block.shape[1], -1)
+        residual = as_columns(rhs) - block @ as_columns(x)
         sums["res2"] = np.sum(np.abs(residual) ** 2, axis=0)
         sums["rtr"] = residual.conj().T @ residual
         sums["ahr"] = block.conj().T @ residual

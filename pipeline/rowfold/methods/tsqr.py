@@ -25,8 +25,9 @@ from rowfold.storage.checkpoints import load_checkpoint, save_checkpoint
 def leaf_factor(source: BlockSource, index: int) -> tuple[Any, Any, Any, metrics.Sums]:
     """Read one block; return its (R, Q^H B, None, first-pass sums), zero-padded to n rows."""
     block, rhs = source.load(index)
-    R, C = householder_r(block, rhs)
-    return R, C, None, metrics.gram_sums(block)
+    sums = metrics.gram_sums(block)
+    R, C = householder_r(block, rhs, overwrite=True)
+    return R, C, None, sums
 
 
 def checkpointed_leaf(
