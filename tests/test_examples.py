@@ -24,6 +24,7 @@ def test_example_jobs_parse(job: Path) -> None:
     [
         ("tarnholm_zero_points_tsqr.yaml", demo.JOB_TSQR),
         ("tarnholm_zero_points_cholqr2.yaml", demo.JOB_CHOLQR2),
+        ("brackenholt_levelling_cholqr2.yaml", demo.JOB_LEVELLING),
     ],
 )
 def test_demo_jobs_match_the_examples(example: str, text: str) -> None:
@@ -50,7 +51,7 @@ def test_demo_recovers_its_true_parameters(tmp_path: Path) -> None:
 
     from rowfold import runner
 
-    (job_path, _) = demo.write_scenario(tmp_path, rows=20_000)
+    job_path = demo.write_scenario(tmp_path, rows=20_000)[0]
     outcome = runner.run_job(load_job(job_path), inline=True)
     assert outcome.status == 0
     with h5py.File(outcome.output, "r") as store:
@@ -58,3 +59,31 @@ def test_demo_recovers_its_true_parameters(tmp_path: Path) -> None:
     z = np.abs(x - demo.true_parameters()) / stderr
     assert np.max(z) < 5.0
     assert abs(outcome.report["residual_std"] - demo.NOISE_MAG) < 0.1 * demo.NOISE_MAG
+
+
+def test_quick_start_demo_command_runs_end_to_end(tmp_path: Path) -> None:
+    """The README's first command, as a user runs it (default embedded cluster of worker
+    processes), at a smaller size: every demo job exits 0 and writes its store and reports."""
+    import subprocess
+    import sys
+
+    done = subprocess.run(
+        [
+            sys.executable,
+            "-m",
+            "rowfold",
+            "--quiet",
+            "demo",
+            str(tmp_path / "demo"),
+            "--rows",
+            "20000",
+        ],
+        capture_output=True,
+        text=True,
+        timeout=300,
+    )
+    assert done.returncode == 0, done.stderr
+    results = tmp_path / "demo" / "results"
+    reports = sorted(p.name for p in results.glob("*.report.json"))
+    assert len(reports) == len(list((tmp_path / "demo").glob("*.yaml")))
+    assert "wrote" in done.stdout
