@@ -241,8 +241,8 @@ def _check_csr_block(
     if steps.size and steps.min() < 0:
         at = int(np.flatnonzero(steps < 0)[0])
         raise InputError(
-            f"{where}: indptr decreases at row {start + at} ({int(indptr[at])} then "
-            f"{int(indptr[at + 1])} relative to the block); indptr must be non-decreasing"
+            f"{where}: indptr decreases at row {start + at} (giving it {int(steps[at])} "
+            "stored values); indptr must be non-decreasing"
         )
     expected = int(indptr[-1]) if indptr.size else 0
     if data.shape[0] != expected or indices.shape[0] != expected:
@@ -289,7 +289,7 @@ def _require_finite(block: np.ndarray, ref: ArrayRef, index: int, start: int) ->
     finite = np.isfinite(block)
     if finite.all():
         return
-    bad_rows = np.flatnonzero(~finite.reshape(block.shape[0], -1).all(axis=1))
+    bad_rows = np.flatnonzero(~(finite if finite.ndim == 1 else finite.all(axis=1)))
     row = start + int(bad_rows[0])
     raise InputError(
         f"{ref.describe()}: row block {index} (rows {start}..{start + block.shape[0] - 1}) "

@@ -5,11 +5,20 @@ methods. The default is a Dask ``LocalCluster`` sized to the machine: one single
 worker process per core, each with its BLAS limited to one thread, so workers x threads x
 BLAS threads never exceeds the cores. ``cluster.address`` connects to a running scheduler
 instead. :class:`InlineEngine` runs graphs in this thread (``check``, and unit tests).
+
+Losing workers: a task whose worker dies is run again elsewhere, at most
+:data:`ALLOWED_FAILURES` times on the embedded cluster (a remote scheduler keeps its own
+``distributed.scheduler.allowed-failures``) before the run fails with :class:`RunError`.
+When no worker is connected at all for longer than :data:`NO_WORKER_TIMEOUT` seconds
+(environment variable ``ROWFOLD_NO_WORKER_TIMEOUT``) the run gives up with
+:class:`RunError` instead of waiting for workers that may never come back.
 """
 
 from __future__ import annotations
 
+import asyncio
 import collections
+import concurrent.futures
 import logging
 import os
 import resource
@@ -27,6 +36,15 @@ from rowfold.spec import ClusterSpec
 
 # Q blocks in flight at once when streaming (bounds client and worker memory).
 STREAM_WINDOW = 4
+# Workers that may die while running one task before the task (and the run) fails.
+ALLOWED_FAILURES = 3
+# Seconds a run waits while no worker is connected (override: ROWFOLD_NO_WORKER_TIMEOUT).
+NO_WORKER_TIMEOUT = 60.0
+NO_WORKER_TIMEOUT_ENV = "ROWFOLD_NO_WORKER_TIMEOUT"
+# How long to try to reach a scheduler at ``cluster.address``.
+CONNECT_TIMEOUT = "10s"
+# Seconds between checks on the workers while waiting for results.
+POLL_SECONDS = 0.5
 
 
 def peak_rss_bytes() -> int:
@@ -100,26 +118,80 @@ class DistributedEngine:
         Connected client.
     progress : Progress
         Where progress goes.
+    no_worker_timeout : float
+        Seconds to wait while the cluster has no worker before raising :class:`RunError`.
     """
 
-    def __init__(self, client: Any, progress: Progress) -> None:
+    def __init__(
+        self, client: Any, progress: Progress, no_worker_timeout: float = NO_WORKER_TIMEOUT
+    ) -> None:
         self.client = client
         self.progress = progress
+        self.no_worker_timeout = no_worker_timeout
+
+    @property
+    def address(self) -> str:
+        """The scheduler's address."""
+        return str(self.client.scheduler.address)
 
     def _wait(self, futures: list[Any], label: str) -> None:
         """Wait for futures, showing progress over every task of their graphs."""
         if self.progress.stream is None:
-            from distributed import wait
-
-            wait(futures)
+            self._wait_for_workers(futures)
             return
-        _task_bar(futures, label, self.progress, self.client.scheduler.address)
+        bar = _start_task_bar(futures, label, self.progress, self.client)
+        try:
+            self._wait_for_workers(futures)
+        finally:
+            _stop_task_bar(bar)
+
+    def _wait_for_workers(self, futures: list[Any]) -> None:
+        """Block until the futures finish; give up when no worker is left for too long.
+
+        Raises
+        ------
+        RunError
+            When the cluster has had no worker for ``no_worker_timeout`` seconds.
+        """
+        from distributed import wait
+
+        idle_since: float | None = None
+        while True:
+            try:
+                wait(futures, timeout=POLL_SECONDS)
+                return
+            except TimeoutError:
+                pass
+            if self.client.nthreads():
+                idle_since = None
+                continue
+            now = time.monotonic()
+            idle_since = now if idle_since is None else idle_since
+            if now - idle_since >= self.no_worker_timeout:
+                self.client.cancel(futures)
+                raise RunError(
+                    f"cluster {self.address}: no Dask worker connected for "
+                    f"{self.no_worker_timeout:g} s; start workers (or set "
+                    f"{NO_WORKER_TIMEOUT_ENV} to wait longer) and run the job again"
+                )
+
+    def _gather(self, futures: list[Any]) -> list[Any]:
+        """Gather finished futures; a task whose workers kept dying becomes a RunError."""
+        from distributed import KilledWorker
+
+        try:
+            return list(self.client.gather(futures))
+        except KilledWorker as exc:
+            raise RunError(
+                f"cluster {self.address}: workers died while running one task "
+                f"({exc}); check the workers' memory limits and logs"
+            ) from None
 
     def compute(self, tasks: Sequence[Any], label: str) -> list[Any]:
         """Compute on the cluster and gather the values."""
         futures = self.client.compute(list(tasks))
         self._wait(futures, label)
-        return list(self.client.gather(futures))
+        return self._gather(futures)
 
     def persist(self, tasks: Sequence[Any]) -> list[Any]:
         """Persist on the cluster; values stay on the workers."""
@@ -138,7 +210,9 @@ class DistributedEngine:
         done = 0
         last = started
         while pending:
-            value = pending.popleft().result()
+            future = pending.popleft()
+            self._wait_for_workers([future])
+            (value,) = self._gather([future])
             nxt = next(items, None)
             if nxt is not None:
                 pending.append(self.client.compute(nxt))
@@ -162,14 +236,20 @@ class DistributedEngine:
         return int(sum(by_pid.values()))
 
 
-def _task_bar(futures: list[Any], label: str, progress: Progress, address: str) -> None:
-    """Block until the futures finish, drawing progress over all tasks they depend on."""
-    from distributed.diagnostics.progressbar import TextProgressBar
+def _start_task_bar(
+    futures: list[Any], label: str, progress: Progress, client: Any
+) -> concurrent.futures.Future[None]:
+    """Start drawing progress over all tasks the futures depend on, on the client's loop.
+
+    The bar listens to the scheduler in the background, so the caller can keep watching
+    the workers while it waits.
+    """
+    from distributed.diagnostics.progressbar import ProgressBar
 
     started = time.monotonic()
     state = {"last": 0.0}
 
-    class _Bar(TextProgressBar):
+    class _Bar(ProgressBar):
         def _draw_bar(self, remaining: int, all: int, **kwargs: Any) -> None:
             now = time.monotonic()
             tty = progress.stream is not None and progress.stream.isatty()
@@ -183,7 +263,16 @@ def _task_bar(futures: list[Any], label: str, progress: Progress, address: str) 
                 total = int(kwargs.get("all", 1))
                 progress.show(label, total, total, started)
 
-    _Bar(futures, scheduler=address, interval="200ms")
+    bar = _Bar(futures, scheduler=client.scheduler.address, interval="200ms")
+    return asyncio.run_coroutine_threadsafe(bar.listen(), client.loop.asyncio_loop)
+
+
+def _stop_task_bar(bar: concurrent.futures.Future[None]) -> None:
+    """Let the bar draw its last line, or stop it when the wait ended without the tasks."""
+    try:
+        bar.result(timeout=2.0)
+    except Exception:
+        bar.cancel()
 
 
 def _process_peak() -> tuple[int, int]:
@@ -203,6 +292,47 @@ def local_layout(spec: ClusterSpec, cores: int) -> tuple[int, int]:
     return workers, threads
 
 
+def no_worker_timeout() -> float:
+    """Seconds to wait with no worker connected: ``ROWFOLD_NO_WORKER_TIMEOUT`` or 60.
+
+    Raises
+    ------
+    RunError
+        When the environment variable is not a positive number.
+    """
+    text = os.environ.get(NO_WORKER_TIMEOUT_ENV)
+    if text is None:
+        return NO_WORKER_TIMEOUT
+    try:
+        seconds = float(text)
+    except ValueError:
+        seconds = -1.0
+    if not seconds > 0:
+        raise RunError(
+            f"{NO_WORKER_TIMEOUT_ENV}={text}: expected a number of seconds > 0; "
+            "unset it for the default of 60"
+        )
+    return seconds
+
+
+def announce_dashboard(client: Any, progress: Progress) -> None:
+    """Print the Dask dashboard link on the progress stream when there is a dashboard.
+
+    Nothing is printed when progress is quiet or the scheduler lacks bokeh (then it has
+    no dashboard, only a page saying bokeh is missing).
+    """
+    if progress.stream is None:
+        return
+    try:
+        versions = client.get_versions(packages=["bokeh"])
+        link = client.dashboard_link if versions["scheduler"]["packages"].get("bokeh") else None
+    except (KeyError, OSError):
+        link = None
+    if link:
+        progress.stream.write(f"rowfold: dashboard at {link}\n")
+        progress.stream.flush()
+
+
 @contextmanager
 def open_engine(spec: ClusterSpec, progress: Progress) -> Iterator[DistributedEngine]:
     """Start (or connect to) a Dask cluster and yield an engine on it.
@@ -210,27 +340,36 @@ def open_engine(spec: ClusterSpec, progress: Progress) -> Iterator[DistributedEn
     Raises
     ------
     RunError
-        When the scheduler at ``cluster.address`` cannot be reached.
+        When the scheduler at ``cluster.address`` cannot be reached within
+        :data:`CONNECT_TIMEOUT`.
     """
     from distributed import Client, LocalCluster
 
     # Task failures are reported by rowfold as one line; keep distributed's own logs quiet.
     logging.getLogger("distributed").setLevel(logging.CRITICAL)
+    patience = no_worker_timeout()
 
     if spec.address:
         try:
-            client = Client(spec.address, timeout="10s")
+            client = Client(spec.address, timeout=CONNECT_TIMEOUT)
         except OSError as exc:
             raise RunError(
-                f"cluster.address {spec.address}: cannot connect to the Dask scheduler ({exc})"
+                f"cluster.address {spec.address}: cannot connect to the Dask scheduler ({exc}); "
+                "check that it is running and reachable"
             ) from None
         with client:
-            yield DistributedEngine(client, progress)
+            announce_dashboard(client, progress)
+            yield DistributedEngine(client, progress, patience)
         return
     cores = os.cpu_count() or 1
     workers, threads = local_layout(spec, cores)
+    config = {
+        "distributed.worker.daemon": False,
+        "distributed.scheduler.allowed-failures": ALLOWED_FAILURES,
+        "logging.distributed": "error",
+    }
     with (
-        dask.config.set({"distributed.worker.daemon": False, "logging.distributed": "error"}),
+        dask.config.set(config),
         LocalCluster(
             n_workers=workers,
             threads_per_worker=threads,
@@ -242,4 +381,5 @@ def open_engine(spec: ClusterSpec, progress: Progress) -> Iterator[DistributedEn
     ):
         blas = 1 if spec.processes else max(1, cores // max(1, workers * threads))
         client.run(limit_blas_threads, blas)
-        yield DistributedEngine(client, progress)
+        announce_dashboard(client, progress)
+        yield DistributedEngine(client, progress, patience)

@@ -1,10 +1,18 @@
-"""The demo scenario: photometric calibration for an invented sky survey.
+"""The demo scenarios: a dense photometric calibration and a sparse levelling network.
 
 The Tarnholm Ridge Survey Office (invented) calibrates its star catalogue every night.
 Each row is one star observation: the measured magnitude minus the catalogue magnitude,
 explained by a zero point per detector (32), atmospheric extinction times airmass, a
-colour term, and six smooth flat-field terms over the focal plane: 40 unknowns. The
-numbers are synthetic, drawn from a fixed seed, with known true parameters.
+colour term, and six smooth flat-field terms over the focal plane: 40 unknowns.
+
+The Brackenholt Fen drainage board (invented) monitors the heights of 240 benchmarks on
+its drains and pumping stations as the peat shrinks. Each row is one levelled height
+difference between two neighbouring benchmarks (+1 and -1 in A, so A is sparse and stored
+as CSR), weighted by 1 / distance as levelling error grows with the square root of the
+distance. The board's datum benchmark (column 0) is held fixed at height 0
+(``input.fixed_columns``), so the other heights are relative to it.
+
+The numbers of both are synthetic, drawn from fixed seeds, with known true parameters.
 """
 
 from __future__ import annotations
@@ -12,12 +20,20 @@ from __future__ import annotations
 from pathlib import Path
 
 import numpy as np
+import scipy.sparse as sp
 
-from rowfold.storage import write_arrays
+from rowfold.storage import write_arrays, write_csr
 
 DETECTORS = 32
 DEFAULT_ROWS = 300_000
 NOISE_MAG = 0.012
+
+BENCHMARKS = 240
+NETWORK_ROWS = 400_000
+NEIGHBOURS = 6
+FEN_KM = (14.0, 9.0)
+NOISE_M_PER_ROOT_KM = 0.0012
+DATUM = 0
 
 JOB_TSQR = """\
 # Nightly zero-point calibration, Tarnholm Ridge Survey Office (invented demo scenario).
@@ -82,8 +98,101 @@ def design(rows: int, seed: int = 7) -> tuple[np.ndarray, np.ndarray]:
     return columns, offsets
 
 
+JOB_LEVELLING = """\
+# Levelling network adjustment, Brackenholt Fen drainage board (invented demo scenario).
+# A is sparse (a CSR group): one row per levelled height difference, +1/-1 on two benchmarks.
+name: brackenholt-levelling-cholqr2
+input:
+  path: data/brackenholt_levelling.h5
+  matrix: network/A
+  rhs: network/dh
+  weights: network/w
+  fixed_columns: [0]
+method:
+  name: cholqr2
+output:
+  path: results/brackenholt_heights.h5
+  overwrite: true
+gates:
+  gram: 1.0e-12
+"""
+
+
+def benchmark_positions(benchmarks: int = BENCHMARKS, seed: int = 11) -> np.ndarray:
+    """Benchmark positions in km (benchmarks x 2), scattered over the fen."""
+    rng = np.random.default_rng(seed)
+    return rng.uniform((0.0, 0.0), FEN_KM, (benchmarks, 2))
+
+
+def true_heights(benchmarks: int = BENCHMARKS, seed: int = 11) -> np.ndarray:
+    """Heights (m) the network data were drawn from, relative to the datum benchmark."""
+    xy = benchmark_positions(benchmarks, seed)
+    rng = np.random.default_rng(seed + 1)
+    x, y = xy[:, 0] / FEN_KM[0], xy[:, 1] / FEN_KM[1]
+    heights = -1.2 + 0.9 * x - 0.4 * np.sin(3.0 * y) + 0.05 * rng.standard_normal(benchmarks)
+    return heights - heights[DATUM]
+
+
+def network_pairs(benchmarks: int = BENCHMARKS, seed: int = 11) -> np.ndarray:
+    """Pairs of benchmarks that are levelled between (edges x 2, first < second).
+
+    Each benchmark is tied to its :data:`NEIGHBOURS` nearest, and a traverse along the fen
+    (benchmarks in order of easting) keeps the network connected.
+    """
+    xy = benchmark_positions(benchmarks, seed)
+    dist = np.hypot(*(xy[:, None, :] - xy[None, :, :]).transpose(2, 0, 1))
+    np.fill_diagonal(dist, np.inf)
+    near = np.argsort(dist, axis=1)[:, : min(NEIGHBOURS, benchmarks - 1)]
+    order = np.argsort(xy[:, 0])
+    pairs = np.concatenate(
+        [
+            np.stack([np.repeat(np.arange(benchmarks), near.shape[1]), near.ravel()], axis=1),
+            np.stack([order[:-1], order[1:]], axis=1),
+        ]
+    )
+    return np.unique(np.sort(pairs, axis=1), axis=0)
+
+
+def network(
+    rows: int, benchmarks: int = BENCHMARKS, seed: int = 11
+) -> tuple[sp.csr_matrix, np.ndarray, np.ndarray]:
+    """Return the network's design (rows x benchmarks, CSR), height differences and weights.
+
+    Row r levels from benchmark i to benchmark j over d km: ``dh = H_j - H_i + e`` with
+    ``e ~ N(0, (NOISE_M_PER_ROOT_KM^2) d)``, weight ``1 / d``; A has -1 at i and +1 at j.
+    """
+    xy = benchmark_positions(benchmarks, seed)
+    pairs = network_pairs(benchmarks, seed)
+    rng = np.random.default_rng(seed + 2)
+    pick = pairs[rng.integers(0, pairs.shape[0], rows)]
+    forward = rng.random(rows) < 0.5
+    low, high = pick[:, 0], pick[:, 1]
+    km = np.maximum(np.hypot(*(xy[high] - xy[low]).T), 0.05) * rng.uniform(1.0, 1.3, rows)
+    heights = true_heights(benchmarks, seed)
+    # Columns in each row are ascending (low < high): +1 on the far end of the run.
+    signs = np.where(forward, 1.0, -1.0)
+    data = np.stack([-signs, signs], axis=1).ravel()
+    indices = np.stack([low, high], axis=1).ravel()
+    indptr = np.arange(0, 2 * rows + 1, 2)
+    A = sp.csr_matrix((data, indices, indptr), shape=(rows, benchmarks))
+    dh = signs * (heights[high] - heights[low])
+    dh += NOISE_M_PER_ROOT_KM * np.sqrt(km) * rng.standard_normal(rows)
+    return A, dh, 1.0 / km
+
+
+def network_rows(rows: int | None) -> int:
+    """Network rows for ``demo --rows N``: N scaled like the photometry (300,000 -> 400,000)."""
+    if rows is None:
+        return NETWORK_ROWS
+    return max(4 * BENCHMARKS, round(rows * NETWORK_ROWS / DEFAULT_ROWS))
+
+
 def write_scenario(folder: Path, rows: int | None = None) -> list[Path]:
-    """Write the demo data and job files into ``folder``; return the job paths."""
+    """Write the demo data and job files into ``folder``; return the job paths.
+
+    ``rows`` sets the photometry observations (default 300,000); the levelling network
+    scales with it (default 400,000 height differences).
+    """
     folder.mkdir(parents=True, exist_ok=True)
     (folder / "results").mkdir(exist_ok=True)
     matrix, offsets = design(rows or DEFAULT_ROWS)
@@ -91,10 +200,15 @@ def write_scenario(folder: Path, rows: int | None = None) -> list[Path]:
         folder / "data" / "tarnholm_photometry.h5",
         {"calibration/design": matrix, "calibration/offsets": offsets},
     )
+    A, dh, w = network(network_rows(rows))
+    levelling = folder / "data" / "brackenholt_levelling.h5"
+    levelling.unlink(missing_ok=True)
+    write_csr(levelling, "network/A", A, {"network/dh": dh, "network/w": w})
     jobs = []
     for name, text in (
         ("zero_points_tsqr.yaml", JOB_TSQR),
         ("zero_points_cholqr2.yaml", JOB_CHOLQR2),
+        ("levelling_cholqr2.yaml", JOB_LEVELLING),
     ):
         path = folder / name
         path.write_text(text, encoding="utf-8")

@@ -1,0 +1,315 @@
+"""Jobs on a real Dask cluster: a scheduler and worker processes started here on 127.0.0.1.
+
+What is checked, and against what:
+
+- R from a run on the cluster equals numpy's LAPACK R after fixing its signs (with a
+  positive diagonal the thin QR is unique: Trefethen & Bau, Numerical Linear Algebra,
+  1997, Thm 7.2), to a multiple of kappa * u (QR perturbation bounds, Higham, Accuracy
+  and Stability of Numerical Algorithms, 2nd ed. 2002, ch. 19); Q has loss of
+  orthogonality O(u) for TSQR (Demmel, Grigori, Hoemmen, Langou, SIAM J. Sci. Comput.
+  34(1), 2012), held to 10 n u as in test_factorization.py.
+- A worker killed (SIGKILL) in the middle of a run: the scheduler runs its tasks again
+  elsewhere and the run still gives that R.
+- Every worker killed and none coming back: exit 4, the earlier result stays
+  byte-identical (SPEC.md: exit 4 replaces no earlier good result).
+- No scheduler at ``cluster.address``: exit 4 with one line that names the address.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import importlib.util
+import os
+import signal
+import socket
+import subprocess
+import sys
+import threading
+import time
+from collections.abc import Callable, Iterator
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+import pytest
+import yaml
+from distributed import Client
+
+from rowfold.cli import main
+from rowfold.storage import write_arrays
+
+from support import U, assert_thin_qr, lapack_r, prescribed, read_store, write_job
+
+pytestmark = pytest.mark.slow
+
+# Large enough that a tsqr run over it lasts a few seconds on two single-threaded workers.
+BIG_ROWS, BIG_COLS, BIG_BLOCK, BIG_KAPPA = 400_000, 20, 2_000, 1e3
+# Upper bounds on waits, so a broken cluster fails the test instead of hanging it.
+START_TIMEOUT = 30.0
+RUN_TIMEOUT = 120.0
+
+
+def free_port() -> int:
+    """A TCP port on 127.0.0.1 that nothing listens on (at the moment of asking)."""
+    with socket.socket() as sock:
+        sock.bind(("127.0.0.1", 0))
+        return int(sock.getsockname()[1])
+
+
+def dask_process(module: str, *args: str, folder: Path) -> subprocess.Popen[bytes]:
+    """Start ``python -m distributed.cli.<module>`` with single-threaded BLAS."""
+    env = {**os.environ, "OMP_NUM_THREADS": "1", "OPENBLAS_NUM_THREADS": "1"}
+    return subprocess.Popen(
+        [sys.executable, "-m", f"distributed.cli.{module}", *args],
+        cwd=folder,
+        env=env,
+        stdout=subprocess.DEVNULL,
+        stderr=subprocess.DEVNULL,
+        start_new_session=True,
+    )
+
+
+def stop(proc: subprocess.Popen[bytes]) -> None:
+    """Terminate a process, then kill it if it has not gone within 10 s."""
+    if proc.poll() is None:
+        proc.terminate()
+        try:
+            proc.wait(timeout=10)
+        except subprocess.TimeoutExpired:
+            proc.kill()
+            proc.wait(timeout=10)
+
+
+@dataclass
+class Cluster:
+    """A scheduler address and the worker processes started for one test."""
+
+    address: str
+    folder: Path
+    workers: list[subprocess.Popen[bytes]] = field(default_factory=list)
+
+    def client(self) -> Client:
+        """A separate client for watching the scheduler (not rowfold's default client)."""
+        return Client(self.address, timeout="10s", set_as_default=False)
+
+    def start_workers(self, count: int) -> None:
+        """Start ``count`` single-threaded workers without a nanny (a killed one stays dead)."""
+        for _ in range(count):
+            self.workers.append(
+                dask_process(
+                    "dask_worker",
+                    self.address,
+                    "--nthreads=1",
+                    "--no-nanny",
+                    "--no-dashboard",
+                    "--host=127.0.0.1",
+                    "--death-timeout=30",
+                    f"--local-directory={self.folder}",
+                    folder=self.folder,
+                )
+            )
+        with self.client() as client:
+            wait_until(lambda: len(client.nthreads()) == count, "workers to connect")
+
+
+def wait_until(condition: Callable[[], bool], what: str, timeout: float = START_TIMEOUT) -> None:
+    """Poll ``condition`` every 50 ms; fail the test when it does not hold in time."""
+    deadline = time.monotonic() + timeout
+    while not condition():
+        if time.monotonic() > deadline:
+            pytest.fail(f"timed out after {timeout:g} s waiting for {what}")
+        time.sleep(0.05)
+
+
+@pytest.fixture(scope="module")
+def scheduler(tmp_path_factory: pytest.TempPathFactory) -> Iterator[tuple[str, Path]]:
+    """One ``dask scheduler`` for the module, with its dashboard on a free port."""
+    folder = tmp_path_factory.mktemp("scheduler")
+    address = f"tcp://127.0.0.1:{free_port()}"
+    port = address.rsplit(":", 1)[1]
+    proc = dask_process(
+        "dask_scheduler", "--host=127.0.0.1", f"--port={port}", "--dashboard-address=:0",
+        folder=folder,
+    )  # fmt: skip
+    try:
+        yield address, folder
+    finally:
+        stop(proc)
+
+
+@pytest.fixture
+def cluster(scheduler: tuple[str, Path]) -> Iterator[Cluster]:
+    """Two fresh workers on the module's scheduler; all stopped after the test."""
+    address, folder = scheduler
+    cluster = Cluster(address, folder)
+    try:
+        cluster.start_workers(2)
+        yield cluster
+    finally:
+        for proc in cluster.workers:
+            stop(proc)
+        with cluster.client() as client:
+            wait_until(lambda: not client.nthreads(), "workers to leave")
+
+
+@dataclass
+class BigInput:
+    """An input file, LAPACK's sign-normalised R of its matrix, and the matrix's norm."""
+
+    path: Path
+    R: np.ndarray
+    norm: float
+
+
+@pytest.fixture(scope="module")
+def big_input(tmp_path_factory: pytest.TempPathFactory) -> BigInput:
+    """A BIG_ROWS x BIG_COLS input with singular values from 1 to 1/BIG_KAPPA."""
+    path = tmp_path_factory.mktemp("big") / "big.h5"
+    A = prescribed(BIG_ROWS, BIG_COLS, BIG_KAPPA, seed=11)
+    write_arrays(path, {"model/A": A}, chunk_rows=4096)
+    return BigInput(path, lapack_r(A), float(np.linalg.norm(A)))
+
+
+def big_job(folder: Path, source: Path, address: str) -> Path:
+    """A tsqr job over ``source`` in BIG_BLOCK-row blocks on the scheduler at ``address``."""
+    job = {
+        "name": "cluster-test",
+        "input": {"path": str(source), "matrix": "model/A", "rows_per_block": BIG_BLOCK},
+        "method": {"name": "tsqr"},
+        "output": {"path": "out.h5", "overwrite": True},
+        "cluster": {"address": address},
+    }
+    path = folder / "job.yaml"
+    path.write_text(yaml.safe_dump(job), encoding="utf-8")
+    return path
+
+
+class Background:
+    """``rowfold.cli.main(argv)`` in a thread, so the test can act on the cluster meanwhile."""
+
+    def __init__(self, argv: list[str]) -> None:
+        self.status: int | None = None
+        self.thread = threading.Thread(target=self._run, args=(argv,), daemon=True)
+        self.thread.start()
+
+    def _run(self, argv: list[str]) -> None:
+        self.status = main(argv)
+
+    def running(self) -> bool:
+        return self.thread.is_alive()
+
+    def join(self) -> int | None:
+        """Wait at most RUN_TIMEOUT; None means the run never ended (a hang)."""
+        self.thread.join(RUN_TIMEOUT)
+        return None if self.thread.is_alive() else self.status
+
+
+def wait_for_leaf_tasks(client: Client, run: Background) -> None:
+    """Return once a worker is factoring row blocks (tsqr leaf tasks are processing)."""
+
+    def busy() -> bool:
+        assert run.running(), "the run ended before the cluster could be disturbed"
+        keys = (str(key) for keys in client.processing().values() for key in keys)
+        return any("leaf" in key for key in keys)
+
+    wait_until(busy, "tsqr leaf tasks to start")
+
+
+def files(folder: Path) -> dict[str, str]:
+    """Name -> sha256 of the visible files directly in ``folder`` (results and reports)."""
+    return {
+        path.name: hashlib.sha256(path.read_bytes()).hexdigest()
+        for path in sorted(folder.iterdir())
+        if path.is_file() and not path.name.startswith(".")
+    }
+
+
+@pytest.mark.parametrize("method", ["tsqr", "cholqr2"])
+def test_remote_scheduler_matches_lapack(
+    cluster: Cluster, tmp_path: Path, capsys: pytest.CaptureFixture[str], method: str
+) -> None:
+    """R (and Q for tsqr) computed by `dask worker` processes match LAPACK's."""
+    m, n, kappa = 3000, 12, 1e6
+    A = prescribed(m, n, kappa, seed=7)
+    job = write_job(
+        tmp_path,
+        A,
+        input={"rows_per_block": 250},
+        method={"name": method},
+        output={"q": method == "tsqr"},
+        cluster={"address": cluster.address},
+    )
+    status = main(["run", str(job)])
+    err = capsys.readouterr().err
+    assert status == 0, err
+    got = read_store(tmp_path / "out.h5")
+    # Trefethen & Bau Thm 7.2 (uniqueness) with a kappa u perturbation bound (Higham ch. 19).
+    assert np.linalg.norm(got["R"] - lapack_r(A)) <= 100 * n * kappa * U * np.linalg.norm(A)
+    if method == "tsqr":
+        assert_thin_qr(A, got["Q"], got["R"], 10 * n * U)  # Demmel et al. 2012: O(u)
+    # The dashboard link is printed only when the scheduler can serve a dashboard (bokeh).
+    has_dashboard = importlib.util.find_spec("bokeh") is not None
+    assert ("rowfold: dashboard at http://" in err) == has_dashboard, err
+
+
+def test_run_survives_a_killed_worker(
+    cluster: Cluster, big_input: BigInput, tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    """SIGKILL one of two workers mid-run: its tasks run again and R is still LAPACK's."""
+    job = big_job(tmp_path, big_input.path, cluster.address)
+    victim = cluster.workers[0]
+    with cluster.client() as client:
+        run = Background(["--quiet", "run", str(job)])
+        wait_for_leaf_tasks(client, run)
+        time.sleep(0.3)
+        assert run.running(), "the run ended before a worker could be killed"
+        os.killpg(victim.pid, signal.SIGKILL)
+        status = run.join()
+    err = capsys.readouterr().err
+    assert victim.wait(timeout=10) == -signal.SIGKILL
+    assert status == 0, err
+    R = read_store(tmp_path / "out.h5")["R"]
+    # Trefethen & Bau Thm 7.2 (uniqueness) with a kappa u perturbation bound (Higham ch. 19).
+    limit = 100 * BIG_COLS * BIG_KAPPA * U * big_input.norm
+    assert np.linalg.norm(R - big_input.R) <= limit
+
+
+def test_run_without_workers_fails_and_keeps_earlier_result(
+    cluster: Cluster,
+    big_input: BigInput,
+    tmp_path: Path,
+    capsys: pytest.CaptureFixture[str],
+    monkeypatch: pytest.MonkeyPatch,
+) -> None:
+    """Every worker killed mid-run: exit 4 naming the scheduler; the earlier result stands."""
+    monkeypatch.setenv("ROWFOLD_NO_WORKER_TIMEOUT", "2")
+    job = big_job(tmp_path, big_input.path, cluster.address)
+    small = tmp_path / "small.h5"
+    write_arrays(small, {"model/A": prescribed(500, BIG_COLS, 10.0, seed=3)})
+    assert main(["--quiet", "run", str(job), "--set", f"input.path={small}"]) == 0
+    before = files(tmp_path)
+    assert "out.h5" in before
+    with cluster.client() as client:
+        run = Background(["--quiet", "run", str(job)])
+        wait_for_leaf_tasks(client, run)
+        for proc in cluster.workers:
+            os.killpg(proc.pid, signal.SIGKILL)
+        status = run.join()
+    assert status is not None, f"the run did not give up within {RUN_TIMEOUT:g} s"
+    err = capsys.readouterr().err
+    assert status == 4, err
+    lines = err.strip().splitlines()
+    assert len(lines) == 1 and cluster.address in lines[0], err
+    assert files(tmp_path) == before
+
+
+def test_unreachable_scheduler_exits_4(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    """Nothing listens at cluster.address: exit 4 with one line naming the address."""
+    address = f"tcp://127.0.0.1:{free_port()}"
+    job = write_job(tmp_path, prescribed(60, 3, 10.0), cluster={"address": address})
+    status = main(["run", str(job)])
+    err = capsys.readouterr().err
+    assert status == 4, err
+    lines = err.strip().splitlines()
+    assert len(lines) == 1 and address in lines[0] and lines[0].startswith("rowfold: "), err
+    assert not (tmp_path / "out.h5").exists()
