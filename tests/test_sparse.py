@@ -390,9 +390,6 @@ def test_sparse_and_dense_blocks_agree_with_fixed_columns_and_weights(tmp_path: 
         assert np.array_equal(dense, want)
 
 
-@pytest.mark.xfail(
-    strict=True, reason="needs the runner patch that re-inserts fixed columns into the store"
-)
 def test_fixed_columns_are_reported_as_zero_in_the_store(tmp_path: Path) -> None:
     A, b = levelling(600, 9, seed=11)
     job = csr_job(tmp_path, A, b, input={"fixed_columns": [4]}, method={"name": "cholqr2"})

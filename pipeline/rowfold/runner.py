@@ -17,7 +17,7 @@ from typing import Any
 import numpy as np
 
 from rowfold import __version__, quality, storage
-from rowfold.blocks import BlockPlan, plan_blocks
+from rowfold.blocks import BlockPlan, expand_columns, plan_blocks
 from rowfold.cluster import InlineEngine, Progress, open_engine
 from rowfold.errors import (
     EXIT_GATE_FAILED,
@@ -219,6 +219,8 @@ def _run_on(
     """The part of a run that needs the engine."""
     engine = ctx.engine
     extra: dict[str, Any] = {"warnings": []}
+    if plan.fixed_columns:
+        extra["fixed_columns"] = _fixed_note(plan)
     scale = None
     if job.solve.scale_columns:
         with clock.stage("scale"):
@@ -516,27 +518,46 @@ def _write_store(
     """Write R, x, x_stderr, qhb and the attributes, undoing any column equilibration.
 
     With column multipliers s (A_s = A diag(s)): R = R_s diag(1/s), x = diag(s) x_s.
+    Fixed columns (``input.fixed_columns``) come back as zeros: in x, x_stderr and qhb,
+    and as zero rows and columns of R and x_covariance.
     """
     real = np.zeros(0, dtype=fact.R.dtype).real.dtype
     s = np.ones(plan.cols, dtype=real) if scale is None else scale.astype(real)
-    writer.put("R", fact.R / s[None, :])
+    writer.put("R", expand_columns(plan, fact.R / s[None, :], (0, 1)))
     if solution is not None and stats is not None and fact.qhb is not None:
-        writer.put("x", _shaped(plan, solution.x * s[:, None]))
-        writer.put("x_stderr", _shaped(plan, stats.x_stderr * s[:, None]))
-        writer.put("qhb", _shaped(plan, fact.qhb))
+        writer.put("x", _shaped(plan, expand_columns(plan, solution.x * s[:, None])))
+        writer.put("x_stderr", _shaped(plan, expand_columns(plan, stats.x_stderr * s[:, None])))
+        writer.put("qhb", _shaped(plan, expand_columns(plan, fact.qhb)))
         if job.solve.covariance:
-            writer.put("x_covariance", _covariance(plan, solution, stats, s))
+            covariance = _covariance(plan, solution, stats, s)
+            writer.put("x_covariance", expand_columns(plan, covariance, (-2, -1)))
     writer.set_attrs(
         {
             "rowfold_version": __version__,
             "method": job.method.name,
             "rows": plan.rows,
-            "cols": plan.cols,
+            "cols": plan.input_cols,
+            "fixed_columns": list(plan.fixed_columns),
             "job": job.resolved_json(),
             "inputs": report["inputs"],
             "provenance": report["provenance"],
         }
     )
+
+
+def _fixed_note(plan: BlockPlan) -> dict[str, Any]:
+    """The report's ``fixed_columns`` entry: what was held fixed, and what that means."""
+    return {
+        "columns": list(plan.fixed_columns),
+        "value": 0.0,
+        "kept_columns": plan.cols,
+        "note": (
+            f"columns {', '.join(map(str, plan.fixed_columns))} of the input were held fixed at "
+            "0 (a datum) and left out before factoring; x and x_stderr report them as 0, R "
+            "and x_covariance as zero rows and columns, and Q (when written) holds only the "
+            "kept columns; the report's cols, rank and figures count the kept columns"
+        ),
+    }
 
 
 def residual_factor(rtr: np.ndarray) -> np.ndarray:
