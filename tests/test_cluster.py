@@ -125,14 +125,11 @@ def wait_until(condition: Callable[[], bool], what: str, timeout: float = START_
 def scheduler(tmp_path_factory: pytest.TempPathFactory) -> Iterator[tuple[str, Path]]:
     """One ``dask scheduler`` for the module, with its dashboard on a free port."""
     folder = tmp_path_factory.mktemp("scheduler")
-    address = f"tcp://127.0.0.1:{free_port()}"
-    port = address.rsplit(":", 1)[1]
-    proc = dask_process(
-        "dask_scheduler", "--host=127.0.0.1", f"--port={port}", "--dashboard-address=:0",
-        folder=folder,
-    )  # fmt: skip
+    port = free_port()
+    args = ("--host=127.0.0.1", f"--port={port}", "--dashboard-address=:0")
+    proc = dask_process("dask_scheduler", *args, folder=folder)
     try:
-        yield address, folder
+        yield f"tcp://127.0.0.1:{port}", folder
     finally:
         stop(proc)
 

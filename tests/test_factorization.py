@@ -191,3 +191,23 @@ def test_rank_deficient_gives_minimum_norm_solution(job_folder: Path) -> None:
     assert set(outcome.report["rank_deficient_columns"]) == {0, 1, 4}
     x = read_store(outcome.output)["x"]
     assert np.allclose(x, np.linalg.pinv(A) @ b, rtol=1e-8, atol=1e-10)
+
+
+@pytest.mark.parametrize("method", ["tsqr", "cholqr2"])
+def test_q_with_a_right_hand_side_is_as_good_as_without(job_folder: Path, method: str) -> None:
+    """With an rhs the Q formed in a later pass must still pair with R to O(u): R and Q^H b
+    must come from the very reflectors that the Q pass re-forms from A (Q is ill-determined
+    at large kappa, so any other rounding path would show as ||A - QR|| ~ u kappa)."""
+    A = prescribed(900, 10, 1e6, seed=61)
+    b = np.random.default_rng(61).standard_normal(900)
+    job = write_job(
+        job_folder,
+        A,
+        b,
+        input={"rows_per_block": 128},
+        method={"name": method},
+        output={"q": True},
+    )
+    got = read_store(run_inline(job).output)
+    limit = 10 * 10 * U if method == "tsqr" else 6 * (900 * 10 * U + 10 * 11 * U)
+    assert_thin_qr(A, got["Q"], got["R"], limit)

@@ -47,12 +47,14 @@ class BlockPlan:
         True when the rhs dataset is 1-D (results keep that shape).
     dtype : str
         Working dtype (float64 or complex128).
-    bounds : tuple of (start, stop)
-        Row range of each block, in order, covering ``[0, m)``.
+    per_block : int
+        Rows per block; the blocks cover ``[first_row, m)`` in order, the last one ragged.
     weights : ArrayRef or None
         Per-row weights w >= 0; rows of A and B are scaled by sqrt(w) as they are read.
     column_scale : tuple of float or None
         Factors the columns of A are multiplied by as they are read (equilibration).
+    first_row : int
+        First row the plan covers (0, or the rows an earlier result consumed, for update).
     sparse : bool
         True when ``matrix`` is a CSR group (see :mod:`rowfold.storage.csr`).
     fixed_columns : tuple of int
@@ -67,7 +69,8 @@ class BlockPlan:
     rhs_cols: int
     rhs_1d: bool
     dtype: str
-    bounds: tuple[tuple[int, int], ...]
+    per_block: int
+    first_row: int = 0
     weights: ArrayRef | None = None
     column_scale: tuple[float, ...] | None = None
     sparse: bool = False
@@ -75,8 +78,22 @@ class BlockPlan:
 
     @property
     def blocks(self) -> int:
-        """Number of row blocks."""
-        return len(self.bounds)
+        """Number of row blocks (at least one, which may be empty)."""
+        return max(1, -(-(self.rows - self.first_row) // self.per_block))
+
+    def bound(self, index: int) -> tuple[int, int]:
+        """Row range ``(start, stop)`` of block ``index``."""
+        start = self.first_row + index * self.per_block
+        return start, min(start + self.per_block, self.rows)
+
+    @property
+    def bounds(self) -> list[tuple[int, int]]:
+        """Row ranges of every block, in order (for the client; tasks use :meth:`bound`).
+
+        The plan stores only ``first_row`` and ``per_block``, so it stays a few hundred
+        bytes however many blocks there are: every task carries it.
+        """
+        return [self.bound(i) for i in range(self.blocks)]
 
     @property
     def input_cols(self) -> int:
@@ -173,7 +190,7 @@ def load_block(plan: BlockPlan, index: int) -> tuple[np.ndarray, np.ndarray | No
     if plan.sparse:
         block, b = load_sparse_block(plan, index)
         return block.toarray(order="F"), b
-    start, stop = plan.bounds[index]
+    start, stop = plan.bound(index)
     a = np.asfortranarray(read_rows(plan.matrix, start, stop), dtype=plan.dtype)
     _require_finite(a, plan.matrix, index, start)
     b = _load_rhs(plan, index)
@@ -202,7 +219,7 @@ def load_sparse_block(plan: BlockPlan, index: int) -> tuple[sp.csr_matrix, np.nd
     InputError
         Naming the row block and the first bad row.
     """
-    start, stop = plan.bounds[index]
+    start, stop = plan.bound(index)
     data, indices, indptr = read_csr_rows(plan.matrix, start, stop)
     _check_csr_block(plan, index, data, indices, indptr)
     block = sparse_kernels.csr_block(data, indices, indptr, plan.input_cols, plan.dtype)
@@ -224,7 +241,7 @@ def _load_rhs(plan: BlockPlan, index: int) -> np.ndarray | None:
     """Read block ``index`` of the rhs as ``rows x k`` in the working dtype (unweighted)."""
     if plan.rhs is None:
         return None
-    start, stop = plan.bounds[index]
+    start, stop = plan.bound(index)
     b = read_rows(plan.rhs, start, stop).astype(plan.dtype, copy=False)
     b = b.reshape(stop - start, plan.rhs_cols)
     _require_finite(b, plan.rhs, index, start)
@@ -235,7 +252,7 @@ def _check_csr_block(
     plan: BlockPlan, index: int, data: np.ndarray, indices: np.ndarray, indptr: np.ndarray
 ) -> None:
     """Raise InputError unless one CSR row block is consistent and finite."""
-    start, stop = plan.bounds[index]
+    start, stop = plan.bound(index)
     where = f"{plan.matrix.describe()}: row block {index} (rows {start}..{stop - 1})"
     steps = np.diff(indptr)
     if steps.size and steps.min() < 0:
@@ -272,7 +289,7 @@ def load_weights(plan: BlockPlan, index: int) -> np.ndarray:
         Naming the row block and the first bad row.
     """
     assert plan.weights is not None
-    start, stop = plan.bounds[index]
+    start, stop = plan.bound(index)
     w = np.asarray(read_rows(plan.weights, start, stop), dtype=np.float64).reshape(-1)
     bad = np.flatnonzero(~(np.isfinite(w) & (w >= 0)))
     if bad.size:
@@ -357,7 +374,7 @@ def plan_blocks(
         rhs_cols=rhs_cols,
         rhs_1d=rhs_1d,
         dtype=np.dtype(dtype).str,
-        bounds=split_rows(rows, per_block),
+        per_block=per_block,
         weights=None if weights is None else weights.ref,
         sparse=isinstance(matrix, CsrInfo),
         fixed_columns=fixed,

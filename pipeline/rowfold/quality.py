@@ -136,7 +136,7 @@ def verify(
         return Verification(total, q_kernel is not None)
     total_sums: metrics.Sums | None = None
     for index, (sums, rows) in enumerate(engine.stream(tasks, "verify and write rows")):
-        sink(plan.bounds[index][0], rows)
+        sink(plan.bound(index)[0], rows)
         total_sums = sums if total_sums is None else metrics.add_sums(total_sums, sums)
     assert total_sums is not None
     return Verification(total_sums, q_kernel is not None)
@@ -385,7 +385,7 @@ def assemble_report(
         "rhs_cols": plan.rhs_cols,
         "dtype": plan.dtype,
         "blocks": plan.blocks,
-        "rows_per_block": plan.bounds[0][1] - plan.bounds[0][0],
+        "rows_per_block": plan.per_block,
         "passes_over_input": passes,
         "seconds": {k: round(v, 4) for k, v in seconds.items()},
         "peak_memory_bytes": peak_memory,

@@ -53,7 +53,7 @@ def refine_block(
     ``u`` (Q^H f) for the current ``x + dx``.
     """
     block, rhs = load_block(plan, index)
-    start, _ = plan.bounds[index]
+    start, _ = plan.bound(index)
     wide = _extended(block.dtype)
     a, b = block.astype(wide), rhs.astype(wide)  # type: ignore[union-attr]
     x_old = x.astype(wide)
@@ -114,7 +114,7 @@ def refine(
     max_iterations: int,
 ) -> Refinement:
     """Refine ``x`` by augmented-system iterative refinement (see the module docstring)."""
-    chunk = plan.bounds[0][1] - plan.bounds[0][0]
+    chunk = plan.per_block
     residual = create_work_array(workdir, "refine_r", plan.rows, plan.rhs_cols, plan.dtype, chunk)
     dx: np.ndarray | None = None
     previous = np.inf

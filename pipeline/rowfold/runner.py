@@ -116,7 +116,7 @@ def check_job(job: Job) -> dict[str, Any]:
         "rhs_cols": plan.rhs_cols,
         "dtype": plan.dtype,
         "blocks": plan.blocks,
-        "rows_per_block": plan.bounds[0][1] - plan.bounds[0][0],
+        "rows_per_block": plan.per_block,
         "method": job.method.name,
         "output": str(job.output.path),
     }
@@ -194,7 +194,11 @@ def _checkpoints(job: Job, plan: BlockPlan, inputs: dict[str, Any], resume: bool
     if job.method.name != "tsqr" or job.solve.scale_columns:
         return None
     resolved = {key: value for key, value in job.resolved.items() if key != "cluster"}
-    manifest = {"job": resolved, "bounds": plan.bounds, "inputs": inputs}
+    manifest = {
+        "job": resolved,
+        "rows": [plan.first_row, plan.rows, plan.per_block],
+        "inputs": inputs,
+    }
     folder, _ = open_checkpoints(job.output.path, json.loads(json.dumps(manifest)), resume)
     return folder
 
@@ -434,7 +438,7 @@ def _row_sink(
     writer: storage.ResultWriter, plan: BlockPlan, outputs: tuple[str, ...]
 ) -> quality.RowSink:
     """Create the per-row arrays in the store; return a function that fills their rows."""
-    chunk = plan.bounds[0][1] - plan.bounds[0][0]
+    chunk = plan.per_block
     dtype = np.dtype(plan.dtype)
     real = np.zeros(0, dtype=dtype).real.dtype
     shapes = {
@@ -456,7 +460,7 @@ def _screen(
     writer: storage.ResultWriter, plan: BlockPlan, stats: Statistics, job: Job
 ) -> dict[str, Any]:
     """Standardized residuals into the store, and the screening summary for the report."""
-    chunk = plan.bounds[0][1] - plan.bounds[0][0]
+    chunk = plan.per_block
     writer.create("standardized_residuals", (plan.rows, plan.rhs_cols), np.float64, chunk)
 
     def write(start: int, rows: np.ndarray) -> None:

@@ -22,7 +22,7 @@ from typing import Any
 import numpy as np
 
 from rowfold import storage
-from rowfold.blocks import BlockPlan, split_rows
+from rowfold.blocks import BlockPlan
 from rowfold.errors import InputError
 from rowfold.kernels import positive_diagonal, stacked_r
 from rowfold.methods import tsqr
@@ -53,7 +53,7 @@ def count_used_rows(plan: BlockPlan, index: int) -> int:
     """Rows of a block with non-zero weight (all rows without weights)."""
     from rowfold.blocks import load_weights
 
-    start, stop = plan.bounds[index]
+    start, stop = plan.bound(index)
     if plan.weights is None:
         return stop - start
     return int(np.count_nonzero(load_weights(plan, index)))
@@ -81,13 +81,8 @@ def check_prefix(plan: BlockPlan, attrs: dict[str, Any], rows_done: int) -> None
 
 def new_rows_plan(plan: BlockPlan, rows_done: int, scale: np.ndarray) -> BlockPlan:
     """The plan restricted to rows ``[rows_done, m)``, with the earlier column scaling."""
-    per_block = plan.bounds[0][1] - plan.bounds[0][0]
-    bounds = tuple(
-        (rows_done + start, rows_done + stop)
-        for start, stop in split_rows(plan.rows - rows_done, per_block)
-    )
     column_scale = None if np.all(scale == 1) else tuple(float(v) for v in scale)
-    return replace(plan, bounds=bounds, column_scale=column_scale)
+    return replace(plan, first_row=rows_done, column_scale=column_scale)
 
 
 def augmented(state: dict[str, np.ndarray], n: int) -> np.ndarray:

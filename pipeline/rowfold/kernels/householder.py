@@ -1,8 +1,8 @@
 """Householder QR of one block, and of a stack of small R factors, by LAPACK.
 
-The right-hand sides ride along as extra columns: factoring ``[A | B]`` with ``geqrf`` gives
-R in the first n columns and ``Q^H B`` in the first n rows of the last k columns, in one
-call and with the same rounding as the factorization itself.
+The right-hand sides get the block's own reflectors (``ormqr``), so ``Q^H B`` comes from the
+same pass, and R stays the R of A alone; stacked R factors are reduced with ``[R | C]``
+side by side.
 """
 
 from __future__ import annotations
@@ -54,8 +54,8 @@ def householder_r(
     rhs : ndarray, shape (rows, k), optional
         Right-hand sides carried through the same reflectors.
     overwrite : bool
-        Without rhs, let LAPACK work in the block itself when it is Fortran-ordered
-        (saves a copy of the block; its contents are destroyed).
+        Let LAPACK work in the block itself when it is Fortran-ordered (saves a copy of
+        the block; its contents are destroyed).
 
     Returns
     -------
@@ -71,13 +71,38 @@ def householder_r(
     C = None if rhs is None else np.zeros((n, k), dtype=dtype)
     if rows == 0:
         return R, C
-    in_place = overwrite and rhs is None and block.flags.f_contiguous and block.flags.writeable
-    qr, _ = _geqrf(block if in_place else _augment(block, rhs))
+    in_place = overwrite and block.flags.f_contiguous and block.flags.writeable
+    work = block if in_place and block.dtype == dtype else np.array(block, dtype=dtype, order="F")
+    qr, tau = _geqrf(work)
     top = min(rows, n)
     R[:top] = np.triu(qr[:top, :n])
-    if C is not None:
-        C[:top] = qr[:top, n:]
+    if C is not None and rhs is not None:
+        C[:top] = _apply_qh(qr, tau, as_columns(rhs).astype(dtype))[:top]
     return R, C
+
+
+def _apply_qh(qr: np.ndarray, tau: np.ndarray, values: np.ndarray) -> np.ndarray:
+    """Return ``Q^H values`` from geqrf's reflectors (LAPACK ormqr/unmqr).
+
+    Applying the block's own reflectors (rather than factoring ``[A | B]`` together) keeps
+    R exactly the R of A alone, so a later pass that re-forms the block's Q from A gets
+    the very Q that produced R.
+    """
+    complex_ = np.iscomplexobj(qr)
+    (ormqr,) = lapack.get_lapack_funcs(("unmqr" if complex_ else "ormqr",), (qr,))
+    reflectors = min(qr.shape)
+    columns = values.shape[1]
+    result, _, info = ormqr(
+        "L",
+        "C" if complex_ else "T",
+        qr[:, :reflectors],
+        tau[:reflectors],
+        np.asfortranarray(values),
+        max(1, 64 * columns),
+    )
+    if info != 0:  # pragma: no cover - only on illegal arguments
+        raise ValueError(f"ormqr failed with info={info}")
+    return np.asarray(result)
 
 
 def householder_q(block: np.ndarray) -> np.ndarray:

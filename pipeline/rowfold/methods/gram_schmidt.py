@@ -124,7 +124,7 @@ class PanelSource:
         self, index: int, a_block: np.ndarray | None = None, q_prev: np.ndarray | None = None
     ) -> np.ndarray:
         """Form block ``index``, reusing A's block or Q's first columns when already read."""
-        start, stop = self.plan.bounds[index]
+        start, stop = self.plan.bound(index)
         c0, c1 = self.cols
         if self.base is not None:
             full = read_rows(self.base, start, stop)
@@ -234,7 +234,7 @@ class PanelWrite:
 def write_panel(step: PanelWrite, index: int, recipe: Any) -> metrics.Sums:
     """Form and write one block of the panel's Q (or Y); return its sums."""
     plan = step.source.plan
-    start, stop = plan.bounds[index]
+    start, stop = plan.bound(index)
     j0, j1 = step.panel
     reads_a = step.final and (step.first or j1 < plan.cols or plan.rhs is not None)
     a, b = plan.load(index) if reads_a else (None, None)
@@ -415,7 +415,7 @@ class BlockGramSchmidt:
         self.engine = CountingEngine(ctx.engine)
         self.panels = panel_bounds(plan.cols, spec.panel)
         n, dtype = plan.cols, np.dtype(plan.dtype)
-        chunk = plan.bounds[0][1] - plan.bounds[0][0]
+        chunk = plan.per_block
         self.q_ref = create_work_array(ctx.workdir, "Q", plan.rows, n, dtype, chunk)
         # MGS's own Q is orthogonal only to about u * cond(panel) (Björck, BIT 7, 1967), so
         # with reorthogonalization the first panel is factored twice too when inner is mgs.
