@@ -2,7 +2,8 @@
 
 Inputs are read by row range from HDF5 or Zarr, dense (:mod:`.inputs`) or as a CSR group
 (:mod:`.csr`); results and reports are written atomically (:mod:`.results`). Nothing here
-knows about Dask. ``fingerprint`` is the format-aware one from :mod:`.csr`.
+knows about Dask. ``fingerprint`` and ``same_prefix`` are the format-aware ones from
+:mod:`.csr`.
 """
 
 from rowfold.storage.csr import (
@@ -12,6 +13,7 @@ from rowfold.storage.csr import (
     fingerprint,
     is_csr,
     read_csr_rows,
+    same_prefix,
     write_csr,
 )
 from rowfold.storage.inputs import (
@@ -19,7 +21,6 @@ from rowfold.storage.inputs import (
     ArrayRef,
     describe_array,
     read_rows,
-    same_prefix,
     write_arrays,
 )
 from rowfold.storage.results import (
