@@ -19,6 +19,7 @@ from __future__ import annotations
 
 import hashlib
 import importlib.util
+import json
 import os
 import signal
 import socket
@@ -36,6 +37,8 @@ import yaml
 from distributed import Client
 
 from rowfold.cli import main
+from rowfold.cluster import no_worker_timeout
+from rowfold.errors import RunError
 from rowfold.storage import write_arrays
 
 from support import U, assert_thin_qr, lapack_r, prescribed, read_store, write_job
@@ -47,13 +50,6 @@ BIG_ROWS, BIG_COLS, BIG_BLOCK, BIG_KAPPA = 400_000, 20, 2_000, 1e3
 # Upper bounds on waits, so a broken cluster fails the test instead of hanging it.
 START_TIMEOUT = 30.0
 RUN_TIMEOUT = 120.0
-
-
-def free_port() -> int:
-    """A TCP port on 127.0.0.1 that nothing listens on (at the moment of asking)."""
-    with socket.socket() as sock:
-        sock.bind(("127.0.0.1", 0))
-        return int(sock.getsockname()[1])
 
 
 def dask_process(module: str, *args: str, folder: Path) -> subprocess.Popen[bytes]:
@@ -121,17 +117,37 @@ def wait_until(condition: Callable[[], bool], what: str, timeout: float = START_
         time.sleep(0.05)
 
 
+def scheduler_address(info: Path) -> str | None:
+    """The address in a scheduler file, or None while it is missing or half written."""
+    try:
+        return str(json.loads(info.read_text(encoding="utf-8"))["address"])
+    except (OSError, ValueError, KeyError):
+        return None
+
+
 @pytest.fixture(scope="module")
 def scheduler(tmp_path_factory: pytest.TempPathFactory) -> Iterator[tuple[str, Path]]:
-    """One ``dask scheduler`` for the module, with its dashboard on a free port."""
+    """One ``dask scheduler`` for the module on a port it picks, dashboard on another.
+
+    The scheduler writes its own address to a file, so no other process can have taken
+    the port between choosing and binding it.
+    """
     folder = tmp_path_factory.mktemp("scheduler")
-    port = free_port()
-    args = ("--host=127.0.0.1", f"--port={port}", "--dashboard-address=:0")
+    info = folder / "scheduler.json"
+    args = ("--host=127.0.0.1", "--port=0", "--dashboard-address=:0", f"--scheduler-file={info}")
     proc = dask_process("dask_scheduler", *args, folder=folder)
     try:
-        yield f"tcp://127.0.0.1:{port}", folder
+        wait_until(lambda: scheduler_address(info) is not None, "the scheduler")
+        assert proc.poll() is None, "the scheduler exited while starting"
+        yield str(scheduler_address(info)), folder
     finally:
         stop(proc)
+
+
+@pytest.fixture(autouse=True)
+def patience(monkeypatch: pytest.MonkeyPatch) -> None:
+    """A run that loses all its workers unexpectedly fails in 15 s, not the default 60 s."""
+    monkeypatch.setenv("ROWFOLD_NO_WORKER_TIMEOUT", "15")
 
 
 @pytest.fixture
@@ -302,11 +318,32 @@ def test_run_without_workers_fails_and_keeps_earlier_result(
 
 def test_unreachable_scheduler_exits_4(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
     """Nothing listens at cluster.address: exit 4 with one line naming the address."""
-    address = f"tcp://127.0.0.1:{free_port()}"
-    job = write_job(tmp_path, prescribed(60, 3, 10.0), cluster={"address": address})
-    status = main(["run", str(job)])
+    with socket.socket() as held:  # bound but not listening: connections are refused
+        held.bind(("127.0.0.1", 0))
+        address = f"tcp://127.0.0.1:{held.getsockname()[1]}"
+        job = write_job(tmp_path, prescribed(60, 3, 10.0), cluster={"address": address})
+        status = main(["run", str(job)])
     err = capsys.readouterr().err
     assert status == 4, err
     lines = err.strip().splitlines()
     assert len(lines) == 1 and address in lines[0] and lines[0].startswith("rowfold: "), err
     assert not (tmp_path / "out.h5").exists()
+
+
+@pytest.mark.parametrize(
+    ("text", "seconds"),
+    [(None, 60.0), ("2.5", 2.5), ("abc", None), ("0", None), ("-1", None), ("nan", None)],
+)
+def test_no_worker_timeout_from_environment(
+    monkeypatch: pytest.MonkeyPatch, text: str | None, seconds: float | None
+) -> None:
+    """ROWFOLD_NO_WORKER_TIMEOUT: unset means 60 s; anything but a positive number is refused."""
+    if text is None:
+        monkeypatch.delenv("ROWFOLD_NO_WORKER_TIMEOUT", raising=False)
+    else:
+        monkeypatch.setenv("ROWFOLD_NO_WORKER_TIMEOUT", text)
+    if seconds is None:
+        with pytest.raises(RunError, match=f"ROWFOLD_NO_WORKER_TIMEOUT={text}"):
+            no_worker_timeout()
+    else:
+        assert no_worker_timeout() == seconds

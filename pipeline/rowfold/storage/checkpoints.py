@@ -25,9 +25,10 @@ def checkpoint_folder(output: Path) -> Path:
 
 def save_checkpoint(path: str, arrays: dict[str, Any]) -> None:
     """Save arrays (None values are left out) atomically to ``path`` (.npz)."""
-    tmp = f"{path}.tmp-{os.getpid()}.npz"
+    target = Path(path)
+    tmp = target.with_name(f".tmp-{os.getpid()}-{target.name}")  # never matches a block name
     np.savez(tmp, **{k: np.asarray(v) for k, v in arrays.items() if v is not None})  # type: ignore[arg-type]
-    os.replace(tmp, path)
+    os.replace(tmp, target)
 
 
 def load_checkpoint(path: str) -> dict[str, np.ndarray]:
@@ -54,7 +55,7 @@ def open_checkpoints(output: Path, manifest: dict[str, Any], resume: bool) -> tu
         shutil.rmtree(folder, ignore_errors=True)
     folder.mkdir(parents=True, exist_ok=True)
     stored.write_text(json.dumps(manifest, sort_keys=True), encoding="utf-8")
-    kept = len(list(folder.glob("*.npz")))
+    kept = len([p for p in folder.glob("*.npz") if not p.name.startswith(".tmp-")])
     return folder, kept
 
 
