@@ -260,8 +260,9 @@ def write_arrays(path: str | Path, arrays: dict[str, np.ndarray], chunk_rows: in
     if target.suffix.lower() in HDF5_SUFFIXES:
         with _HDF5_LOCK, h5py.File(target, "w") as handle:
             for name, array in arrays.items():
-                rows = max(1, min(chunk_rows, array.shape[0]))
-                handle.create_dataset(name, data=array, chunks=(rows, *array.shape[1:]))
+                rows = min(chunk_rows, array.shape[0])
+                chunks = (rows, *array.shape[1:]) if rows and all(array.shape) else None
+                handle.create_dataset(name, data=array, chunks=chunks)
         return
     import zarr
 

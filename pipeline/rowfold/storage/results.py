@@ -22,7 +22,7 @@ from typing import Any
 import h5py
 import numpy as np
 
-from rowfold.errors import OutputError
+from rowfold.errors import OutputError, RowfoldError, RunError
 from rowfold.storage.inputs import _HDF5_LOCK, HDF5_SUFFIXES
 
 TMP_PREFIX = ".rowfold-tmp-"
@@ -151,10 +151,18 @@ class ResultWriter:
         tb: TracebackType | None,
     ) -> None:
         if self._handle is not None:
-            self._close()
+            try:
+                self._close()
+            except OSError:  # the temporary store is discarded anyway
+                self._handle = None
             _remove(self.tmp)
         for tmp, _ in self._files:
             tmp.unlink(missing_ok=True)
+        if isinstance(exc, OSError) and not isinstance(exc, RowfoldError):
+            reason = exc.strerror or str(exc)
+            raise RunError(
+                f"{self.path}: writing the result failed ({reason}); the previous result is kept"
+            ) from None
 
     def _close(self) -> None:
         if self.is_hdf5 and self._handle is not None:
@@ -225,7 +233,7 @@ class ResultWriter:
             for tmp, final in self._files:
                 os.replace(tmp, final)
         except OSError as exc:
-            raise OutputError(f"{self.path}: cannot commit the result ({exc})") from None
+            raise RunError(f"{self.path}: cannot commit the result ({exc})") from None
         self._files = []
 
 
