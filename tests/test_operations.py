@@ -249,3 +249,15 @@ def test_killed_run_resumes_without_rereading_finished_blocks(
     assert main(["--quiet", "run", str(job), "--inline"]) == 0
     fresh, _ = result(tmp_path)
     assert np.allclose(resumed["R"], fresh["R"], rtol=0, atol=1e-12 * np.abs(fresh["R"]).max())
+
+
+def test_log_file_gets_time_stamped_summary_and_errors(tmp_path: Path) -> None:
+    A = prescribed(300, 3, 10.0, seed=48)
+    job = write_job(tmp_path, make_input(tmp_path, A, A[:, 0].copy(), ".h5"))
+    log = tmp_path / "night.log"
+    assert main(["--quiet", "--log-file", str(log), "run", str(job), "--inline"]) == 0
+    assert main(["--quiet", "--log-file", str(log), "update", str(tmp_path / "nope.yaml")]) == 2
+    lines = log.read_text().splitlines()
+    assert any("wrote" in line for line in lines)
+    assert any("rowfold: error:" in line and "nope.yaml" in line for line in lines)
+    assert all(line[:4].isdigit() and "T" in line[:11] for line in lines)

@@ -11,10 +11,11 @@ from __future__ import annotations
 import argparse
 import json
 import sys
+import time
 import traceback
 from collections.abc import Sequence
 from pathlib import Path
-from typing import Any
+from typing import Any, TextIO
 
 from rowfold import __version__, runner
 from rowfold.cluster import Progress
@@ -29,6 +30,12 @@ def _parser() -> argparse.ArgumentParser:
     parser.add_argument("--version", action="version", version=f"rowfold {__version__}")
     parser.add_argument("--debug", action="store_true", help="show tracebacks on errors")
     parser.add_argument("--quiet", action="store_true", help="no progress, only errors")
+    parser.add_argument(
+        "--log-file",
+        type=Path,
+        default=None,
+        help="also append time-stamped progress, summaries and errors to this file",
+    )
     verbs = parser.add_subparsers(dest="verb", required=True, metavar="VERB")
     run = verbs.add_parser("run", help="run jobs; write their result stores and reports")
     run.add_argument("jobs", type=Path, nargs="+", metavar="JOB", help="job files or folders")
@@ -72,8 +79,24 @@ def _parser() -> argparse.ArgumentParser:
     return parser
 
 
+_LOG: list[TextIO] = []  # the open --log-file, if any
+
+
+def _log(message: str) -> None:
+    stamp = time.strftime("%Y-%m-%dT%H:%M:%S")
+    for handle in _LOG:
+        handle.write("".join(f"{stamp} {line}\n" for line in message.splitlines()))
+        handle.flush()
+
+
 def _say(message: str) -> None:
     print(message, flush=True)
+    _log(message)
+
+
+def _error(message: str) -> None:
+    print(message, file=sys.stderr, flush=True)
+    _log(message)
 
 
 def _summary(outcome: runner.RunOutcome) -> str:
@@ -136,12 +159,12 @@ def _guarded(action: Any, args: argparse.Namespace) -> tuple[int, str]:
     try:
         return int(action()), ""
     except RowfoldError as exc:
-        print(f"rowfold: error: {exc}", file=sys.stderr)
+        _error(f"rowfold: error: {exc}")
         return exc.exit_status, str(exc).splitlines()[0][:120]
     except Exception as exc:
         if args.debug:
             traceback.print_exc()
-        print(f"rowfold: failed: {exc.__class__.__name__}: {exc}", file=sys.stderr)
+        _error(f"rowfold: failed: {exc.__class__.__name__}: {exc}")
         return EXIT_RUN_FAILED, exc.__class__.__name__
 
 
@@ -203,7 +226,22 @@ def main(argv: Sequence[str] | None = None) -> int:
         args = parser.parse_args(argv)
     except SystemExit as exc:
         return int(exc.code or 0) if exc.code in (0, None) else EXIT_INVALID
-    progress = Progress(stream=None if args.quiet else sys.stderr)
+    if args.log_file is not None:
+        try:
+            _LOG.append(open(args.log_file, "a", encoding="utf-8"))  # noqa: SIM115
+        except OSError as exc:
+            print(f"rowfold: error: --log-file {args.log_file}: {exc.strerror}", file=sys.stderr)
+            return EXIT_INVALID
+    progress = Progress(stream=None if args.quiet else sys.stderr, log=_LOG[0] if _LOG else None)
+    try:
+        return _dispatch(args, progress)
+    finally:
+        while _LOG:
+            _LOG.pop().close()
+
+
+def _dispatch(args: argparse.Namespace, progress: Progress) -> int:
+    """Run the verb; turn errors into one line and an exit status."""
     try:
         if args.verb == "run":
             return _run(args, progress)
@@ -219,16 +257,13 @@ def main(argv: Sequence[str] | None = None) -> int:
     except RowfoldError as exc:
         if args.debug:
             traceback.print_exc()
-        print(f"rowfold: error: {exc}", file=sys.stderr)
+        _error(f"rowfold: error: {exc}")
         return exc.exit_status
     except KeyboardInterrupt:
-        print("rowfold: interrupted; no result was replaced", file=sys.stderr)
+        _error("rowfold: interrupted; no result was replaced")
         return EXIT_RUN_FAILED
     except Exception as exc:
         if args.debug:
             traceback.print_exc()
-        print(
-            f"rowfold: failed: {exc.__class__.__name__}: {exc} (rerun with --debug for details)",
-            file=sys.stderr,
-        )
+        _error(f"rowfold: failed: {exc.__class__.__name__}: {exc} (rerun with --debug for details)")
         return EXIT_RUN_FAILED

@@ -62,16 +62,23 @@ def limit_blas_threads(threads: int) -> None:
 
 @dataclass
 class Progress:
-    """Progress display: a bar on a terminal, a log line every ``interval`` s otherwise."""
+    """Progress display: a bar on a terminal, a plain line every ``interval`` s otherwise.
+
+    ``log``, when given, also receives a time-stamped plain line every ``interval`` s (and
+    at the end of each stage), whatever ``stream`` is (``--log-file``).
+    """
 
     stream: TextIO | None = None
     interval: float = 10.0
+    log: TextIO | None = None
+    _last_log: float = 0.0
 
     def show(self, label: str, done: int, total: int, started: float) -> None:
         """Print one progress update."""
+        elapsed = time.monotonic() - started
+        self._log(label, done, total, elapsed)
         if self.stream is None:
             return
-        elapsed = time.monotonic() - started
         if self.stream.isatty():
             width = 30
             filled = int(width * done / max(total, 1))
@@ -82,6 +89,15 @@ class Progress:
         else:
             self.stream.write(f"{label}: {done}/{total} tasks, {elapsed:.1f}s\n")
         self.stream.flush()
+
+    def _log(self, label: str, done: int, total: int, elapsed: float) -> None:
+        now = time.monotonic()
+        if self.log is None or (done < total and now - self._last_log < self.interval):
+            return
+        self._last_log = now
+        stamp = time.strftime("%Y-%m-%dT%H:%M:%S")
+        self.log.write(f"{stamp} {label}: {done}/{total} tasks, {elapsed:.1f}s\n")
+        self.log.flush()
 
 
 class InlineEngine:
