@@ -72,9 +72,14 @@ class Progress:
     interval: float = 10.0
     log: TextIO | None = None
     _last_log: float = 0.0
+    _finished: str = ""
 
     def show(self, label: str, done: int, total: int, started: float) -> None:
-        """Print one progress update."""
+        """Print one progress update (a finished stage only once)."""
+        if done >= total:
+            if self._finished == f"{label}/{total}":
+                return
+            self._finished = f"{label}/{total}"
         elapsed = time.monotonic() - started
         self._log(label, done, total, elapsed)
         if self.stream is None:

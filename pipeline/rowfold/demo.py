@@ -50,6 +50,11 @@ output:
   path: results/zero_points_tsqr.h5
   q: false
   overwrite: true
+solve:
+  covariance: true       # full covariance of the zero points
+  residuals: true        # standardized residuals: flags observations to look at
+  flag_above: 4.0
+  refine: true           # iterative refinement with extended-precision residuals
 gates:
   orthogonality: 1.0e-12
   residual: 1.0e-12
