@@ -2,8 +2,9 @@
 
 :func:`open_engine` yields an engine with the :class:`rowfold.methods.base.Engine`
 methods. The default is a Dask ``LocalCluster`` sized to the machine: one single-threaded
-worker process per core, each with its BLAS limited to one thread, so workers x threads x
-BLAS threads never exceeds the cores. ``cluster.address`` connects to a running scheduler
+worker per core, as threads of this process (``cluster.processes: true`` for processes),
+with BLAS limited to one thread per worker, so workers x threads x BLAS threads never
+exceeds the cores. ``cluster.address`` connects to a running scheduler
 instead. :class:`InlineEngine` runs graphs in this thread (``check``, and unit tests).
 
 Losing workers: a task whose worker dies is run again elsewhere, at most

@@ -41,7 +41,11 @@ def verify_block(
     ``sqrt(w) (b - A x)``) and ``leverage`` (``h_i = ||q_i||^2``, the diagonal of the hat
     matrix).
     """
-    block, rhs = load_block(plan, index)
+    if plan.sparse and q_kernel is None:
+        # residual sums need only products with A: keep a CSR block sparse
+        block, rhs = plan.load_sparse(index)
+    else:
+        block, rhs = load_block(plan, index)
     q = None if q_kernel is None else q_kernel(block, recipe)
     sums = metrics.block_sums(block, rhs, x, R, q)
     if plan.weights is not None:

@@ -272,12 +272,28 @@ def _run_on(
             },
         )
         with clock.stage("write"):
-            _write_store(writer, job, plan, fact, solution, stats, report, scale)
-            _write_state(writer, plan, fact, {**fact.sums, **check.sums}, scale)
-            json_path, html_path = storage.report_paths(job.output.path)
-            writer.add_file(json_path, to_json(report))
-            writer.add_file(html_path, render_html(report))
-            writer.commit()
+            state = {**fact.sums, **check.sums}
+            return _commit(writer, job, plan, fact, solution, stats, report, scale, state)
+
+
+def _commit(
+    writer: storage.ResultWriter,
+    job: Job,
+    plan: BlockPlan,
+    fact: Factorization,
+    solution: Solution | None,
+    stats: Statistics | None,
+    report: dict[str, Any],
+    scale: np.ndarray | None,
+    state_sums: dict[str, Any],
+) -> RunOutcome:
+    """Write the store, its update state and the reports, commit them, and say how it went."""
+    _write_store(writer, job, plan, fact, solution, stats, report, scale)
+    _write_state(writer, plan, fact, state_sums, scale)
+    json_path, html_path = storage.report_paths(job.output.path)
+    writer.add_file(json_path, to_json(report))
+    writer.add_file(html_path, render_html(report))
+    writer.commit()
     failed = any(not gate["held"] for gate in report["gates"].values())
     return RunOutcome(EXIT_GATE_FAILED if failed else EXIT_OK, report, job.output.path)
 
@@ -385,21 +401,14 @@ def _commit_update(
         passes=1,
         extra=extra,
     )
-    scale = folded.column_scale
+    state_sums = {**fact.sums, "rows_used": folded.rows_used}
+    if folded.residual_factor is not None:
+        factor = folded.residual_factor
+        state_sums["rtr"] = factor.conj().T @ factor
     with storage.ResultWriter(job.output.path) as writer:
-        _write_store(writer, job, plan, fact, solution, stats, report, scale)
-        state_sums = {**fact.sums, "rows_used": folded.rows_used}
-        if folded.residual_factor is not None:
-            factor = folded.residual_factor
-            state_sums["rtr"] = factor.conj().T @ factor
-        _write_state(writer, plan, fact, state_sums, scale)
         writer.set_attrs({"q_state": STALE_Q_TEXT})
-        json_path, html_path = storage.report_paths(job.output.path)
-        writer.add_file(json_path, to_json(report))
-        writer.add_file(html_path, render_html(report))
-        writer.commit()
-    failed = any(not gate["held"] for gate in report["gates"].values())
-    return RunOutcome(EXIT_GATE_FAILED if failed else EXIT_OK, report, job.output.path)
+        scale = folded.column_scale
+        return _commit(writer, job, plan, fact, solution, stats, report, scale, state_sums)
 
 
 def _refined(
