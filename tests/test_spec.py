@@ -73,7 +73,7 @@ CASES = [
     pytest.param(GOOD, (), Gives("input.rhs", None), id="default-no-rhs"),
     pytest.param(GOOD, (), Gives("input.rows_per_block", None), id="default-rows-auto"),
     pytest.param(GOOD, (), Gives("gates.gram", None), id="default-no-gates"),
-    pytest.param(GOOD, (), Gives("cluster.processes", False), id="default-cluster-threads"),
+    pytest.param(GOOD, (), Gives("cluster.processes", None), id="default-cluster-auto"),
     pytest.param(GOOD, (), Gives("name", "levelling"), id="name-kept"),
     pytest.param(
         GOOD.replace("name: levelling\n", ""), (), Gives("name", "job"), id="name-from-file-stem"

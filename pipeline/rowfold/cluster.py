@@ -385,6 +385,7 @@ def open_engine(spec: ClusterSpec, progress: Progress) -> Iterator[DistributedEn
         return
     cores = os.cpu_count() or 1
     workers, threads = local_layout(spec, cores)
+    processes = bool(spec.processes)  # None (auto) is decided by the runner; threads here
     config = {
         "distributed.worker.daemon": False,
         "distributed.scheduler.allowed-failures": ALLOWED_FAILURES,
@@ -395,13 +396,13 @@ def open_engine(spec: ClusterSpec, progress: Progress) -> Iterator[DistributedEn
         LocalCluster(
             n_workers=workers,
             threads_per_worker=threads,
-            processes=spec.processes,
+            processes=processes,
             dashboard_address=":0",
             silence_logs=logging.CRITICAL,
         ) as cluster,
         Client(cluster) as client,
     ):
-        blas = 1 if spec.processes else max(1, cores // max(1, workers * threads))
+        blas = 1 if processes else max(1, cores // max(1, workers * threads))
         client.run(limit_blas_threads, blas)
         announce_dashboard(client, progress)
         yield DistributedEngine(client, progress, patience)

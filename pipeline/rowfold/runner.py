@@ -182,7 +182,7 @@ def _run_with_engine(
         storage.remove_litter(job.output.path)
         workdir = stack.enter_context(storage.scratch_folder(job.output.path))
         with clock.stage("cluster_start"):
-            engine = stack.enter_context(_engine(job, progress, inline))
+            engine = stack.enter_context(_engine(job, progress, inline, plan))
         inputs = _fingerprints(job, plan, engine)
         checkpoints = _checkpoints(job, plan, inputs, resume)
         ctx = Context(engine, wants_q(job), workdir, checkpoints)
@@ -204,11 +204,18 @@ def _checkpoints(job: Job, plan: BlockPlan, inputs: dict[str, Any], resume: bool
 
 
 @contextmanager
-def _engine(job: Job, progress: Progress, inline: bool) -> Iterator[Any]:
+def _engine(
+    job: Job, progress: Progress, inline: bool, plan: BlockPlan | None = None
+) -> Iterator[Any]:
     if inline:
         yield InlineEngine(progress)
         return
-    with open_engine(job.cluster, progress) as engine:
+    spec = job.cluster
+    if spec.processes is None:
+        # measured: dense kernels release the GIL (threads are faster and leaner), but
+        # scipy.sparse products hold it, so CSR input goes to worker processes
+        spec = replace(spec, processes=bool(plan is not None and plan.sparse))
+    with open_engine(spec, progress) as engine:
         yield engine
 
 
@@ -315,7 +322,7 @@ def compare_job(
     from rowfold import compare
 
     plan = plan_job(job)
-    with _engine(job, progress or Progress(), inline) as engine:
+    with _engine(job, progress or Progress(), inline, plan) as engine:
         inputs = _fingerprints(job, plan, engine)
 
         def run(method_job: Job) -> RunOutcome:
@@ -358,7 +365,7 @@ def update_job(job: Job, progress: Progress | None = None, inline: bool = False)
         raise NoNewRowsError(f"{out}: no rows added since the earlier result ({rows_done} rows)")
     job = replace(job, gates=replace(job.gates, orthogonality=None, residual=None))
     with ExitStack() as stack:
-        engine = stack.enter_context(_engine(job, progress or Progress(), inline))
+        engine = stack.enter_context(_engine(job, progress or Progress(), inline, plan))
         with clock.stage("factor"):
             folded = update.fold(plan, state, attrs, engine)
         return _commit_update(job, plan, folded, engine, clock, started)

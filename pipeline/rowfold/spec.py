@@ -188,15 +188,16 @@ class ClusterSpec:
         Local workers; None means one per core.
     threads_per_worker : int or None
         Threads per local worker; None means cores // workers.
-    processes : bool
-        Local workers as processes (True) or threads of this process (False, the
-        default: measured faster and leaner here, see the README).
+    processes : bool or None
+        Local workers as processes (True) or threads of this process (False); None
+        (``auto``, the default) picks threads for dense input and processes for CSR input,
+        from measurement (see the README).
     """
 
     address: str | None = None
     workers: int | None = None
     threads_per_worker: int | None = None
-    processes: bool = False
+    processes: bool | None = None
 
 
 @dataclass(frozen=True, slots=True)
@@ -393,6 +394,15 @@ def _flag(value: Any) -> bool:
     return value
 
 
+def _auto_or_flag(value: Any) -> bool | None:
+    if value == "auto":
+        return None
+    try:
+        return _flag(value)
+    except TypeError:
+        raise TypeError("expected auto, true or false") from None
+
+
 def _count(value: Any) -> int:
     if isinstance(value, bool) or not isinstance(value, int) or value < 1:
         raise TypeError("expected a whole number >= 1")
@@ -581,7 +591,7 @@ def _parse_cluster(doc: _Doc, base: Path) -> ClusterSpec:
         address=section.get("address", _text),
         workers=section.get("workers", _auto_or_count),
         threads_per_worker=section.get("threads_per_worker", _auto_or_count),
-        processes=section.get("processes", _flag, False),
+        processes=section.get("processes", _auto_or_flag),
     )
 
 
