@@ -388,7 +388,7 @@ def _commit_update(
         stats = statistics(solution, folded.residual_sq, folded.rows_used)
     sums = {**fact.sums, "res2": folded.residual_sq}
     extra = {
-        "warnings": ["update: Q and the orthogonality figures are not formed; see q_state"],
+        "warnings": _update_warnings(job),
         "update": fact.details["update"],
         "q_state": STALE_Q_TEXT,
         "inputs": _fingerprints(job, plan, engine),
@@ -416,6 +416,16 @@ def _commit_update(
         writer.set_attrs({"q_state": STALE_Q_TEXT})
         scale = folded.column_scale
         return _commit(writer, job, plan, fact, solution, stats, report, scale, state_sums)
+
+
+def _update_warnings(job: Job) -> list[str]:
+    """What an update leaves out, since it does not read the earlier rows again."""
+    notes = ["update: Q and the orthogonality figures are not formed; see q_state"]
+    if job.solve.refine:
+        notes.append("update: solve.refine skipped (it needs a pass over all rows; use run)")
+    if job.solve.residuals:
+        notes.append("update: residual screening skipped (it needs all rows; use run)")
+    return notes
 
 
 def _refined(
