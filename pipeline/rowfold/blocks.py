@@ -109,9 +109,21 @@ class BlockPlan:
         """Read block ``index`` of A and of the rhs (see :func:`load_block`)."""
         return load_block(self, index)
 
+    def load_for_products(self, index: int) -> tuple[np.ndarray, np.ndarray | None]:
+        """Read block ``index`` in the file's own (C) order, for products only."""
+        return load_block(self, index, "C")
+
     def load_sparse(self, index: int) -> tuple[sp.csr_matrix, np.ndarray | None]:
         """Read block ``index`` of a CSR matrix and of the rhs (see :func:`load_sparse_block`)."""
         return load_sparse_block(self, index)
+
+
+def load_for_products(source: BlockSource, index: int) -> tuple[np.ndarray, np.ndarray | None]:
+    """A block for Gram products, triangular solves and residuals, in whichever layout
+    costs no copy (a plan's blocks come in the file's C order)."""
+    if isinstance(source, BlockPlan):
+        return source.load_for_products(index)
+    return source.load(index)
 
 
 class BlockSource(Protocol):
@@ -176,8 +188,13 @@ def split_rows(rows: int, per_block: int) -> tuple[tuple[int, int], ...]:
     return tuple((start, min(start + per_block, rows)) for start in range(0, rows, per_block))
 
 
-def load_block(plan: BlockPlan, index: int) -> tuple[np.ndarray, np.ndarray | None]:
-    """Read block ``index`` of A (and of the rhs) in the working dtype, Fortran order.
+def load_block(
+    plan: BlockPlan, index: int, layout: str = "F"
+) -> tuple[np.ndarray, np.ndarray | None]:
+    """Read block ``index`` of A (and of the rhs) in the working dtype.
+
+    ``layout`` is ``"F"`` (Fortran order, what LAPACK's QR needs) or ``"C"`` (the order the
+    file hands over: no copy; enough for Gram products, triangular solves and residuals).
 
     A CSR matrix is read as a CSR block (:func:`load_sparse_block`) and densified.
 
@@ -189,13 +206,14 @@ def load_block(plan: BlockPlan, index: int) -> tuple[np.ndarray, np.ndarray | No
     """
     if plan.sparse:
         block, b = load_sparse_block(plan, index)
-        return block.toarray(order="F"), b
+        return block.toarray(order=layout), b
     start, stop = plan.bound(index)
-    a = np.asfortranarray(read_rows(plan.matrix, start, stop), dtype=plan.dtype)
+    order = np.asfortranarray if layout == "F" else np.ascontiguousarray
+    a = order(read_rows(plan.matrix, start, stop), dtype=plan.dtype)
     _require_finite(a, plan.matrix, index, start)
     b = _load_rhs(plan, index)
     if plan.fixed_columns:
-        a = np.asfortranarray(a[:, plan.kept_columns])
+        a = order(a[:, plan.kept_columns])
     if plan.column_scale is not None:
         a *= np.asarray(plan.column_scale, dtype=a.real.dtype)
     if plan.weights is not None:

@@ -45,7 +45,7 @@ def verify_block(
         # residual sums need only products with A: keep a CSR block sparse
         block, rhs = plan.load_sparse(index)
     else:
-        block, rhs = load_block(plan, index)
+        block, rhs = load_block(plan, index, "C")
     q = None if q_kernel is None else q_kernel(block, recipe)
     sums = metrics.block_sums(block, rhs, x, R, q)
     if plan.weights is not None:
@@ -148,7 +148,7 @@ def verify(
 
 def column_norm_block(plan: BlockPlan, index: int) -> np.ndarray:
     """Squared column norms of one (weighted) block."""
-    block, _ = load_block(plan, index)
+    block, _ = load_block(plan, index, "C")
     return np.sum(np.abs(block) ** 2, axis=0)
 
 

@@ -115,7 +115,7 @@ def householder_q(block: np.ndarray) -> np.ndarray:
     Q = np.zeros((rows, n), dtype=block.dtype)
     if rows == 0:
         return Q
-    qr, tau = _geqrf(np.asfortranarray(block.copy()))
+    qr, tau = _geqrf(np.array(block, order="F"))  # one copy, whatever the layout
     top = min(rows, n)
     Q[:, :top] = _form_q(qr, tau, top)
     return Q

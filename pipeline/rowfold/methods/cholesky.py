@@ -32,7 +32,7 @@ import scipy.sparse as sp
 from numpy.linalg import LinAlgError
 from scipy.linalg import solve_triangular
 
-from rowfold.blocks import BlockPlan, BlockSource
+from rowfold.blocks import BlockPlan, BlockSource, load_for_products
 from rowfold.errors import BreakdownError
 from rowfold.kernels import block_gram, cholesky_upper, cross_product, metrics, solve_right_upper
 from rowfold.kernels import sparse as sparse_kernels
@@ -80,7 +80,7 @@ def gram_leaf(source: BlockSource, index: int, factors: tuple[np.ndarray, ...]) 
         first: dict[str, Any] = sparse_kernels.sparse_gram_sums(sparse_block)
         first["cross"] = None if b is None else sparse_kernels.sparse_cross(sparse_block, b)
         return first
-    block, rhs = source.load(index)
+    block, rhs = load_for_products(source, index)
     x = apply_factors(block, factors)
     sums: dict[str, Any] = metrics.gram_sums(x) if not factors else {"gram": block_gram(x)}
     sums["cross"] = None if rhs is None else cross_product(x, rhs)

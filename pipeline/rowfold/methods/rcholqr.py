@@ -17,7 +17,7 @@ from typing import Any
 import numpy as np
 import scipy.sparse
 
-from rowfold.blocks import BlockPlan, BlockSource
+from rowfold.blocks import BlockPlan, BlockSource, load_for_products
 from rowfold.errors import BreakdownError
 from rowfold.kernels import householder_r, metrics, positive_diagonal
 from rowfold.methods._graph import sum_tree, task
@@ -48,7 +48,7 @@ def sketch_leaf(
     source: BlockSource, index: int, kind: str, sketch_rows: int, seed: int
 ) -> dict[str, Any]:
     """First-pass sums of a block plus its sketch contribution ``Omega_i A_i``."""
-    block, _ = source.load(index)
+    block, _ = load_for_products(source, index)
     sums = metrics.gram_sums(block)
     omega = embedding(kind, sketch_rows, block.shape[0], seed, index)
     sums["sketch"] = np.asarray(omega @ block)
