@@ -196,13 +196,6 @@ def choose_rows_per_block(rows: int, cols: int, itemsize: int, chunk_rows: int |
     return max(1, min(target, rows))
 
 
-def split_rows(rows: int, per_block: int) -> tuple[tuple[int, int], ...]:
-    """Cut ``[0, rows)`` into consecutive ranges of ``per_block`` rows (last one ragged)."""
-    if rows == 0:
-        return ((0, 0),)
-    return tuple((start, min(start + per_block, rows)) for start in range(0, rows, per_block))
-
-
 def load_block(
     plan: BlockPlan, index: int, layout: str = "F"
 ) -> tuple[np.ndarray, np.ndarray | None]:

@@ -12,8 +12,6 @@ import numpy as np
 import scipy.sparse as sp
 from scipy.linalg import solve_triangular
 
-from rowfold.kernels.gram import block_gram
-
 
 def csr_block(
     data: np.ndarray,
@@ -94,19 +92,3 @@ def upper_inverse(R: np.ndarray) -> np.ndarray:
     """Return ``inv(R)`` of an upper triangular R, by a triangular solve on the identity."""
     eye = np.eye(R.shape[0], dtype=R.dtype)
     return np.ascontiguousarray(solve_triangular(R, eye, lower=False, check_finite=False))
-
-
-def rows_gram(x: np.ndarray) -> np.ndarray:
-    """Return ``x^H x`` by syrk/herk, without copying a real C-ordered ``x``.
-
-    A real C-ordered rows x n array is the Fortran-ordered n x rows array ``x^T``, and
-    ``x^T x`` is syrk of that without transposition. Complex or Fortran input goes to
-    :func:`rowfold.kernels.gram.block_gram`.
-    """
-    if x.flags.f_contiguous or np.iscomplexobj(x) or x.shape[0] == 0:
-        return block_gram(x)
-    from scipy.linalg import blas
-
-    (syrk,) = blas.get_blas_funcs(("syrk",), (x,))
-    upper = syrk(1.0, x.T, trans=0, lower=0)
-    return np.triu(upper) + np.triu(upper, 1).T

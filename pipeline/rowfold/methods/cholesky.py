@@ -121,7 +121,7 @@ def sparse_gram_leaf(plan: BlockPlan, index: int, recipe: SparseRecipe) -> dict[
     block, rhs = plan.load_sparse(index)
     x = sparse_apply(block, recipe)
     return {
-        "gram": sparse_kernels.rows_gram(x),
+        "gram": block_gram(x),
         "cross": None if rhs is None else cross_product(x, rhs),
     }
 
@@ -225,24 +225,15 @@ def assemble(
     qhb = None
     if last_cross is not None:
         qhb = solve_triangular(factors[-1], last_cross, trans="C", lower=False)
-    if sparse:
-        return Factorization(
-            R=R,
-            qhb=qhb,
-            q_kernel=q_block_sparse,
-            q_recipes=[sparse_recipe(factors)] * blocks,
-            passes=passes,
-            sums={"a_fro2": first_sums["a_fro2"], "gram": first_sums["gram"]},
-            details={**details, "sparse_input": True},
-        )
+    recipe: Any = sparse_recipe(factors) if sparse else tuple(factors)
     return Factorization(
         R=R,
         qhb=qhb,
-        q_kernel=q_block,
-        q_recipes=[tuple(factors)] * blocks,
+        q_kernel=q_block_sparse if sparse else q_block,
+        q_recipes=[recipe] * blocks,
         passes=passes,
         sums={"a_fro2": first_sums["a_fro2"], "gram": first_sums["gram"]},
-        details=details,
+        details={**details, "sparse_input": True} if sparse else details,
     )
 
 
