@@ -7,6 +7,7 @@ from numpy.linalg import LinAlgError
 from scipy.linalg import blas, lapack
 
 from rowfold.kernels.householder import as_columns
+from rowfold.kernels.nogil import rank_k_upper
 
 
 def block_gram(block: np.ndarray) -> np.ndarray:
@@ -19,13 +20,12 @@ def block_gram(block: np.ndarray) -> np.ndarray:
     if block.shape[0] == 0:
         return np.zeros((n, n), dtype=block.dtype)
     complex_ = np.iscomplexobj(block)
-    (rank_k,) = blas.get_blas_funcs(("herk" if complex_ else "syrk",), (block,))
     if block.flags.c_contiguous and not block.flags.f_contiguous:
         # block.T is Fortran-ordered; (block.T)(block.T)^H = conj(block^H block)
-        upper = rank_k(1.0, block.T, trans=0, lower=0)
+        upper = rank_k_upper(block.T, transpose=False)
         upper = np.conj(upper) if complex_ else upper
     else:
-        upper = rank_k(1.0, np.asfortranarray(block), trans=2 if complex_ else 1, lower=0)
+        upper = rank_k_upper(np.asfortranarray(block), transpose=True)
     gram = np.triu(upper) + np.triu(upper, 1).conj().T
     if complex_:
         np.fill_diagonal(gram, np.real(np.diagonal(gram)))

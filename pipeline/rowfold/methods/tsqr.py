@@ -14,16 +14,28 @@ from typing import Any
 
 import numpy as np
 
-from rowfold.blocks import BlockPlan, BlockSource
+from rowfold.blocks import BlockPlan, BlockSource, load_for_products
 from rowfold.kernels import householder_q, householder_r, metrics, positive_diagonal, stacked_r
+from rowfold.kernels.fold import folded_r
 from rowfold.methods._graph import task, tree_levels
 from rowfold.methods.base import Context, Engine, Factorization
 from rowfold.spec import MethodSpec
 from rowfold.storage.checkpoints import load_checkpoint, save_checkpoint
 
 
-def leaf_factor(source: BlockSource, index: int) -> tuple[Any, Any, Any, metrics.Sums]:
-    """Read one block; return its (R, Q^H B, None, first-pass sums), zero-padded to n rows."""
+def leaf_factor(
+    source: BlockSource, index: int, keep_q: bool = False
+) -> tuple[Any, Any, Any, metrics.Sums]:
+    """Read one block; return its (R, Q^H B, None, first-pass sums).
+
+    Without Q the block is folded piece by piece in cache (:func:`folded_r`, no copy of the
+    whole block). With Q the leaf uses whole-block geqrf, the same kernel that
+    :func:`q_block` re-runs later, so the block's Q pairs with this very R.
+    """
+    if not keep_q:
+        block, rhs = load_for_products(source, index)
+        R, C, gram = folded_r(block, rhs)
+        return R, C, None, {"a_fro2": float(np.real(np.trace(gram))), "gram": gram}
     block, rhs = source.load(index)
     sums = metrics.gram_sums(block)
     R, C = householder_r(block, rhs, overwrite=True)
@@ -31,10 +43,10 @@ def leaf_factor(source: BlockSource, index: int) -> tuple[Any, Any, Any, metrics
 
 
 def checkpointed_leaf(
-    source: BlockSource, index: int, path: str
+    source: BlockSource, index: int, path: str, keep_q: bool
 ) -> tuple[Any, Any, Any, metrics.Sums]:
     """:func:`leaf_factor`, saving its result to ``path`` for a later resume."""
-    result = leaf_factor(source, index)
+    result = leaf_factor(source, index, keep_q)
     R, C, _, sums = result
     save_checkpoint(path, {"R": R, "C": C, "a_fro2": sums["a_fro2"], "gram": sums["gram"]})
     return result
@@ -78,7 +90,7 @@ def factor(plan: BlockPlan, spec: MethodSpec, ctx: Context) -> Factorization:
     """Run Householder TSQR over the plan's row blocks."""
     leaves = None
     if ctx.checkpoints is not None:
-        leaves = _checkpoint_leaves(plan, ctx.checkpoints)
+        leaves = _checkpoint_leaves(plan, ctx.checkpoints, ctx.want_q)
     fact = factor_source(plan, spec.tree, ctx.engine, ctx.want_q, leaves=leaves)
     if leaves is not None:
         fact.details["resumed_blocks"] = sum(1 for leaf in leaves if leaf.resumed)
@@ -93,7 +105,7 @@ class _Leaf:
         self.resumed = resumed
 
 
-def _checkpoint_leaves(plan: BlockPlan, folder: Path) -> list[_Leaf]:
+def _checkpoint_leaves(plan: BlockPlan, folder: Path, keep_q: bool) -> list[_Leaf]:
     """Leaf tasks that save checkpoints, or load the ones a killed run left."""
     leaves = []
     for i in range(plan.blocks):
@@ -101,7 +113,7 @@ def _checkpoint_leaves(plan: BlockPlan, folder: Path) -> list[_Leaf]:
         if path.exists():
             leaves.append(_Leaf(task(resumed_leaf, str(path)), True))
         else:
-            leaves.append(_Leaf(task(checkpointed_leaf, plan, i, str(path)), False))
+            leaves.append(_Leaf(task(checkpointed_leaf, plan, i, str(path), keep_q), False))
     return leaves
 
 
@@ -119,7 +131,7 @@ def factor_source(
     reads and factors one block of the source.
     """
     if leaves is None:
-        leaves = [task(leaf_factor, source, i) for i in range(source.blocks)]
+        leaves = [task(leaf_factor, source, i, want_q) for i in range(source.blocks)]
     else:
         leaves = [leaf.node if isinstance(leaf, _Leaf) else leaf for leaf in leaves]
     fan_in = fan_in_of(tree, len(leaves))
