@@ -483,3 +483,30 @@ def test_update_folds_rows_appended_to_a_csr_input(tmp_path: Path) -> None:
     runner.run_job(runner.load_job(job), inline=True)
     fresh = read_result(tmp_path / "out.h5")
     assert np.allclose(updated["x"], fresh["x"], rtol=1e-12, atol=1e-14)
+
+
+@pytest.mark.parametrize("complex_", [False, True])
+@pytest.mark.parametrize("bands", [1, 3, 16])
+def test_banded_gram_equals_the_gram_of_the_full_product(
+    complex_: bool, bands: int, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    """Reference: numpy's dense ``X^H X`` and ``X^H b`` of the same X (the band split only
+    skips exact zeros, so the bound is the usual inner-product one, Higham 2002, sec. 3.1,
+    with a common-practice constant)."""
+    monkeypatch.setattr(sparse_kernels, "GRAM_BANDS", bands)
+    rng = np.random.default_rng(bands)
+    A = sp.random(500, 12, density=0.15, random_state=bands, format="csr")
+    A = A + 1j * A if complex_ else A
+    A = sparse_kernels.canonical(sp.csr_matrix(A))  # some rows have no stored value
+    assert (np.diff(A.indptr) == 0).any()
+    b = rng.standard_normal((500, 2))
+    F1, F2 = (np.triu(rng.standard_normal((12, 12))) + 6 * np.eye(12) for _ in range(2))
+    inverse = np.linalg.inv(F1)
+    X = (A @ inverse) @ np.linalg.inv(F2)
+    gram, cross = sparse_kernels.banded_gram(A, b, inverse, (F2,))
+    scale = np.linalg.norm(X) ** 2
+    assert np.linalg.norm(gram - X.conj().T @ X) <= 100 * 12 * U * scale
+    assert cross is not None
+    assert np.linalg.norm(cross - X.conj().T @ b) <= 100 * 12 * U * scale * np.linalg.norm(b)
+    empty_gram, empty_cross = sparse_kernels.banded_gram(A[:0], None, inverse)
+    assert not empty_gram.any() and empty_cross is None

@@ -30,8 +30,8 @@ FOLD_PANEL = 16
 
 
 def folded_r(
-    block: np.ndarray, rhs: np.ndarray | None = None
-) -> tuple[np.ndarray, np.ndarray | None, np.ndarray]:
+    block: np.ndarray, rhs: np.ndarray | None = None, with_gram: bool = True
+) -> tuple[np.ndarray, np.ndarray | None, np.ndarray | None]:
     """Return R, ``Q^H rhs`` and the Gram ``A^H A`` of one row block.
 
     Parameters
@@ -41,6 +41,9 @@ def folded_r(
     rhs : ndarray, shape (rows,) or (rows, k), optional
         Right-hand sides, factored as extra columns of ``[A | B]``, so the returned
         ``Q^H B`` pairs with R.
+    with_gram : bool
+        Also accumulate ``A^H A`` (callers that have a cheaper Gram, e.g. from a CSR block,
+        pass False).
 
     Returns
     -------
@@ -48,19 +51,21 @@ def folded_r(
         Upper triangular with ``R^H R = A^H A``; diagonal signs as LAPACK leaves them.
     C : ndarray, shape (n, k) or None
         The first n rows of ``Q^H B``.
-    gram : ndarray, shape (n, n)
-        ``A^H A``, accumulated piece by piece (for the first-pass checks).
+    gram : ndarray, shape (n, n), or None
+        ``A^H A``, accumulated piece by piece (for the first-pass checks); None without
+        ``with_gram``.
     """
     rows, n = block.shape
     extra = None if rhs is None else as_columns(rhs)
     dtype = block.dtype if extra is None else np.result_type(block, extra)
     width = n + (0 if extra is None else extra.shape[1])
     triangle = np.zeros((width, width), dtype=dtype, order="F")
-    gram = np.zeros((n, n), dtype=dtype)
+    gram = np.zeros((n, n), dtype=dtype) if with_gram else None
     panel = max(1, min(FOLD_PANEL, width))
     for start in range(0, rows, FOLD_ROWS):
         piece = _fortran_piece(block, extra, start, dtype)
-        gram += block_gram(piece[:, :n])
+        if gram is not None:
+            gram += block_gram(piece[:, :n])
         tpqrt(triangle, piece, panel)
     C = None if extra is None else np.array(triangle[:n, n:])
     return np.triu(triangle[:n, :n]), C, gram

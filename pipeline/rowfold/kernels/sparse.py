@@ -12,6 +12,8 @@ import numpy as np
 import scipy.sparse as sp
 from scipy.linalg import solve_triangular
 
+from rowfold.kernels.gram import block_gram, solve_right_upper
+
 
 def csr_block(
     data: np.ndarray,
@@ -92,3 +94,63 @@ def upper_inverse(R: np.ndarray) -> np.ndarray:
     """Return ``inv(R)`` of an upper triangular R, by a triangular solve on the identity."""
     eye = np.eye(R.shape[0], dtype=R.dtype)
     return np.ascontiguousarray(solve_triangular(R, eye, lower=False, check_finite=False))
+
+
+# Column bands for :func:`banded_gram`: rows are grouped by the band of their first stored
+# column. More bands skip more zeros but make smaller BLAS calls; 16 is a common-practice
+# compromise, checked on the 3M x 200 levelling benchmark.
+GRAM_BANDS = 16
+
+
+def banded_gram(
+    block: sp.csr_matrix,
+    rhs: np.ndarray | None,
+    inverse: np.ndarray,
+    rest: tuple[np.ndarray, ...] = (),
+) -> tuple[np.ndarray, np.ndarray | None]:
+    """Return ``X^H X`` and ``X^H rhs`` for ``X = block inv(F1) inv(F2) ...``, skipping zeros.
+
+    ``inverse`` is ``inv(F1)`` and ``rest`` the further upper triangular factors. A row
+    whose first stored column is c has ``x_i[:c] = 0`` exactly, because every factor is
+    upper triangular. Rows are grouped by the band of c, and each group's X is formed and
+    multiplied only from its band's first column on. The values of X are the same, bit for
+    bit, as those of the full product; only the order of the Gram's sums differs.
+
+    Parameters
+    ----------
+    block : csr_matrix (rows, n)
+        In canonical form (sorted column numbers, see :func:`canonical`).
+    rhs : ndarray (rows, k) or None
+    inverse : ndarray (n, n)
+    rest : tuple of ndarray (n, n)
+
+    Returns
+    -------
+    gram : ndarray (n, n), Hermitian
+    cross : ndarray (n, k) or None
+    """
+    n = block.shape[1]
+    dtype = np.result_type(block.dtype, inverse.dtype)
+    gram = np.zeros((n, n), dtype=dtype)
+    cross = None if rhs is None else np.zeros((n, rhs.shape[1]), dtype=dtype)
+    for start, rows in _band_rows(block, n):
+        x = np.asarray(block[rows] @ inverse[:, start:], dtype=dtype)
+        for factor in rest:
+            x = solve_right_upper(x, factor[start:, start:])
+        gram[start:, start:] += block_gram(x)
+        if cross is not None and rhs is not None:
+            cross[start:] += x.conj().T @ rhs[rows]
+    return gram, cross
+
+
+def _band_rows(block: sp.csr_matrix, n: int) -> list[tuple[int, np.ndarray]]:
+    """(first column of the band, rows whose first stored column lies in it), per band."""
+    counts = np.diff(block.indptr)
+    stored = np.flatnonzero(counts)
+    leading = block.indices[block.indptr[stored]]
+    edges = np.linspace(0, n, min(GRAM_BANDS, max(n, 1)) + 1).astype(np.int64)
+    band = np.searchsorted(edges, leading, side="right") - 1
+    order = np.argsort(band, kind="stable")
+    splits = np.searchsorted(band[order], np.arange(len(edges) - 1))
+    groups = np.split(stored[order], splits[1:])
+    return [(int(edges[i]), rows) for i, rows in enumerate(groups) if rows.size]

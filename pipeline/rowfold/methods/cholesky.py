@@ -117,13 +117,15 @@ def sparse_apply(block: sp.csr_matrix, recipe: SparseRecipe) -> np.ndarray:
 
 
 def sparse_gram_leaf(plan: BlockPlan, index: int, recipe: SparseRecipe) -> dict[str, Any]:
-    """Gram sums (``gram``, ``cross``) of one block of X formed from a CSR block."""
+    """Gram sums (``gram``, ``cross``) of one block of X formed from a CSR block.
+
+    X is formed band by band (:func:`rowfold.kernels.sparse.banded_gram`): its values are
+    those of :func:`sparse_apply`, but the zeros that the triangular factors keep at the
+    start of each row are neither formed nor multiplied.
+    """
     block, rhs = plan.load_sparse(index)
-    x = sparse_apply(block, recipe)
-    return {
-        "gram": block_gram(x),
-        "cross": None if rhs is None else cross_product(x, rhs),
-    }
+    gram, cross = sparse_kernels.banded_gram(block, rhs, *recipe)
+    return {"gram": gram, "cross": cross}
 
 
 def q_block_sparse(block: np.ndarray, recipe: SparseRecipe) -> np.ndarray:

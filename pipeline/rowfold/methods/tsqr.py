@@ -16,6 +16,7 @@ import numpy as np
 
 from rowfold.blocks import BlockPlan, BlockSource, load_for_products
 from rowfold.kernels import householder_q, householder_r, metrics, positive_diagonal, stacked_r
+from rowfold.kernels import sparse as sparse_kernels
 from rowfold.kernels.fold import folded_r
 from rowfold.methods._graph import task, tree_levels
 from rowfold.methods.base import Context, Engine, Factorization
@@ -29,12 +30,19 @@ def leaf_factor(
     """Read one block; return its (R, Q^H B, None, first-pass sums).
 
     Without Q the block is folded piece by piece in cache (:func:`folded_r`, no copy of the
-    whole block). With Q the leaf uses whole-block geqrf, the same kernel that
-    :func:`q_block` re-runs later, so the block's Q pairs with this very R.
+    whole block); a CSR block is densified for the fold but its Gram comes from the CSR
+    block (about nnz * nnz-per-row flops instead of rows * n^2). With Q the leaf uses
+    whole-block geqrf, the same kernel that :func:`q_block` re-runs later, so the block's Q
+    pairs with this very R.
     """
+    if not keep_q and isinstance(source, BlockPlan) and source.sparse:
+        sparse_block, rhs = source.load_sparse(index)
+        R, C, _ = folded_r(sparse_block.toarray(), rhs, with_gram=False)
+        return R, C, None, sparse_kernels.sparse_gram_sums(sparse_block)
     if not keep_q:
         block, rhs = load_for_products(source, index)
         R, C, gram = folded_r(block, rhs)
+        assert gram is not None
         return R, C, None, {"a_fro2": float(np.real(np.trace(gram))), "gram": gram}
     block, rhs = source.load(index)
     sums = metrics.gram_sums(block)
