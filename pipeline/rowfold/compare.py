@@ -8,9 +8,7 @@ verification pass (to measure orthogonality) but not written. Each result goes t
 
 from __future__ import annotations
 
-import base64
 import html
-import io
 import json
 from dataclasses import dataclass, replace
 from pathlib import Path
@@ -18,6 +16,7 @@ from typing import Any
 
 import numpy as np
 
+from rowfold import svgplot
 from rowfold.errors import BreakdownError
 from rowfold.report import CAUTION
 from rowfold.spec import Job
@@ -124,47 +123,34 @@ def text_table(records: list[dict[str, Any]]) -> str:
     return "\n".join(out)
 
 
-def _png(fig: Any) -> str:
-    import matplotlib.pyplot as plt
-
-    buffer = io.BytesIO()
-    fig.tight_layout()
-    fig.savefig(buffer, format="png", dpi=100)
-    plt.close(fig)
-    return base64.b64encode(buffer.getvalue()).decode("ascii")
-
-
 def plots(records: list[dict[str, Any]]) -> list[tuple[str, str]]:
-    """(title, base64 PNG) for time, loss of orthogonality against its bound, and diag(R)."""
-    import matplotlib
-
-    matplotlib.use("Agg")
-    import matplotlib.pyplot as plt
-
+    """(title, inline SVG text) for time, loss of orthogonality against its bound, and diag(R)."""
     ran = [r for r in records if r["status"] != "refused"]
     names = [r["method"] for r in ran]
-    out = []
-    fig, ax = plt.subplots(figsize=(6, 3))
-    ax.bar(names, [r["seconds"] for r in ran], color="#4a7ab0")
-    ax.set_ylabel("seconds")
-    out.append(("Time per method", _png(fig)))
-    fig, ax = plt.subplots(figsize=(6, 3))
-    loo = [max(r["orthogonality_loss"] or 1e-300, 1e-300) for r in ran]
-    ax.bar(names, loo, color="#b0704a", label="measured ||I - Q^H Q||_F")
-    bounds = [r["orthogonality_bound"] for r in ran]
-    ax.scatter(names, bounds, marker="_", s=600, color="black", label="published bound")
-    ax.set_yscale("log")
-    ax.legend(fontsize=8)
-    out.append(("Loss of orthogonality against the published bound", _png(fig)))
-    fig, ax = plt.subplots(figsize=(6, 3))
-    for r in ran:
-        diag = np.abs(np.asarray(r["r_diagonal"] or [], dtype=float))
-        ax.semilogy(np.arange(1, diag.size + 1), np.maximum(diag, 1e-300), ".-", label=r["method"])
-    ax.set_xlabel("column")
-    ax.set_ylabel("|r_ii|")
-    ax.legend(fontsize=8)
-    out.append(("Diagonal of R", _png(fig)))
-    return out
+    time_title = "Time per method"
+    loo_title = "Loss of orthogonality against the published bound"
+    diag_title = "Diagonal of R"
+    time = svgplot.bar_chart(
+        names, [r["seconds"] for r in ran], title=time_title, value_label="seconds"
+    )
+    loo = svgplot.bar_chart(
+        names,
+        [r["orthogonality_loss"] for r in ran],
+        title=loo_title,
+        log_y=True,
+        ticks=[r["orthogonality_bound"] for r in ran],
+        bar_label="measured ||I - Q^H Q||_F",
+        tick_label="published bound",
+        color=svgplot.COLORS[1],
+    )
+    series = [
+        svgplot.Series(r["method"], np.abs(svgplot.floats(r["r_diagonal"] or [])), marker="circle")
+        for r in ran
+    ]
+    diag = svgplot.line_chart(
+        series, title=diag_title, x_label="column", y_label="|r_ii|", log_y=True
+    )
+    return [(time_title, time), (loo_title, loo), (diag_title, diag)]
 
 
 def render_html(job: Job, records: list[dict[str, Any]]) -> str:
@@ -179,11 +165,7 @@ def render_html(job: Job, records: list[dict[str, Any]]) -> str:
         for r in records
         if r["message"]
     )
-    images = "".join(
-        f"<h2>{html.escape(title)}</h2><img alt='{html.escape(title)}' "
-        f"src='data:image/png;base64,{png}'>"
-        for title, png in plots(records)
-    )
+    images = "".join(f"<h2>{html.escape(title)}</h2>{svg}" for title, svg in plots(records))
     title = html.escape(f"rowfold comparison: {job.name}")
     return (
         f"<!DOCTYPE html><html lang='en'><head><meta charset='utf-8'><title>{title}</title>"

@@ -5,13 +5,13 @@ The figures themselves are assembled by :func:`rowfold.quality.assemble_report`.
 
 from __future__ import annotations
 
-import base64
 import html
-import io
 import json
 from typing import Any
 
 import numpy as np
+
+from rowfold import svgplot
 
 CAUTION = (
     "rowfold computes factorizations and least-squares solutions; it does not judge whether a "
@@ -25,72 +25,48 @@ def to_json(report: dict[str, Any]) -> str:
     return json.dumps(report, indent=2, sort_keys=False) + "\n"
 
 
-def _pyplot() -> Any:
-    """matplotlib's pyplot on the Agg backend, or None when matplotlib is missing."""
-    try:
-        import matplotlib
-
-        matplotlib.use("Agg")
-        import matplotlib.pyplot as plt
-    except ImportError:  # matplotlib is a dependency; keep the report readable without it
-        return None
-    return plt
-
-
-def _png(plt: Any, fig: Any) -> str:
-    fig.tight_layout()
-    buffer = io.BytesIO()
-    fig.savefig(buffer, format="png", dpi=100)
-    plt.close(fig)
-    return base64.b64encode(buffer.getvalue()).decode("ascii")
-
-
-def _spectrum(plt: Any, report: dict[str, Any]) -> str:
+def _spectrum(report: dict[str, Any]) -> str:
     sigma = np.asarray(report.get("r_singular_values") or [], dtype=float)
     diag = np.abs(np.asarray(report.get("r_diagonal") or [], dtype=float))
-    fig, ax = plt.subplots(figsize=(7, 3.2))
-    positions = np.arange(1, sigma.size + 1)
-    ax.semilogy(positions, np.maximum(sigma, 1e-300), "o-", ms=3, label="singular values of R")
-    ax.semilogy(positions, np.maximum(diag, 1e-300), "s", ms=3, label="|diag(R)|")
-    ax.set_xlabel("index")
-    ax.legend(loc="best", fontsize=8)
-    ax.grid(True, which="both", alpha=0.3)
-    return _png(plt, fig)
+    series = [
+        svgplot.Series("singular values of R", sigma, line=True, marker="circle"),
+        svgplot.Series("|diag(R)|", diag, line=False, marker="square"),
+    ]
+    return svgplot.line_chart(series, title="Spectrum of R", x_label="index", log_y=True)
 
 
-def _timing(plt: Any, report: dict[str, Any]) -> str:
+def _timing(report: dict[str, Any]) -> str:
     seconds = report.get("seconds") or {}
-    fig, ax = plt.subplots(figsize=(7, 2.6))
-    ax.barh(list(seconds), list(seconds.values()), color="#4a7ab0")
-    ax.set_xlabel("seconds")
-    return _png(plt, fig)
+    return svgplot.bar_chart(
+        list(seconds),
+        list(seconds.values()),
+        title="Time per stage",
+        value_label="seconds",
+        horizontal=True,
+        height=max(120, 60 + 24 * len(seconds)),
+    )
 
 
-def _histogram(plt: Any, report: dict[str, Any]) -> str | None:
+def _histogram(report: dict[str, Any]) -> str | None:
     hist = (report.get("residual_screening") or {}).get("histogram")
     if not hist:
         return None
-    edges = np.asarray(hist["edges"])
-    fig, ax = plt.subplots(figsize=(7, 2.8))
-    ax.stairs(hist["counts"], edges, fill=True, color="#b0704a")
     limit = report["residual_screening"]["flag_above"]
-    for x in (-limit, limit):
-        ax.axvline(x, color="black", lw=0.8, ls="--")
-    ax.set_xlabel("standardized residual (outer bins hold everything beyond)")
-    ax.set_yscale("log")
-    return _png(plt, fig)
+    return svgplot.histogram(
+        hist["edges"],
+        hist["counts"],
+        title="Standardized residuals",
+        x_label="standardized residual (outer bins hold everything beyond)",
+        log_y=True,
+        vlines=[-limit, limit],
+        vline_label=f"flag limit ±{limit:g}",
+    )
 
 
 def plots(report: dict[str, Any]) -> list[tuple[str, str]]:
-    """(title, base64 PNG) of the report's plots."""
-    plt = _pyplot()
-    if plt is None:
-        return []
-    out = [
-        ("Spectrum of R", _spectrum(plt, report)),
-        ("Time per stage", _timing(plt, report)),
-    ]
-    histogram = _histogram(plt, report)
+    """(title, inline SVG text) of the report's plots."""
+    out = [("Spectrum of R", _spectrum(report)), ("Time per stage", _timing(report))]
+    histogram = _histogram(report)
     if histogram:
         out.append(("Standardized residuals", histogram))
     return out
@@ -130,7 +106,7 @@ def _num(value: Any) -> str:
 
 
 def render_html(report: dict[str, Any]) -> str:
-    """Render the report as a self-contained HTML page (plot embedded as PNG)."""
+    """Render the report as a self-contained HTML page (plots inlined as SVG)."""
     rows = "\n".join(
         f"<tr><th>{html.escape(label)}</th><td>{_fmt(report.get(key))}</td></tr>"
         for key, label in _ROWS
@@ -167,11 +143,7 @@ def render_html(report: dict[str, Any]) -> str:
         if screening
         else ""
     )
-    images = "".join(
-        f'<h2>{html.escape(title)}</h2><img alt="{html.escape(title)}" '
-        f'src="data:image/png;base64,{png}">'
-        for title, png in plots(report)
-    )
+    images = "\n".join(f"<h2>{html.escape(title)}</h2>\n{svg}" for title, svg in plots(report))
     title = html.escape(f"rowfold report: {report.get('name', '')}")
     return f"""<!DOCTYPE html>
 <html lang="en"><head><meta charset="utf-8"><title>{title}</title>
