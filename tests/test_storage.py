@@ -23,10 +23,12 @@ from rowfold.errors import InputError, InputMissingError
 from rowfold.storage import (
     ArrayRef,
     ResultWriter,
+    close_open_inputs,
     describe_array,
     read_result,
     read_rows,
     report_paths,
+    write_arrays,
 )
 
 ROWS, COLS, CHUNK = 23, 3, 5  # 23 = 4 full chunks of 5 and a ragged chunk of 3
@@ -322,3 +324,39 @@ def _array(path: Path, name: str) -> np.ndarray:
             return np.asarray(handle[name][...])
     array: Any = zarr.open_group(str(path), mode="r")[name]
     return np.asarray(array[...])
+
+
+class TestKeptInputHandles:
+    """Row reads keep one HDF5 handle open per file during a job (opening costs more than
+    reading a block), but must never serve stale rows or keep a file from being written."""
+
+    def test_rows_written_after_a_read_are_seen(self, tmp_path: Path) -> None:
+        path = tmp_path / "a.h5"
+        first, second = sample("<f8"), sample("<f8") + 100.0
+        write_arrays(path, {"A": first})
+        assert np.array_equal(read_rows(ArrayRef(str(path), "A"), 0, ROWS), first)
+        write_arrays(path, {"A": second})  # the writer closes the kept handle first
+        assert np.array_equal(read_rows(ArrayRef(str(path), "A"), 0, ROWS), second)
+
+    def test_a_file_replaced_behind_rowfolds_back_is_reopened(self, tmp_path: Path) -> None:
+        path, other = tmp_path / "a.h5", tmp_path / "b.h5"
+        write_arrays(path, {"A": sample("<f8")})
+        read_rows(ArrayRef(str(path), "A"), 0, 1)
+        with h5py.File(other, "w") as handle:  # another program writes a new version
+            handle["A"] = sample("<f8") * 3.0
+        os.replace(other, path)
+        assert np.array_equal(read_rows(ArrayRef(str(path), "A"), 0, ROWS), sample("<f8") * 3.0)
+
+    def test_closing_lets_another_writer_append(self, tmp_path: Path) -> None:
+        path = tmp_path / "a.h5"
+        with h5py.File(path, "w") as handle:
+            handle.create_dataset("A", data=sample("<f8"), maxshape=(None, COLS))
+        read_rows(ArrayRef(str(path), "A"), 0, ROWS)
+        close_open_inputs()
+        with h5py.File(path, "a") as handle:  # fails while a read-only handle is open
+            handle["A"].resize(ROWS + 2, axis=0)
+            handle["A"][ROWS:] = 5.0
+        assert np.array_equal(
+            read_rows(ArrayRef(str(path), "A"), ROWS, ROWS + 2), np.full((2, COLS), 5.0)
+        )
+        close_open_inputs()

@@ -25,8 +25,8 @@ import os
 import resource
 import sys
 import time
-from collections.abc import Iterator, Sequence
-from contextlib import contextmanager
+from collections.abc import Callable, Iterator, Sequence
+from contextlib import contextmanager, suppress
 from dataclasses import dataclass
 from typing import Any, TextIO
 
@@ -155,6 +155,11 @@ class DistributedEngine:
     def address(self) -> str:
         """The scheduler's address."""
         return str(self.client.scheduler.address)
+
+    def run_on_workers(self, function: Callable[[], None]) -> None:
+        """Call ``function`` once on every worker, best effort (a lost worker is skipped)."""
+        with suppress(Exception):
+            self.client.run(function)
 
     def _wait(self, futures: list[Any], label: str) -> None:
         """Wait for futures, showing progress over every task of their graphs."""

@@ -208,7 +208,10 @@ def _engine(
     job: Job, progress: Progress, inline: bool, plan: BlockPlan | None = None
 ) -> Iterator[Any]:
     if inline:
-        yield InlineEngine(progress)
+        try:
+            yield InlineEngine(progress)
+        finally:
+            storage.close_open_inputs()
         return
     spec = job.cluster
     if spec.processes is None:
@@ -216,7 +219,11 @@ def _engine(
         # scipy.sparse products hold it, so CSR input goes to worker processes
         spec = replace(spec, processes=bool(plan is not None and plan.sparse))
     with open_engine(spec, progress) as engine:
-        yield engine
+        try:
+            yield engine
+        finally:  # let the night's ingestion append to the inputs once the job is done
+            engine.run_on_workers(storage.close_open_inputs)
+            storage.close_open_inputs()
 
 
 def _run_on(

@@ -19,6 +19,7 @@ from rowfold.storage.csr import (
 from rowfold.storage.inputs import (
     ArrayInfo,
     ArrayRef,
+    close_open_inputs,
     describe_array,
     read_rows,
     write_arrays,
@@ -41,6 +42,7 @@ __all__ = [
     "CsrInfo",
     "ResultWriter",
     "check_output_path",
+    "close_open_inputs",
     "describe_array",
     "describe_csr",
     "describe_matrix",

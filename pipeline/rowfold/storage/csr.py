@@ -33,6 +33,8 @@ from rowfold.storage.inputs import (
     _missing,
     _open_zarr,
     describe_array,
+    forget_input,
+    open_input,
 )
 
 CSR_ARRAYS = ("data", "indices", "indptr")
@@ -252,7 +254,8 @@ def read_csr_rows(
     _log_read(ref, start, stop, purpose)
     try:
         if ref.is_hdf5:
-            with _HDF5_LOCK, h5py.File(ref.path, "r") as handle:
+            with _HDF5_LOCK:
+                handle = open_input(ref.path)
                 group = handle[ref.name] if ref.name not in ("", ".", "/") else handle
                 return _read_from(group, start, stop)
         root = _open_zarr(ref.path)
@@ -361,6 +364,7 @@ def _write_hdf5(
     arrays: dict[str, np.ndarray],
     extra: dict[str, np.ndarray],
 ) -> None:
+    forget_input(target)
     with _HDF5_LOCK, h5py.File(target, "a") as handle:
         for name in (group, *extra):
             if name in handle:

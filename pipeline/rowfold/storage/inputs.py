@@ -25,6 +25,13 @@ ZARR_SUFFIXES = (".zarr",)
 # process at once is safest behind a lock of our own.
 _HDF5_LOCK = threading.Lock()
 
+# Read-only HDF5 handles kept open between the row reads of a job. Opening a file costs
+# several ms, as much as reading a 65,536 x 64 block from the page cache (measured: 62 block
+# reads of a 2 GB file took 0.45 s on one handle and 1.1 to 2.7 s opening the file each time).
+# An entry is reopened when the file's inode, size or modification time changes, ignored in a
+# forked child, and closed by close_open_inputs(), which the runner calls when a job ends.
+_OPEN_INPUTS: dict[str, tuple[tuple[int, ...], Any]] = {}
+
 
 @dataclass(frozen=True, slots=True)
 class ArrayRef:
@@ -173,8 +180,8 @@ def read_rows(ref: ArrayRef, start: int, stop: int, purpose: str = "data") -> np
     _log_read(ref, start, stop, purpose)
     try:
         if ref.is_hdf5:
-            with _HDF5_LOCK, h5py.File(ref.path, "r") as handle:
-                return np.asarray(handle[ref.name][start:stop])
+            with _HDF5_LOCK:
+                return np.asarray(open_input(ref.path)[ref.name][start:stop])
         root = _open_zarr(ref.path)
         obj = root[ref.name] if ref.name not in ("", ".", "/") else root
         return np.asarray(obj[start:stop])
@@ -183,6 +190,37 @@ def read_rows(ref: ArrayRef, start: int, stop: int, purpose: str = "data") -> np
             f"{ref.describe()}: rows {start}..{stop - 1} cannot be read "
             f"({exc.__class__.__name__}: {exc})"
         ) from None
+
+
+def open_input(path: str) -> Any:
+    """A read-only handle on an HDF5 input, reused while the file is unchanged.
+
+    The caller must hold ``_HDF5_LOCK`` while it uses the handle.
+    """
+    info = os.stat(path)
+    signature = (os.getpid(), info.st_ino, info.st_size, info.st_mtime_ns)
+    cached = _OPEN_INPUTS.get(path)
+    if cached is not None and cached[0] == signature:
+        return cached[1]
+    if cached is not None and cached[0][0] == os.getpid():
+        cached[1].close()
+    handle = h5py.File(path, "r")
+    _OPEN_INPUTS[path] = (signature, handle)
+    return handle
+
+
+def forget_input(path: str | Path) -> None:
+    """Close the kept handle on ``path``, if any (before the file is written)."""
+    with _HDF5_LOCK:
+        cached = _OPEN_INPUTS.pop(str(path), None)
+        if cached is not None and cached[0][0] == os.getpid():
+            cached[1].close()
+
+
+def close_open_inputs() -> None:
+    """Close every kept input handle of this process (at the end of a job)."""
+    for path in list(_OPEN_INPUTS):
+        forget_input(path)
 
 
 def _log_read(ref: ArrayRef, start: int, stop: int, purpose: str) -> None:
@@ -258,6 +296,7 @@ def write_arrays(path: str | Path, arrays: dict[str, np.ndarray], chunk_rows: in
     target = Path(path)
     target.parent.mkdir(parents=True, exist_ok=True)
     if target.suffix.lower() in HDF5_SUFFIXES:
+        forget_input(target)
         with _HDF5_LOCK, h5py.File(target, "w") as handle:
             for name, array in arrays.items():
                 rows = min(chunk_rows, array.shape[0])
