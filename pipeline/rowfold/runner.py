@@ -182,7 +182,7 @@ def _run_with_engine(
         storage.remove_litter(job.output.path)
         workdir = stack.enter_context(storage.scratch_folder(job.output.path))
         with clock.stage("cluster_start"):
-            engine = stack.enter_context(_engine(job, progress, inline, plan))
+            engine = stack.enter_context(_engine(job, progress, inline))
         inputs = _fingerprints(job, plan, engine)
         checkpoints = _checkpoints(job, plan, inputs, resume)
         ctx = Context(engine, wants_q(job), workdir, checkpoints)
@@ -204,9 +204,7 @@ def _checkpoints(job: Job, plan: BlockPlan, inputs: dict[str, Any], resume: bool
 
 
 @contextmanager
-def _engine(
-    job: Job, progress: Progress, inline: bool, plan: BlockPlan | None = None
-) -> Iterator[Any]:
+def _engine(job: Job, progress: Progress, inline: bool) -> Iterator[Any]:
     if inline:
         try:
             yield InlineEngine(progress)
@@ -215,9 +213,9 @@ def _engine(
         return
     spec = job.cluster
     if spec.processes is None:
-        # measured: dense kernels release the GIL (threads are faster and leaner), but
-        # scipy.sparse products hold it, so CSR input goes to worker processes
-        spec = replace(spec, processes=bool(plan is not None and plan.sparse))
+        # measured (README, "Running on a cluster"): the hot kernels release the GIL, and
+        # threads beat worker processes for dense and CSR input alike
+        spec = replace(spec, processes=False)
     with open_engine(spec, progress) as engine:
         try:
             yield engine
@@ -329,7 +327,7 @@ def compare_job(
     from rowfold import compare
 
     plan = plan_job(job)
-    with _engine(job, progress or Progress(), inline, plan) as engine:
+    with _engine(job, progress or Progress(), inline) as engine:
         inputs = _fingerprints(job, plan, engine)
 
         def run(method_job: Job) -> RunOutcome:
@@ -372,7 +370,7 @@ def update_job(job: Job, progress: Progress | None = None, inline: bool = False)
         raise NoNewRowsError(f"{out}: no rows added since the earlier result ({rows_done} rows)")
     job = replace(job, gates=replace(job.gates, orthogonality=None, residual=None))
     with ExitStack() as stack:
-        engine = stack.enter_context(_engine(job, progress or Progress(), inline, plan))
+        engine = stack.enter_context(_engine(job, progress or Progress(), inline))
         with clock.stage("factor"):
             folded = update.fold(plan, state, attrs, engine)
         return _commit_update(job, plan, folded, engine, clock, started)
