@@ -36,6 +36,7 @@ from rowfold.blocks import BlockPlan, BlockSource, load_for_products
 from rowfold.errors import BreakdownError
 from rowfold.kernels import block_gram, cholesky_upper, cross_product, metrics, solve_right_upper
 from rowfold.kernels import sparse as sparse_kernels
+from rowfold.kernels.fold import FOLD_ROWS
 from rowfold.methods._graph import sum_tree, task
 from rowfold.methods.base import Context, Engine, Factorization
 from rowfold.spec import MethodSpec
@@ -81,10 +82,26 @@ def gram_leaf(source: BlockSource, index: int, factors: tuple[np.ndarray, ...]) 
         first["cross"] = None if b is None else sparse_kernels.sparse_cross(sparse_block, b)
         return first
     block, rhs = load_for_products(source, index)
-    x = apply_factors(block, factors)
-    sums: dict[str, Any] = metrics.gram_sums(x) if not factors else {"gram": block_gram(x)}
-    sums["cross"] = None if rhs is None else cross_product(x, rhs)
-    return sums
+    if not factors:
+        sums: dict[str, Any] = metrics.gram_sums(block)
+        sums["cross"] = None if rhs is None else cross_product(block, rhs)
+        return sums
+    gram = np.zeros((block.shape[1], block.shape[1]), dtype=_solved_dtype(block, factors))
+    cross = None
+    for start in range(0, block.shape[0], FOLD_ROWS):  # each piece of X stays in cache
+        x = apply_factors(block[start : start + FOLD_ROWS], factors)
+        gram += block_gram(x)
+        if rhs is not None:
+            part = cross_product(x, rhs[start : start + FOLD_ROWS])
+            cross = part if cross is None else cross + part
+    if rhs is not None and cross is None:
+        cross = cross_product(block, rhs)  # a block of zero rows
+    return {"gram": gram, "cross": cross}
+
+
+def _solved_dtype(block: np.ndarray, factors: Sequence[np.ndarray]) -> np.dtype:
+    """The dtype of ``block @ inv(F1) ...``."""
+    return np.result_type(block, *factors)
 
 
 def add_gram_sums(*parts: dict[str, Any]) -> dict[str, Any]:
