@@ -17,7 +17,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from rowfold.kernels.gram import block_gram
+from rowfold.kernels.gram import gram_upper, hermitian_from_upper
 from rowfold.kernels.householder import as_columns
 from rowfold.kernels.nogil import tpqrt
 
@@ -60,14 +60,15 @@ def folded_r(
     dtype = block.dtype if extra is None else np.result_type(block, extra)
     width = n + (0 if extra is None else extra.shape[1])
     triangle = np.zeros((width, width), dtype=dtype, order="F")
-    gram = np.zeros((n, n), dtype=dtype) if with_gram else None
+    upper = np.zeros((n, n), dtype=dtype) if with_gram else None
     panel = max(1, min(FOLD_PANEL, width))
     for start in range(0, rows, FOLD_ROWS):
         piece = _fortran_piece(block, extra, start, dtype)
-        if gram is not None:
-            gram += block_gram(piece[:, :n])
+        if upper is not None:
+            upper += gram_upper(piece[:, :n])
         tpqrt(triangle, piece, panel)
     C = None if extra is None else np.array(triangle[:n, n:])
+    gram = None if upper is None else hermitian_from_upper(upper)
     return np.triu(triangle[:n, :n]), C, gram
 
 

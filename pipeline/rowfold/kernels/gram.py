@@ -16,18 +16,26 @@ def block_gram(block: np.ndarray) -> np.ndarray:
     A C-ordered block is used through its transpose (a Fortran view), so neither layout
     is copied.
     """
+    return hermitian_from_upper(gram_upper(block))
+
+
+def gram_upper(block: np.ndarray) -> np.ndarray:
+    """The upper triangle of ``block^H block`` (the strictly lower part is zero); add these
+    up over pieces and call :func:`hermitian_from_upper` once."""
     n = block.shape[1]
     if block.shape[0] == 0:
         return np.zeros((n, n), dtype=block.dtype)
-    complex_ = np.iscomplexobj(block)
     if block.flags.c_contiguous and not block.flags.f_contiguous:
         # block.T is Fortran-ordered; (block.T)(block.T)^H = conj(block^H block)
         upper = rank_k_upper(block.T, transpose=False)
-        upper = np.conj(upper) if complex_ else upper
-    else:
-        upper = rank_k_upper(np.asfortranarray(block), transpose=True)
+        return np.conj(upper) if np.iscomplexobj(block) else upper
+    return rank_k_upper(np.asfortranarray(block), transpose=True)
+
+
+def hermitian_from_upper(upper: np.ndarray) -> np.ndarray:
+    """The Hermitian matrix whose upper triangle is ``upper`` (real diagonal)."""
     gram = np.triu(upper) + np.triu(upper, 1).conj().T
-    if complex_:
+    if np.iscomplexobj(gram):
         np.fill_diagonal(gram, np.real(np.diagonal(gram)))
     return gram
 

@@ -12,7 +12,7 @@ import numpy as np
 import scipy.sparse as sp
 from scipy.linalg import solve_triangular
 
-from rowfold.kernels.gram import block_gram, solve_right_upper
+from rowfold.kernels.gram import gram_upper, hermitian_from_upper, solve_right_upper
 
 
 def csr_block(
@@ -131,16 +131,16 @@ def banded_gram(
     """
     n = block.shape[1]
     dtype = np.result_type(block.dtype, inverse.dtype)
-    gram = np.zeros((n, n), dtype=dtype)
+    upper = np.zeros((n, n), dtype=dtype)
     cross = None if rhs is None else np.zeros((n, rhs.shape[1]), dtype=dtype)
     for start, rows in _band_rows(block, n):
         x = np.asarray(block[rows] @ inverse[:, start:], dtype=dtype)
         for factor in rest:
             x = solve_right_upper(x, factor[start:, start:])
-        gram[start:, start:] += block_gram(x)
+        upper[start:, start:] += gram_upper(x)
         if cross is not None and rhs is not None:
             cross[start:] += x.conj().T @ rhs[rows]
-    return gram, cross
+    return hermitian_from_upper(upper), cross
 
 
 def _band_rows(block: sp.csr_matrix, n: int) -> list[tuple[int, np.ndarray]]:

@@ -34,9 +34,10 @@ from scipy.linalg import solve_triangular
 
 from rowfold.blocks import BlockPlan, BlockSource, load_for_products
 from rowfold.errors import BreakdownError
-from rowfold.kernels import block_gram, cholesky_upper, cross_product, metrics, solve_right_upper
+from rowfold.kernels import cholesky_upper, cross_product, metrics, solve_right_upper
 from rowfold.kernels import sparse as sparse_kernels
 from rowfold.kernels.fold import FOLD_ROWS
+from rowfold.kernels.gram import gram_upper, hermitian_from_upper
 from rowfold.methods._graph import sum_tree, task
 from rowfold.methods.base import Context, Engine, Factorization
 from rowfold.spec import MethodSpec
@@ -86,17 +87,17 @@ def gram_leaf(source: BlockSource, index: int, factors: tuple[np.ndarray, ...]) 
         sums: dict[str, Any] = metrics.gram_sums(block)
         sums["cross"] = None if rhs is None else cross_product(block, rhs)
         return sums
-    gram = np.zeros((block.shape[1], block.shape[1]), dtype=_solved_dtype(block, factors))
+    upper = np.zeros((block.shape[1], block.shape[1]), dtype=_solved_dtype(block, factors))
     cross = None
     for start in range(0, block.shape[0], FOLD_ROWS):  # each piece of X stays in cache
         x = apply_factors(block[start : start + FOLD_ROWS], factors)
-        gram += block_gram(x)
+        upper += gram_upper(x)
         if rhs is not None:
             part = cross_product(x, rhs[start : start + FOLD_ROWS])
             cross = part if cross is None else cross + part
     if rhs is not None and cross is None:
         cross = cross_product(block, rhs)  # a block of zero rows
-    return {"gram": gram, "cross": cross}
+    return {"gram": hermitian_from_upper(upper), "cross": cross}
 
 
 def _solved_dtype(block: np.ndarray, factors: Sequence[np.ndarray]) -> np.dtype:

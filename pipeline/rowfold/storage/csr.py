@@ -34,7 +34,7 @@ from rowfold.storage.inputs import (
     _open_zarr,
     describe_array,
     forget_input,
-    open_input,
+    open_dataset,
 )
 
 CSR_ARRAYS = ("data", "indices", "indptr")
@@ -255,9 +255,9 @@ def read_csr_rows(
     try:
         if ref.is_hdf5:
             with _HDF5_LOCK:
-                handle = open_input(ref.path)
-                group = handle[ref.name] if ref.name not in ("", ".", "/") else handle
-                return _read_from(group, start, stop)
+                prefix = "" if ref.name in ("", ".", "/") else ref.name.rstrip("/") + "/"
+                arrays = {part: open_dataset(ref.path, prefix + part) for part in CSR_ARRAYS}
+                return _read_from(arrays, start, stop)
         root = _open_zarr(ref.path)
         group = root[ref.name] if ref.name not in ("", ".", "/") else root
         return _read_from(group, start, stop)

@@ -30,7 +30,7 @@ _HDF5_LOCK = threading.Lock()
 # reads of a 2 GB file took 0.45 s on one handle and 1.1 to 2.7 s opening the file each time).
 # An entry is reopened when the file's inode, size or modification time changes, ignored in a
 # forked child, and closed by close_open_inputs(), which the runner calls when a job ends.
-_OPEN_INPUTS: dict[str, tuple[tuple[int, ...], Any]] = {}
+_OPEN_INPUTS: dict[str, tuple[tuple[int, ...], Any, dict[str, Any]]] = {}
 
 
 @dataclass(frozen=True, slots=True)
@@ -181,7 +181,7 @@ def read_rows(ref: ArrayRef, start: int, stop: int, purpose: str = "data") -> np
     try:
         if ref.is_hdf5:
             with _HDF5_LOCK:
-                return np.asarray(open_input(ref.path)[ref.name][start:stop])
+                return np.asarray(open_dataset(ref.path, ref.name)[start:stop])
         root = _open_zarr(ref.path)
         obj = root[ref.name] if ref.name not in ("", ".", "/") else root
         return np.asarray(obj[start:stop])
@@ -192,21 +192,26 @@ def read_rows(ref: ArrayRef, start: int, stop: int, purpose: str = "data") -> np
         ) from None
 
 
-def open_input(path: str) -> Any:
-    """A read-only handle on an HDF5 input, reused while the file is unchanged.
+def open_dataset(path: str, name: str) -> Any:
+    """A dataset of a kept HDF5 input, looked up once per handle (the caller holds the lock)."""
+    _, handle, datasets = _kept(path)
+    if name not in datasets:
+        datasets[name] = handle[name]
+    return datasets[name]
 
-    The caller must hold ``_HDF5_LOCK`` while it uses the handle.
-    """
+
+def _kept(path: str) -> tuple[tuple[int, ...], Any, dict[str, Any]]:
+    """The kept (signature, handle, datasets) entry of ``path``, opened or reopened."""
     info = os.stat(path)
     signature = (os.getpid(), info.st_ino, info.st_size, info.st_mtime_ns)
     cached = _OPEN_INPUTS.get(path)
     if cached is not None and cached[0] == signature:
-        return cached[1]
+        return cached
     if cached is not None and cached[0][0] == os.getpid():
         cached[1].close()
-    handle = h5py.File(path, "r")
-    _OPEN_INPUTS[path] = (signature, handle)
-    return handle
+    entry: tuple[tuple[int, ...], Any, dict[str, Any]] = (signature, h5py.File(path, "r"), {})
+    _OPEN_INPUTS[path] = entry
+    return entry
 
 
 def forget_input(path: str | Path) -> None:
