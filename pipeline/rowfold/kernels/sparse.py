@@ -133,24 +133,32 @@ def banded_gram(
     dtype = np.result_type(block.dtype, inverse.dtype)
     upper = np.zeros((n, n), dtype=dtype)
     cross = None if rhs is None else np.zeros((n, rhs.shape[1]), dtype=dtype)
-    for start, rows in _band_rows(block, n):
-        x = np.asarray(block[rows] @ inverse[:, start:], dtype=dtype)
+    order, bands = _band_order(block, n)
+    grouped = block[order]  # one row gather; each band is then a contiguous row range
+    rhs_grouped = None if rhs is None else rhs[order]
+    for start, first, last in bands:
+        x = np.asarray(grouped[first:last] @ inverse[:, start:], dtype=dtype)
         for factor in rest:
             x = solve_right_upper(x, factor[start:, start:])
         upper[start:, start:] += gram_upper(x)
-        if cross is not None and rhs is not None:
-            cross[start:] += x.conj().T @ rhs[rows]
+        if cross is not None and rhs_grouped is not None:
+            cross[start:] += x.conj().T @ rhs_grouped[first:last]
     return hermitian_from_upper(upper), cross
 
 
-def _band_rows(block: sp.csr_matrix, n: int) -> list[tuple[int, np.ndarray]]:
-    """(first column of the band, rows whose first stored column lies in it), per band."""
+def _band_order(block: sp.csr_matrix, n: int) -> tuple[np.ndarray, list[tuple[int, int, int]]]:
+    """Rows with stored values, ordered by the band of their first column, and per band
+    (first column of the band, first and last position in that order)."""
     counts = np.diff(block.indptr)
     stored = np.flatnonzero(counts)
     leading = block.indices[block.indptr[stored]]
     edges = np.linspace(0, n, min(GRAM_BANDS, max(n, 1)) + 1).astype(np.int64)
     band = np.searchsorted(edges, leading, side="right") - 1
     order = np.argsort(band, kind="stable")
-    splits = np.searchsorted(band[order], np.arange(len(edges) - 1))
-    groups = np.split(stored[order], splits[1:])
-    return [(int(edges[i]), rows) for i, rows in enumerate(groups) if rows.size]
+    bounds = np.searchsorted(band[order], np.arange(len(edges)))
+    bands = [
+        (int(edges[i]), int(bounds[i]), int(bounds[i + 1]))
+        for i in range(len(edges) - 1)
+        if bounds[i + 1] > bounds[i]
+    ]
+    return stored[order], bands
