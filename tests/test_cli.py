@@ -229,7 +229,9 @@ def test_rhs_of_wrong_length_exits_2(capsys: pytest.CaptureFixture[str], tmp_pat
 
 
 @pytest.mark.parametrize(
-    "engine", [("--inline",), ("--set", "cluster.processes=false")], ids=["inline", "cluster"]
+    "engine",
+    [("--inline",), ("--set", "cluster.processes=false"), ("--set", "cluster.scheduler=threads")],
+    ids=["inline", "cluster", "threads"],
 )
 def test_nan_names_row_block_and_row(
     capsys: pytest.CaptureFixture[str], tmp_path: Path, engine: tuple[str, ...]
@@ -292,7 +294,9 @@ def test_existing_output_without_overwrite_exits_2(
 
 
 @pytest.mark.parametrize(
-    "engine", [("--inline",), ("--set", "cluster.processes=false")], ids=["inline", "cluster"]
+    "engine",
+    [("--inline",), ("--set", "cluster.processes=false"), ("--set", "cluster.scheduler=threads")],
+    ids=["inline", "cluster", "threads"],
 )
 def test_good_job_exits_0_and_matches_lapack(
     capsys: pytest.CaptureFixture[str], tmp_path: Path, engine: tuple[str, ...]

@@ -7,6 +7,7 @@ whole result is ready; the result store and its reports are committed together.
 from __future__ import annotations
 
 import json
+import os
 import time
 from collections.abc import Iterator
 from contextlib import ExitStack, contextmanager
@@ -18,7 +19,14 @@ import numpy as np
 
 from rowfold import __version__, quality, storage
 from rowfold.blocks import BlockPlan, expand_columns, plan_blocks
-from rowfold.cluster import InlineEngine, Progress, open_engine
+from rowfold.cluster import (
+    InlineEngine,
+    Progress,
+    ThreadedEngine,
+    limit_blas_threads,
+    local_layout,
+    open_engine,
+)
 from rowfold.errors import (
     EXIT_GATE_FAILED,
     EXIT_INVALID,
@@ -212,6 +220,16 @@ def _engine(job: Job, progress: Progress, inline: bool) -> Iterator[Any]:
             storage.close_open_inputs()
         return
     spec = job.cluster
+    if spec.scheduler == "threads":
+        workers, threads = local_layout(spec, os.cpu_count() or 1)
+        limit_blas_threads(1)
+        threaded = ThreadedEngine(progress, workers * threads)
+        try:
+            yield threaded
+        finally:
+            threaded.close()
+            storage.close_open_inputs()
+        return
     if spec.processes is None:
         # measured (README, "Running on a cluster"): the hot kernels release the GIL, and
         # threads beat worker processes for dense and CSR input alike

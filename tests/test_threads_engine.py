@@ -1,0 +1,77 @@
+"""``cluster.scheduler: threads``: Dask's threaded scheduler inside the rowfold process.
+
+References: numpy/LAPACK (``numpy.linalg.qr``) for R and Q; the TSQR bound O(u) for Q's
+orthogonality (Demmel, Grigori, Hoemmen and Langou, SIAM J. Sci. Comput. 34, 2012) with a
+common-practice constant of 100 n u.
+"""
+
+from __future__ import annotations
+
+import io
+import re
+import subprocess
+import sys
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+from rowfold import runner
+from rowfold.cluster import Progress
+from rowfold.errors import JobError
+
+from support import U, assert_thin_qr, lapack_r, prescribed, read_store, write_job
+
+
+@pytest.mark.parametrize("method", ["tsqr", "cholqr2"])
+def test_threads_scheduler_forms_q_and_r_like_lapack(job_folder: Path, method: str) -> None:
+    A = prescribed(900, 6, 1e4, seed=71)
+    job_path = write_job(
+        job_folder,
+        A,
+        method={"name": method},
+        input={"rows_per_block": 100},
+        output={"q": True},
+        cluster={"scheduler": "threads"},
+    )
+    log = io.StringIO()
+    runner.run_job(runner.load_job(job_path), Progress(stream=log))
+    store = read_store(job_folder / "out.h5")
+    assert_thin_qr(A, store["Q"], store["R"], 100 * 6 * U)
+    assert np.linalg.norm(store["R"] - lapack_r(A)) <= 100 * 6 * U * 1e4 * np.linalg.norm(A)
+    finished = re.findall(r"^(.+): (\d+)/(\d+) tasks", log.getvalue(), flags=re.M)
+    assert any(done == total for _, done, total in finished), log.getvalue()
+    stages = {label for label, done, total in finished if done == total}
+    assert {"fingerprint inputs", "verify and write rows"} < stages, stages  # and a factor stage
+
+
+@pytest.mark.parametrize(
+    "extra", [{"address": "tcp://127.0.0.1:1"}, {"processes": True}], ids=["address", "processes"]
+)
+def test_threads_scheduler_refuses_a_cluster_it_cannot_use(
+    job_folder: Path, extra: dict[str, object]
+) -> None:
+    job_path = write_job(
+        job_folder, prescribed(50, 3, 10.0), cluster={"scheduler": "threads", **extra}
+    )
+    with pytest.raises(JobError, match=r"cluster\.scheduler"):
+        runner.load_job(job_path)
+
+
+def test_unknown_scheduler_is_a_job_error(job_folder: Path) -> None:
+    job_path = write_job(job_folder, prescribed(50, 3, 10.0), cluster={"scheduler": "mpi"})
+    with pytest.raises(JobError, match="distributed, threads"):
+        runner.load_job(job_path)
+
+
+def test_threads_scheduler_does_not_start_distributed(job_folder: Path) -> None:
+    """The point of the option is to skip distributed's import and start-up entirely."""
+    job_path = write_job(job_folder, prescribed(400, 4, 10.0), cluster={"scheduler": "threads"})
+    code = (
+        "import sys\n"
+        "from rowfold.cli import main\n"
+        f"status = main(['--quiet', 'run', {str(job_path)!r}])\n"
+        "print(status, 'distributed' in sys.modules)\n"
+    )
+    done = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=False)
+    assert done.stdout.split()[-2:] == ["0", "False"], done.stderr
