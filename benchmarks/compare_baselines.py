@@ -56,9 +56,10 @@ class Task:
     Attributes
     ----------
     key : str
-        Short name used by ``--only`` (``tsqr``, ``cholqr2``, ``dask``, ``numpy``, ``read``).
+        Short name used by ``--only`` (``tsqr``, ``cholqr2``, ``tsqr-threads``,
+        ``cholqr2-threads``, ``dask``, ``numpy``, ``read``).
     letter : str
-        The letter used in the table and accepted by ``--only`` (``a`` .. ``e``).
+        The letter used in the table and accepted by ``--only`` (``a`` .. ``g``).
     label : str
         Human-readable description printed in the table.
     """
@@ -71,11 +72,19 @@ class Task:
 TASKS: tuple[Task, ...] = (
     Task("tsqr", "a", "rowfold run, tsqr, R only"),
     Task("cholqr2", "b", "rowfold run, cholqr2, R only"),
+    Task("tsqr-threads", "f", "rowfold run, tsqr, R only, threads"),
+    Task("cholqr2-threads", "g", "rowfold run, cholqr2, R only, threads"),
     Task("dask", "c", "dask.array.linalg.tsqr, R only"),
     Task("numpy", "d", "numpy.linalg.qr(mode='r'), in memory"),
     Task("read", "e", "plain streaming read of A"),
 )
-ROWFOLD_METHODS = {"tsqr": "tsqr", "cholqr2": "cholqr2"}
+# rowfold rows: task key -> (method, cluster.scheduler or None for the default LocalCluster)
+ROWFOLD_METHODS = {
+    "tsqr": ("tsqr", None),
+    "cholqr2": ("cholqr2", None),
+    "tsqr-threads": ("tsqr", "threads"),
+    "cholqr2-threads": ("cholqr2", "threads"),
+}
 
 
 @dataclass
@@ -410,17 +419,19 @@ def _tail(path: Path, lines: int = 15) -> str:
 # --------------------------------------------------------------------------------------------
 
 
-def write_job(method: str, data: Path, rows: int, cols: int, rows_per_block: str) -> Path:
+def write_job(key: str, data: Path, rows: int, cols: int, rows_per_block: str) -> Path:
     """Write an R-only rowfold job file into the results folder and return its path.
 
     The job has no ``rhs``, ``output.q: false``, ``output.overwrite: true`` and no cluster
-    keys (the embedded local Dask cluster). Paths in the job are relative to the job file.
+    keys (the embedded local Dask cluster), except ``cluster.scheduler: threads`` for the
+    ``-threads`` rows. Paths in the job are relative to the job file.
     """
     import yaml
 
-    stem = f"{method}_{rows}x{cols}"
-    job = {
-        "name": f"benchmark-{method}-{rows}x{cols}",
+    method, scheduler = ROWFOLD_METHODS[key]
+    stem = f"{key}_{rows}x{cols}"
+    job: dict[str, Any] = {
+        "name": f"benchmark-{key}-{rows}x{cols}",
         "input": {
             "path": os.path.relpath(data, RESULTS_DIR),
             "matrix": "A",
@@ -429,6 +440,8 @@ def write_job(method: str, data: Path, rows: int, cols: int, rows_per_block: str
         "method": {"name": method},
         "output": {"path": f"{stem}.h5", "q": False, "overwrite": True},
     }
+    if scheduler is not None:
+        job["cluster"] = {"scheduler": scheduler}
     path = RESULTS_DIR / f"{stem}.job.yaml"
     path.write_text(yaml.safe_dump(job, sort_keys=False))
     return path
@@ -439,7 +452,7 @@ def task_command(
 ) -> list[str]:
     """Return the command line that measures one task."""
     if task.key in ROWFOLD_METHODS:
-        job = write_job(ROWFOLD_METHODS[task.key], data, rows, cols, opts.rows_per_block)
+        job = write_job(task.key, data, rows, cols, opts.rows_per_block)
         return [sys.executable, "-m", "rowfold", "run", str(job)]
     stem = RESULTS_DIR / f"{task.key}_{rows}x{cols}"
     return [
@@ -642,7 +655,7 @@ def environment() -> dict[str, Any]:
 
 
 def select_tasks(only: str | None) -> list[Task]:
-    """Resolve ``--only`` (letters a..e or keys, comma separated) to tasks in table order."""
+    """Resolve ``--only`` (letters a..g or keys, comma separated) to tasks in table order."""
     if not only:
         return list(TASKS)
     wanted = {w.strip().lower() for w in only.split(",") if w.strip()}
