@@ -137,6 +137,8 @@ def write_job(method: str, data: Path, rows: int, cols: int, opts: argparse.Name
         "method": {"name": method},
         "output": {"path": f"{stem}.h5", "q": False, "overwrite": True},
     }
+    if opts.scheduler != "distributed":
+        job["cluster"] = {"scheduler": opts.scheduler}
     path = RESULTS_DIR / f"{stem}.job.yaml"
     path.write_text(yaml.safe_dump(job, sort_keys=False), encoding="utf-8")
     return path
@@ -235,6 +237,12 @@ def parse_args(argv: Sequence[str] | None = None) -> argparse.Namespace:
     p.add_argument("--only", help="comma-separated methods (tsqr, cholqr2)")
     p.add_argument("--r-only", action="store_true", help="R only: no rhs and no weights")
     p.add_argument("--rows-per-block", default="auto", help="input.rows_per_block (auto)")
+    p.add_argument(
+        "--scheduler",
+        choices=("distributed", "threads"),
+        default="distributed",
+        help="cluster.scheduler of the jobs (default distributed: the embedded LocalCluster)",
+    )
     p.add_argument("--timeout", type=float, default=3600.0, help="seconds per run")
     p.add_argument("--child-generate", help=argparse.SUPPRESS)
     opts = p.parse_args(argv)
@@ -261,13 +269,16 @@ def main(argv: Sequence[str] | None = None) -> int:
         "cols": opts.cols,
         "r_only": opts.r_only,
         "rows_per_block": opts.rows_per_block,
+        "scheduler": opts.scheduler,
         "table": [asdict(row) for row in table],
         "r_agreement": agreement,
         "goals": {"peak_tree_mb_below": PEAK_GOAL_MB, "speedup_at_least": SPEEDUP_GOAL},
         "environment": environment(),
         "printed": text,
     }
-    suffix = "_r_only" if opts.r_only else ""
+    suffix = ("_r_only" if opts.r_only else "") + (
+        "" if opts.scheduler == "distributed" else f"_{opts.scheduler}"
+    )
     out = RESULTS_DIR / f"sparse_network_{opts.rows}x{opts.cols}{suffix}.json"
     out.write_text(json.dumps(record, indent=2, default=str), encoding="utf-8")
     _log(f"wrote {out.relative_to(HERE.parent)}")
