@@ -14,6 +14,7 @@ prints seconds and task counts. Nothing is computed.
 from __future__ import annotations
 
 import argparse
+import contextlib
 import time
 from collections.abc import Callable
 from typing import Any
@@ -33,13 +34,13 @@ class _NoEngine:
 
     def compute(self, tasks: list[Any], label: str) -> list[Any]:
         self.tasks = list(tasks)
-        raise _Built
+        raise _BuiltError
 
     def persist(self, tasks: list[Any]) -> list[Any]:
         return list(tasks)
 
 
-class _Built(Exception):
+class _BuiltError(Exception):
     """Raised once the method has handed over its first graph."""
 
 
@@ -47,10 +48,8 @@ def first_graph(build: Callable[[_NoEngine], Any]) -> tuple[float, list[Any]]:
     """Seconds to build the first graph a method computes, and its tasks."""
     engine = _NoEngine()
     started = time.perf_counter()
-    try:
+    with contextlib.suppress(_BuiltError):
         build(engine)
-    except _Built:
-        pass
     return time.perf_counter() - started, engine.tasks
 
 
