@@ -231,7 +231,8 @@ def read_csr_rows(
     Parameters
     ----------
     ref : ArrayRef
-        The group; opened here and closed before returning.
+        The group. An HDF5 file stays open for the job's later reads (see
+        :func:`rowfold.storage.inputs.open_dataset`); a Zarr store is opened for each read.
     start, stop : int
         Row range.
     purpose : str

@@ -166,7 +166,8 @@ def read_rows(ref: ArrayRef, start: int, stop: int, purpose: str = "data") -> np
     Parameters
     ----------
     ref : ArrayRef
-        The array; opened here and closed before returning.
+        The array. An HDF5 file stays open for the job's later reads (see
+        :func:`open_dataset`); a Zarr store is opened for each read.
     start, stop : int
         Row range.
     purpose : str
