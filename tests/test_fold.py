@@ -14,7 +14,7 @@ import threading
 import numpy as np
 import pytest
 
-from rowfold.kernels import block_gram, positive_diagonal
+from rowfold.kernels import block_gram, nogil, positive_diagonal
 from rowfold.kernels import fold as fold_module
 from rowfold.kernels.fold import folded_r
 from rowfold.kernels.nogil import rank_k_upper, tpqrt
@@ -105,3 +105,22 @@ def test_two_threads_fold_the_same_r_as_one() -> None:
         thread.join()
     for index, expected in enumerate(alone):
         assert np.array_equal(together[index], expected)
+
+
+@pytest.mark.parametrize("dtype", [np.float64, np.complex128])
+def test_fallback_without_exported_pointers_gives_the_same_results(
+    dtype: type, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    """A scipy whose Cython LAPACK lacks the pointers falls back to the f2py wrappers."""
+    a = prescribed(3000, 7, 1e5, seed=9, dtype=dtype)
+    fast_r, _, fast_gram = folded_r(a)
+    monkeypatch.setattr(nogil, "_routine", lambda *_: None)
+    slow_r, _, slow_gram = folded_r(a)
+    assert slow_gram is not None and fast_gram is not None
+    assert np.linalg.norm(slow_r - fast_r) <= 100 * 7 * U * 1e5 * np.linalg.norm(fast_r)
+    assert np.linalg.norm(slow_gram - fast_gram) <= 100 * 3000 * U * np.linalg.norm(fast_gram)
+    for transpose in (False, True):
+        m = np.asfortranarray(a if transpose else a.T)
+        expected = m.conj().T @ m if transpose else m @ m.conj().T
+        got = rank_k_upper(m, transpose)
+        assert np.linalg.norm(got - np.triu(expected)) <= 100 * 3000 * U * np.linalg.norm(a) ** 2

@@ -66,10 +66,10 @@ def tpqrt(triangle: np.ndarray, piece: np.ndarray, panel: int) -> np.ndarray:
     overwritten with the reflectors. Returns ``triangle``.
     """
     rows, n = piece.shape
+    if rows == 0:
+        return triangle
     call = _routine("lapack", _PREFIX[triangle.dtype] + "tpqrt", 12)
-    if call is None or rows == 0:  # pragma: no cover - fallback path
-        if rows == 0:
-            return triangle
+    if call is None:  # a scipy without the exported pointer: the f2py wrapper, GIL held
         (f2py,) = lapack.get_lapack_funcs(("tpqrt",), (triangle,))
         folded, _, _, _ = f2py(0, panel, triangle, piece, overwrite_a=1, overwrite_b=1)
         triangle[...] = folded
@@ -95,7 +95,7 @@ def rank_k_upper(matrix: np.ndarray, transpose: bool) -> np.ndarray:
     complex_ = np.iscomplexobj(matrix)
     n, k = matrix.shape[::-1] if transpose else matrix.shape
     call = _routine("blas", _PREFIX[matrix.dtype] + ("herk" if complex_ else "syrk"), 10)
-    if call is None:  # pragma: no cover - fallback path
+    if call is None:  # a scipy without the exported pointer: the f2py wrapper, GIL held
         (f2py,) = blas.get_blas_funcs(("herk" if complex_ else "syrk",), (matrix,))
         flag = (2 if complex_ else 1) if transpose else 0
         return np.triu(f2py(1.0, matrix, trans=flag, lower=0))
