@@ -42,7 +42,7 @@ from rowfold.provenance import provenance
 from rowfold.refine import refine
 from rowfold.report import CAUTION, render_html, to_json
 from rowfold.solve import Solution, Statistics, solve, statistics
-from rowfold.spec import METHOD_NAMES, Job, load_job
+from rowfold.spec import METHOD_NAMES, ClusterSpec, Job, load_job
 from rowfold.storage.checkpoints import close_checkpoints, open_checkpoints
 
 __all__ = [
@@ -221,14 +221,8 @@ def _engine(job: Job, progress: Progress, inline: bool) -> Iterator[Any]:
         return
     spec = job.cluster
     if spec.scheduler == "threads":
-        workers, threads = local_layout(spec, os.cpu_count() or 1)
-        limit_blas_threads(1)
-        threaded = ThreadedEngine(progress, workers * threads)
-        try:
+        with _threaded_engine(spec, progress) as threaded:
             yield threaded
-        finally:
-            threaded.close()
-            storage.close_open_inputs()
         return
     if spec.processes is None:
         # measured (README, "Running on a cluster"): the hot kernels release the GIL, and
@@ -240,6 +234,19 @@ def _engine(job: Job, progress: Progress, inline: bool) -> Iterator[Any]:
         finally:  # let the night's ingestion append to the inputs once the job is done
             engine.run_on_workers(storage.close_open_inputs)
             storage.close_open_inputs()
+
+
+@contextmanager
+def _threaded_engine(spec: ClusterSpec, progress: Progress) -> Iterator[ThreadedEngine]:
+    """Dask's threaded scheduler in this process, one BLAS thread per worker thread."""
+    workers, threads = local_layout(spec, os.cpu_count() or 1)
+    limit_blas_threads(1)
+    engine = ThreadedEngine(progress, workers * threads)
+    try:
+        yield engine
+    finally:
+        engine.close()
+        storage.close_open_inputs()
 
 
 def _run_on(
