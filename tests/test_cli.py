@@ -228,11 +228,16 @@ def test_rhs_of_wrong_length_exits_2(capsys: pytest.CaptureFixture[str], tmp_pat
     assert "model/b" in line and str(ROWS - 1) in line and str(ROWS) in line
 
 
-@pytest.mark.parametrize(
-    "engine",
-    [("--inline",), ("--set", "cluster.processes=false"), ("--set", "cluster.scheduler=threads")],
-    ids=["inline", "cluster", "threads"],
-)
+# The three ways a job can run: in-line, on the embedded LocalCluster, on the threaded scheduler.
+ENGINES = [
+    ("--inline",),
+    ("--set", "cluster.processes=false"),
+    ("--set", "cluster.scheduler=threads"),
+]
+ENGINE_IDS = ["inline", "cluster", "threads"]
+
+
+@pytest.mark.parametrize("engine", ENGINES, ids=ENGINE_IDS)
 def test_nan_names_row_block_and_row(
     capsys: pytest.CaptureFixture[str], tmp_path: Path, engine: tuple[str, ...]
 ) -> None:
@@ -293,11 +298,7 @@ def test_existing_output_without_overwrite_exits_2(
 # ---------------------------------------------------------------- exit 0, 3, 4
 
 
-@pytest.mark.parametrize(
-    "engine",
-    [("--inline",), ("--set", "cluster.processes=false"), ("--set", "cluster.scheduler=threads")],
-    ids=["inline", "cluster", "threads"],
-)
+@pytest.mark.parametrize("engine", ENGINES, ids=ENGINE_IDS)
 def test_good_job_exits_0_and_matches_lapack(
     capsys: pytest.CaptureFixture[str], tmp_path: Path, engine: tuple[str, ...]
 ) -> None:

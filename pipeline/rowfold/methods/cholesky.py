@@ -38,6 +38,7 @@ from rowfold.kernels import cholesky_upper, cross_product, metrics, solve_right_
 from rowfold.kernels import sparse as sparse_kernels
 from rowfold.kernels.fold import FOLD_ROWS
 from rowfold.kernels.gram import gram_upper, hermitian_from_upper
+from rowfold.kernels.householder import as_columns
 from rowfold.methods._graph import sum_tree, task
 from rowfold.methods.base import Context, Engine, Factorization
 from rowfold.spec import MethodSpec
@@ -87,22 +88,16 @@ def gram_leaf(source: BlockSource, index: int, factors: tuple[np.ndarray, ...]) 
         sums: dict[str, Any] = metrics.gram_sums(block)
         sums["cross"] = None if rhs is None else cross_product(block, rhs)
         return sums
-    upper = np.zeros((block.shape[1], block.shape[1]), dtype=_solved_dtype(block, factors))
-    cross = None
+    n, dtype = block.shape[1], np.result_type(block, *factors)
+    upper = np.zeros((n, n), dtype=dtype)
+    cross_dtype = dtype if rhs is None else np.result_type(dtype, rhs)
+    cross = None if rhs is None else np.zeros((n, as_columns(rhs).shape[1]), dtype=cross_dtype)
     for start in range(0, block.shape[0], FOLD_ROWS):  # each piece of X stays in cache
         x = apply_factors(block[start : start + FOLD_ROWS], factors)
         upper += gram_upper(x)
-        if rhs is not None:
-            part = cross_product(x, rhs[start : start + FOLD_ROWS])
-            cross = part if cross is None else cross + part
-    if rhs is not None and cross is None:
-        cross = cross_product(block, rhs)  # a block of zero rows
+        if cross is not None and rhs is not None:
+            cross += cross_product(x, rhs[start : start + FOLD_ROWS])
     return {"gram": hermitian_from_upper(upper), "cross": cross}
-
-
-def _solved_dtype(block: np.ndarray, factors: Sequence[np.ndarray]) -> np.dtype:
-    """The dtype of ``block @ inv(F1) ...``."""
-    return np.result_type(block, *factors)
 
 
 def add_gram_sums(*parts: dict[str, Any]) -> dict[str, Any]:
