@@ -256,6 +256,148 @@ CASES = [
         Raises((r"line 8", r"key 'solve\.refine'", r"true or false")),
         id="refine-as-number",
     ),
+    # ---------------------------------------------------------------- refused before any compute
+    pytest.param(
+        GOOD + "solve:\n  flag_above: .inf\n",
+        (),
+        Raises((r"job\.yaml line 8", r"key 'solve\.flag_above'", r"finite", r"inf")),
+        id="infinite-flag-above",
+    ),
+    pytest.param(
+        GOOD + "solve:\n  flag_above: 2.5\n",
+        (),
+        Gives("solve.flag_above", 2.5),
+        id="finite-flag-above-kept",
+    ),
+    pytest.param(
+        GOOD + "gates:\n  gram: .inf\n",
+        (),
+        Raises((r"line 8", r"key 'gates\.gram'", r"finite")),
+        id="infinite-gate",
+    ),
+    pytest.param(
+        GOOD + "solve:\n  rank_tolerance: 10\n",
+        (),
+        Raises((r"job\.yaml line 8", r"key 'solve\.rank_tolerance'", r"between 0 and 1", r"10")),
+        id="rank-tolerance-above-one",
+    ),
+    pytest.param(
+        GOOD + "solve:\n  rank_tolerance: 1\n",
+        (),
+        Raises((r"line 8", r"key 'solve\.rank_tolerance'", r"between 0 and 1")),
+        id="rank-tolerance-one",
+    ),
+    pytest.param(
+        GOOD + "solve:\n  rank_tolerance: 1.0e-10\n",
+        (),
+        Gives("solve.rank_tolerance", 1e-10),
+        id="rank-tolerance-kept",
+    ),
+    pytest.param(
+        GOOD + "cluster:\n  address: not a url\n",
+        (),
+        Raises((r"job\.yaml line 8", r"key 'cluster\.address'", r"tcp://", r"'not a url'")),
+        id="address-not-a-url",
+    ),
+    pytest.param(
+        GOOD + "cluster:\n  address: http://sched:8786\n",
+        (),
+        Raises((r"line 8", r"key 'cluster\.address'", r"tcp://")),
+        id="address-with-web-scheme",
+    ),
+    pytest.param(
+        GOOD + "cluster:\n  address: tcp://sched-1.example:8786\n",
+        (),
+        Gives("cluster.address", "tcp://sched-1.example:8786"),
+        id="address-kept",
+    ),
+    pytest.param(
+        GOOD + "cluster:\n  address: tls://[::1]:8786\n",
+        (),
+        Gives("cluster.address", "tls://[::1]:8786"),
+        id="address-ipv6-kept",
+    ),
+    pytest.param(
+        GOOD + "cluster:\n  workers: 100000\n",
+        (),
+        Raises((r"job\.yaml line 8", r"key 'cluster\.workers'", r"cores", r"100000")),
+        id="workers-beyond-the-machine",
+    ),
+    pytest.param(
+        GOOD + "cluster:\n  threads_per_worker: 100000\n",
+        (),
+        Raises((r"line 8", r"key 'cluster\.threads_per_worker'", r"cores")),
+        id="threads-beyond-the-machine",
+    ),
+    pytest.param(
+        GOOD + "cluster:\n  workers: 100000\n  address: tcp://sched:8786\n",
+        (),
+        Gives("cluster.workers", 100000),
+        id="workers-ignored-by-remote-cluster-not-checked",
+    ),
+    # ---------------------------------------------------------------- missing chunks
+    pytest.param(GOOD, (), Gives("input.missing_chunks", "error"), id="default-missing-chunks"),
+    pytest.param(
+        GOOD.replace(
+            "  matrix: network/A\n", "  matrix: network/A\n  missing_chunks: fill_value\n"
+        ),
+        (),
+        Gives("input.missing_chunks", "fill_value"),
+        id="missing-chunks-fill-value",
+    ),
+    pytest.param(
+        GOOD.replace("  matrix: network/A\n", "  matrix: network/A\n  missing_chunks: zeros\n"),
+        (),
+        Raises((r"line 5", r"key 'input\.missing_chunks'", r"error, fill_value")),
+        id="missing-chunks-unknown",
+    ),
+    # ---------------------------------------------------------------- dashboard and timeouts
+    pytest.param(GOOD, (), Gives("cluster.dashboard", None), id="default-no-dashboard"),
+    pytest.param(
+        GOOD + "cluster:\n  dashboard: true\n",
+        (),
+        Gives("cluster.dashboard", "127.0.0.1:0"),
+        id="dashboard-true-is-loopback",
+    ),
+    pytest.param(
+        GOOD + "cluster:\n  dashboard: '127.0.0.1:8787'\n",
+        (),
+        Gives("cluster.dashboard", "127.0.0.1:8787"),
+        id="dashboard-address-kept",
+    ),
+    pytest.param(
+        GOOD + "cluster:\n  dashboard: 8787\n",
+        (),
+        Raises((r"line 8", r"key 'cluster\.dashboard'", r"host:port")),
+        id="dashboard-port-only",
+    ),
+    pytest.param(
+        GOOD + "cluster:\n  dashboard: true\n  address: tcp://sched:8786\n",
+        (),
+        Raises((r"line 8", r"key 'cluster\.dashboard'", r"embedded")),
+        id="dashboard-with-remote-cluster",
+    ),
+    pytest.param(GOOD, (), Gives("cluster.timeout", 10.0), id="default-timeout"),
+    pytest.param(GOOD, (), Gives("cluster.worker_timeout", 60.0), id="default-worker-timeout"),
+    pytest.param(GOOD, (), Gives("cluster.stall_timeout", 1800.0), id="default-stall-timeout"),
+    pytest.param(
+        GOOD + "cluster:\n  timeout: 2.5\n  worker_timeout: 5\n  stall_timeout: 30\n",
+        (),
+        Gives("cluster.worker_timeout", 5.0),
+        id="timeouts-kept",
+    ),
+    pytest.param(
+        GOOD + "cluster:\n  timeout: 0\n",
+        (),
+        Raises((r"line 8", r"key 'cluster\.timeout'", r"seconds")),
+        id="zero-timeout",
+    ),
+    pytest.param(
+        GOOD + "cluster:\n  stall_timeout: .inf\n",
+        (),
+        Raises((r"line 8", r"key 'cluster\.stall_timeout'", r"seconds")),
+        id="infinite-stall-timeout",
+    ),
     # ---------------------------------------------------------------- missing keys and sections
     pytest.param(
         GOOD.replace("  path: data/net.h5\n", ""),

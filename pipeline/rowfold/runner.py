@@ -42,7 +42,7 @@ from rowfold.provenance import provenance
 from rowfold.refine import refine
 from rowfold.report import CAUTION, render_html, to_json
 from rowfold.solve import Solution, Statistics, solve, statistics
-from rowfold.spec import METHOD_NAMES, ClusterSpec, Job, load_job
+from rowfold.spec import METHOD_NAMES, ClusterSpec, Job, check_fits_input, load_job
 from rowfold.storage.checkpoints import close_checkpoints, open_checkpoints
 
 __all__ = [
@@ -98,18 +98,20 @@ def plan_job(job: Job) -> BlockPlan:
 
     ``input.matrix`` may name a dense dataset or a CSR group; which one is found by looking.
     """
-    path = str(job.input.path)
-    matrix = storage.describe_matrix(storage.ArrayRef(path, job.input.matrix))
+    path, missing = str(job.input.path), job.input.missing_chunks
+    matrix = storage.describe_matrix(storage.ArrayRef(path, job.input.matrix, missing))
     rhs = None
     if job.input.rhs is not None:
-        rhs = storage.describe_array(storage.ArrayRef(path, job.input.rhs))
+        rhs = storage.describe_array(storage.ArrayRef(path, job.input.rhs, missing))
     weights = None
     if job.input.weights is not None:
-        weights = storage.describe_array(storage.ArrayRef(path, job.input.weights))
+        weights = storage.describe_array(storage.ArrayRef(path, job.input.weights, missing))
     native = job.method.precision == "native"
-    return plan_blocks(
+    plan = plan_blocks(
         matrix, rhs, job.input.rows_per_block, native, weights, job.input.fixed_columns
     )
+    check_fits_input(job, plan.rows, plan.cols)
+    return plan
 
 
 def check_job(job: Job) -> dict[str, Any]:

@@ -8,6 +8,9 @@ Relative paths resolve against the folder of the job file.
 from __future__ import annotations
 
 import json
+import math
+import os
+import re
 from collections.abc import Callable, Mapping
 from dataclasses import asdict, dataclass, field
 from pathlib import Path
@@ -23,6 +26,15 @@ TSQR_TREES = ("flat", "binary")
 INNER_QR = ("householder", "cholqr2", "mgs")
 SKETCHES = ("sparse_sign", "gaussian")
 PRECISIONS = ("float64", "native")
+MISSING_CHUNKS = ("error", "fill_value")
+# rcholqr: most sketch rows per column of A (each task holds sketch_rows x rows_per_block
+# numbers of the embedding, so this keeps that within 8 times the memory of one block).
+SKETCH_ROWS_PER_COLUMN = 8
+# Local workers, threads per worker, and their product may be at most this many times the
+# cores this process may use (more only queues work and can exhaust the machine).
+CORES_OVERCOMMIT = 4
+# cluster.dashboard: true serves Dask's dashboard here (a free port on the loopback only).
+LOOPBACK_DASHBOARD = "127.0.0.1:0"
 
 # Which method takes which option (every method takes ``precision``).
 METHOD_OPTIONS: dict[str, tuple[str, ...]] = {
@@ -55,6 +67,10 @@ class InputSpec:
     fixed_columns : tuple of int
         Columns of A whose unknowns are held fixed at zero (a datum): left out before
         factoring, reported as 0 with standard error 0.
+    missing_chunks : str
+        ``"error"`` (default): a chunk absent from a Zarr store, or never written in an
+        HDF5 file, stops the run naming it; ``"fill_value"``: read it as the array's fill
+        value (for writers that leave out chunks equal to the fill value).
     """
 
     path: Path
@@ -63,6 +79,7 @@ class InputSpec:
     weights: str | None = None
     rows_per_block: int | None = None
     fixed_columns: tuple[int, ...] = ()
+    missing_chunks: str = "error"
 
 
 @dataclass(frozen=True, slots=True)
@@ -196,6 +213,16 @@ class ClusterSpec:
         ``distributed`` (default): a ``LocalCluster`` or the cluster at ``address``;
         ``threads``: Dask's threaded scheduler inside this process (no dashboard, no worker
         restarts, less start-up and per-task overhead).
+    dashboard : str or None
+        Embedded cluster only: None (default) serves no dashboard; else the ``host:port``
+        the scheduler's dashboard listens on (``true`` in the job means
+        :data:`LOOPBACK_DASHBOARD`).
+    timeout : float
+        Seconds to wait for the scheduler: to connect, and for each answer while running.
+    worker_timeout : float
+        Seconds a worker may send no heartbeat while the run waits before it fails.
+    stall_timeout : float
+        Seconds the run waits while no task of the cluster starts or finishes.
     """
 
     address: str | None = None
@@ -203,6 +230,10 @@ class ClusterSpec:
     threads_per_worker: int | None = None
     processes: bool | None = None
     scheduler: str = "distributed"
+    dashboard: str | None = None
+    timeout: float = 10.0
+    worker_timeout: float = 60.0
+    stall_timeout: float = 1800.0
 
 
 @dataclass(frozen=True, slots=True)
@@ -219,6 +250,9 @@ class Job:
         The sections, each validated.
     resolved : Mapping
         The job as plain data after overrides and path resolution (goes into the store).
+    places : Mapping
+        Dotted key -> where it was set (``job.yaml line 7`` or ``--set``), for errors
+        found after parsing (see :meth:`fail`).
     """
 
     name: str
@@ -230,10 +264,22 @@ class Job:
     gates: GateSpec = field(default_factory=GateSpec)
     cluster: ClusterSpec = field(default_factory=ClusterSpec)
     resolved: Mapping[str, Any] = field(default_factory=lambda: MappingProxyType({}))
+    places: Mapping[str, str] = field(default_factory=lambda: MappingProxyType({}))
 
     def resolved_json(self) -> str:
         """Return the resolved job as a JSON string."""
         return json.dumps(dict(self.resolved), sort_keys=True, default=str)
+
+    def fail(self, key: str, message: str) -> JobError:
+        """Build a JobError for ``key`` (dotted) naming the line it was set on."""
+        parts = key.split(".")
+        for cut in range(len(parts), 0, -1):
+            place = self.places.get(".".join(parts[:cut]))
+            if place is not None:
+                break
+        else:
+            place = self.source.name
+        return JobError(f"{place}: key '{key}': {message}")
 
 
 # ---------------------------------------------------------------- loading with line numbers
@@ -425,8 +471,49 @@ def _auto_or_count(value: Any) -> int | None:
 
 def _positive(value: Any) -> float:
     if isinstance(value, bool) or not isinstance(value, int | float) or not value > 0:
-        raise TypeError("expected a positive number")
+        raise TypeError("expected a positive finite number")
+    if not math.isfinite(value):
+        raise ValueError("expected a positive finite number")
     return float(value)
+
+
+def _fraction(value: Any) -> float:
+    if isinstance(value, bool) or not isinstance(value, int | float) or not 0 < value < 1:
+        raise ValueError("expected a relative tolerance between 0 and 1 (exclusive)")
+    return float(value)
+
+
+def _seconds(value: Any) -> float:
+    try:
+        return _positive(value)
+    except (TypeError, ValueError):
+        raise ValueError("expected a finite number of seconds > 0") from None
+
+
+_HOST = r"(?:\[[0-9A-Fa-f:.]+\]|[A-Za-z0-9](?:[A-Za-z0-9.-]*[A-Za-z0-9])?)"
+_SCHEDULER_ADDRESS = re.compile(rf"(?:(?:tcp|tls|ws|wss|ucx)://)?{_HOST}(?::(\d{{1,5}}))?")
+_LISTEN_ADDRESS = re.compile(rf"{_HOST}:(\d{{1,5}})")
+
+
+def _port_ok(match: re.Match[str] | None) -> bool:
+    return match is not None and (match.group(1) is None or int(match.group(1)) <= 65535)
+
+
+def _scheduler_address(value: Any) -> str:
+    text = _text(value).strip()
+    if not _port_ok(_SCHEDULER_ADDRESS.fullmatch(text)):
+        raise ValueError("expected a scheduler address such as tcp://scheduler-host:8786")
+    return text
+
+
+def _dashboard(value: Any) -> str | None:
+    if value is False:
+        return None
+    if value is True:
+        return LOOPBACK_DASHBOARD
+    if isinstance(value, str) and _port_ok(_LISTEN_ADDRESS.fullmatch(value.strip())):
+        return value.strip()
+    raise ValueError("expected false, true (127.0.0.1, a free port) or host:port")
 
 
 def _one_of(choices: tuple[str, ...]) -> Callable[[Any], str]:
@@ -462,18 +549,47 @@ def _suffixed_path(suffixes: tuple[str, ...], base: Path) -> Callable[[Any], Pat
 DATA_SUFFIXES = (".h5", ".hdf5", ".zarr")
 
 
+INPUT_KEYS = (
+    "path",
+    "matrix",
+    "rhs",
+    "weights",
+    "rows_per_block",
+    "fixed_columns",
+    "missing_chunks",
+)
+
+
 def _parse_input(doc: _Doc, base: Path) -> InputSpec:
-    section = _Section(
-        doc, ("input",), ("path", "matrix", "rhs", "weights", "rows_per_block", "fixed_columns")
-    )
-    return InputSpec(
+    section = _Section(doc, ("input",), INPUT_KEYS)
+    spec = InputSpec(
         weights=section.get("weights", _text),
         path=section.require("path", _suffixed_path(DATA_SUFFIXES, base)),
         matrix=section.require("matrix", _text),
         rhs=section.get("rhs", _text),
         rows_per_block=section.get("rows_per_block", _auto_or_count),
         fixed_columns=section.get("fixed_columns", _column_list, ()),
+        missing_chunks=section.get("missing_chunks", _one_of(MISSING_CHUNKS), "error"),
     )
+    link = _broken_link(base / Path(str(section.raw["path"])).expanduser())
+    if link is not None:
+        name, target = link
+        raise doc.fail(
+            ("input", "path"),
+            f"{name} is a broken symbolic link to {target} (which does not exist); "
+            "restore the target or point input.path at the data",
+        )
+    return spec
+
+
+def _broken_link(path: Path) -> tuple[str, str] | None:
+    """The first component of ``path`` that is a symbolic link to nothing, and its target."""
+    if os.path.exists(path):
+        return None
+    for part in (path, *path.parents):
+        if os.path.islink(part) and not os.path.exists(part):
+            return str(part), os.readlink(part)
+    return None
 
 
 def _column_list(value: Any) -> tuple[int, ...]:
@@ -516,8 +632,17 @@ def _parse_method(doc: _Doc) -> MethodSpec:
 
 def _parse_output(doc: _Doc, base: Path) -> OutputSpec:
     section = _Section(doc, ("output",), ("path", "q", "overwrite", "measure_q"))
+    path = section.require("path", _suffixed_path(DATA_SUFFIXES, base))
+    is_zarr = path.suffix.lower() == ".zarr"
+    if path.exists() and path.is_dir() != is_zarr:
+        found, wanted = ("a file", "a folder") if is_zarr else ("a folder", "a file")
+        raise doc.fail(
+            ("output", "path"),
+            f"{path} is {found}, but a {path.suffix} result is {wanted}; "
+            "choose another output.path or move it away",
+        )
     return OutputSpec(
-        path=section.require("path", _suffixed_path(DATA_SUFFIXES, base)),
+        path=path,
         q=section.get("q", _flag, False),
         overwrite=section.get("overwrite", _flag, False),
         measure_q=section.get("measure_q", _flag, False),
@@ -538,7 +663,7 @@ def _parse_solve(doc: _Doc) -> SolveSpec:
     return SolveSpec(
         refine=section.get("refine", _flag, False),
         refine_iterations=section.get("refine_iterations", _count, 10),
-        rank_tolerance=section.get("rank_tolerance", _positive),
+        rank_tolerance=section.get("rank_tolerance", _fraction),
         covariance=section.get("covariance", _flag, False),
         residuals=section.get("residuals", _flag, False),
         flag_above=section.get("flag_above", _positive, 3.0),
@@ -555,7 +680,17 @@ def _parse_gates(doc: _Doc) -> GateSpec:
     )
 
 
-CLUSTER_KEYS = ("address", "workers", "threads_per_worker", "processes", "scheduler")
+CLUSTER_KEYS = (
+    "address",
+    "workers",
+    "threads_per_worker",
+    "processes",
+    "scheduler",
+    "dashboard",
+    "timeout",
+    "worker_timeout",
+    "stall_timeout",
+)
 SCHEDULERS = ("distributed", "threads")
 
 
@@ -594,11 +729,15 @@ def _parse_cluster(doc: _Doc, base: Path) -> ClusterSpec:
     _merge_profile(doc, base)
     section = _Section(doc, ("cluster",), CLUSTER_KEYS)
     spec = ClusterSpec(
-        address=section.get("address", _text),
+        address=section.get("address", _scheduler_address),
         workers=section.get("workers", _auto_or_count),
         threads_per_worker=section.get("threads_per_worker", _auto_or_count),
         processes=section.get("processes", _auto_or_flag),
         scheduler=section.get("scheduler", _one_of(SCHEDULERS), "distributed"),
+        dashboard=section.get("dashboard", _dashboard),
+        timeout=section.get("timeout", _seconds, 10.0),
+        worker_timeout=section.get("worker_timeout", _seconds, 60.0),
+        stall_timeout=section.get("stall_timeout", _seconds, 1800.0),
     )
     if spec.scheduler == "threads" and (spec.address or spec.processes):
         raise doc.fail(
@@ -606,7 +745,67 @@ def _parse_cluster(doc: _Doc, base: Path) -> ClusterSpec:
             "threads runs the job inside this process; it cannot be combined with "
             "cluster.address or cluster.processes: true (use scheduler: distributed)",
         )
+    if spec.dashboard is not None and (spec.address or spec.scheduler == "threads"):
+        raise doc.fail(
+            ("cluster", "dashboard"),
+            "only the embedded cluster (scheduler: distributed, no address) serves a "
+            "dashboard; a remote scheduler has its own",
+        )
+    if spec.address is None:
+        _check_local_counts(doc, spec)
     return spec
+
+
+def usable_cores() -> int:
+    """Cores this process may run on (its CPU affinity, else the machine's count)."""
+    if hasattr(os, "sched_getaffinity"):
+        return max(1, len(os.sched_getaffinity(0)))
+    return os.cpu_count() or 1
+
+
+def _check_local_counts(doc: _Doc, spec: ClusterSpec) -> None:
+    """Refuse local worker and thread counts beyond CORES_OVERCOMMIT x the usable cores."""
+    cores = usable_cores()
+    limit = CORES_OVERCOMMIT * cores
+    workers, threads = spec.workers or 1, spec.threads_per_worker or 1
+    for key, count in (("workers", workers), ("threads_per_worker", threads)):
+        if count > limit:
+            raise doc.fail(
+                ("cluster", key),
+                f"{count} is more than {CORES_OVERCOMMIT} x the {cores} cores this machine "
+                f"offers; use at most {limit} (or auto)",
+            )
+    if workers * threads > limit:
+        raise doc.fail(
+            ("cluster", "workers" if spec.workers else "threads_per_worker"),
+            f"{workers} workers x {threads} threads is more than {CORES_OVERCOMMIT} x the "
+            f"{cores} cores this machine offers; keep the product at most {limit}",
+        )
+
+
+def check_fits_input(job: Job, rows: int, cols: int) -> None:
+    """Refuse options that the input's size makes unusable, before any compute.
+
+    ``method.sketch_rows`` (rcholqr) must lie in ``[n, min(m, SKETCH_ROWS_PER_COLUMN n)]``:
+    fewer rows than columns cannot give a full-rank sketch, a sketch taller than A
+    compresses nothing, and each task holds ``sketch_rows x rows_per_block`` numbers of the
+    embedding (at most 8 blocks' worth).
+
+    Raises
+    ------
+    JobError
+        Naming the key and its line.
+    """
+    sketch = job.method.sketch_rows
+    if job.method.name != "rcholqr" or sketch is None:
+        return
+    limit = min(rows, SKETCH_ROWS_PER_COLUMN * cols)
+    if not cols <= sketch <= limit:
+        raise job.fail(
+            "method.sketch_rows",
+            f"{sketch} sketch rows for a {rows} x {cols} matrix; expected {cols} to {limit} "
+            f"(at least n, at most m and {SKETCH_ROWS_PER_COLUMN} n), or auto",
+        )
 
 
 SECTIONS = ("name", "input", "method", "output", "solve", "gates", "cluster")
@@ -653,6 +852,7 @@ def load_job(path: str | Path, overrides: tuple[str, ...] = ()) -> Job:
         solve=_parse_solve(doc),
         gates=_parse_gates(doc),
         cluster=_parse_cluster(doc, base),
+        places=MappingProxyType({".".join(key): doc.where(key) for key in doc.lines}),
     )
     return _with_resolved(job)
 
@@ -680,4 +880,5 @@ def _with_resolved(job: Job) -> Job:
         gates=job.gates,
         cluster=job.cluster,
         resolved=MappingProxyType(resolved),
+        places=job.places,
     )

@@ -15,6 +15,8 @@ to the task that loads the block (:mod:`rowfold.blocks`).
 from __future__ import annotations
 
 import hashlib
+import warnings
+from collections.abc import Callable
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
@@ -24,11 +26,14 @@ import numpy as np
 
 from rowfold.errors import InputError, InputMissingError
 from rowfold.storage import inputs
+from rowfold.storage.chunks import require_hdf5_chunks, require_zarr_chunks, row_range
 from rowfold.storage.inputs import (
     _HDF5_LOCK,
     HDF5_SUFFIXES,
+    KEEP_EVERY_CHUNK,
     ArrayInfo,
     ArrayRef,
+    _kept,
     _log_read,
     _missing,
     _open_zarr,
@@ -36,6 +41,10 @@ from rowfold.storage.inputs import (
     forget_input,
     open_dataset,
 )
+
+# Checks that the chunks of one part of a CSR group covering a range are stored:
+# (part, lo, hi, describe) -> None, or InputError.
+ChunkCheck = Callable[[str, int, int, Callable[[int, int], str]], None]
 
 CSR_ARRAYS = ("data", "indices", "indptr")
 """The arrays a CSR group holds."""
@@ -112,7 +121,9 @@ def _members(ref: ArrayRef) -> dict[str, Any] | None:
         if ref.is_hdf5:
             with _HDF5_LOCK, h5py.File(ref.path, "r") as handle:
                 return _members_hdf5(handle, ref.name)
-        return _members_zarr(ref.path, ref.name)
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")  # zarr warns about folders it cannot read
+            return _members_zarr(ref.path, ref.name)
     except KeyError:
         raise _missing(ref) from None
     except Exception as exc:
@@ -192,7 +203,7 @@ def _check_group(ref: ArrayRef, members: dict[str, Any]) -> CsrInfo:
             f"{where}/indptr: expected m + 1 = {m + 1} entries (shape {list(shape)}), "
             f"found {arrays['indptr'][0][0]}"
         )
-    first, last = (int(v) for v in _read_slice(ArrayRef(ref.path, f"{ref.name}/indptr"), m))
+    first, last = (int(v) for v in _read_slice(ref.part("indptr"), m))
     if first != 0 or last != nnz:
         raise InputError(
             f"{where}/indptr: expected to run from 0 to nnz = {nnz}, found {first} .. {last}"
@@ -256,12 +267,13 @@ def read_csr_rows(
     try:
         if ref.is_hdf5:
             with _HDF5_LOCK:
-                prefix = "" if ref.name in ("", ".", "/") else ref.name.rstrip("/") + "/"
-                arrays = {part: open_dataset(ref.path, prefix + part) for part in CSR_ARRAYS}
-                return _read_from(arrays, start, stop)
+                arrays = {part: open_dataset(ref.path, ref.part(part).name) for part in CSR_ARRAYS}
+                return _read_from(arrays, start, stop, _hdf5_check(ref, arrays))
         root = _open_zarr(ref.path)
         group = root[ref.name] if ref.name not in ("", ".", "/") else root
-        return _read_from(group, start, stop)
+        return _read_from(group, start, stop, _zarr_check(ref, group))
+    except InputError:
+        raise
     except Exception as exc:
         raise InputError(
             f"{ref.describe()}: rows {start}..{stop - 1} cannot be read "
@@ -269,12 +281,54 @@ def read_csr_rows(
         ) from None
 
 
-def _read_from(group: Any, start: int, stop: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+def _zarr_check(ref: ArrayRef, group: Any) -> ChunkCheck | None:
+    """Chunk checks for the parts of a Zarr CSR group, unless missing chunks are data."""
+    if not ref.checks_chunks:
+        return None
+
+    def check(part: str, lo: int, hi: int, describe: Callable[[int, int], str]) -> None:
+        require_zarr_chunks(group[part], ref.part(part).describe(), lo, hi, describe)
+
+    return check
+
+
+def _hdf5_check(ref: ArrayRef, arrays: dict[str, Any]) -> ChunkCheck | None:
+    """Chunk checks for the parts of an HDF5 CSR group (the caller holds the HDF5 lock)."""
+    if not ref.checks_chunks:
+        return None
+    signature = _kept(ref.path)[0]
+
+    def check(part: str, lo: int, hi: int, describe: Callable[[int, int], str]) -> None:
+        where = ref.part(part).describe()
+        require_hdf5_chunks(arrays[part], where, lo, hi, signature, describe)
+
+    return check
+
+
+def _entries(ptr: np.ndarray, start: int, lo: int, hi: int) -> Callable[[int, int], str]:
+    """Describe a range of stored values by the matrix rows that own them."""
+
+    def describe(first: int, end: int) -> str:
+        first, end = max(first, lo), min(end, hi)
+        rows = start + np.searchsorted(ptr, [first, end - 1], side="right") - 1
+        return f"entries {first}..{end - 1}, rows {int(rows[0])}..{int(rows[1])}"
+
+    return describe
+
+
+def _read_from(
+    group: Any, start: int, stop: int, check: ChunkCheck | None = None
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    if check is not None:
+        check("indptr", start, stop + 1, row_range)
     ptr = np.asarray(group["indptr"][start : stop + 1], dtype=np.int64)
     lo, hi = (int(ptr[0]), int(ptr[-1])) if ptr.size else (0, 0)
     if lo < 0 or hi < lo or np.any(np.diff(ptr) < 0):
         data = np.zeros(0, dtype=group["data"].dtype)
         return data, np.zeros(0, dtype=np.int64), ptr - lo
+    if check is not None:
+        for part in ("data", "indices"):
+            check(part, lo, hi, _entries(ptr, start, lo, hi))
     data = np.asarray(group["data"][lo:hi])
     indices = np.asarray(group["indices"][lo:hi], dtype=np.int64)
     return data, indices, ptr - lo
@@ -393,7 +447,11 @@ def _write_zarr(
     created.attrs["shape"] = [int(v) for v in shape]
     for name, array in {**arrays, **extra}.items():
         out = root.create_array(
-            name, shape=array.shape, dtype=array.dtype, chunks=_chunk(name, array)
+            name,
+            shape=array.shape,
+            dtype=array.dtype,
+            chunks=_chunk(name, array),
+            config=KEEP_EVERY_CHUNK,
         )
         out[...] = array
 

@@ -9,14 +9,19 @@ from __future__ import annotations
 import hashlib
 import os
 import threading
+import warnings
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import h5py
 import numpy as np
 
 from rowfold.errors import InputError, InputMissingError
+from rowfold.storage.chunks import FILL_VALUE, require_hdf5_chunks, require_zarr_chunks
+
+if TYPE_CHECKING:
+    from zarr.core.array_spec import ArrayConfigParams
 
 HDF5_SUFFIXES = (".h5", ".hdf5")
 ZARR_SUFFIXES = (".zarr",)
@@ -32,6 +37,10 @@ _HDF5_LOCK = threading.Lock()
 # forked child, and closed by close_open_inputs(), which the runner calls when a job ends.
 _OPEN_INPUTS: dict[str, tuple[tuple[int, ...], Any, dict[str, Any]]] = {}
 
+# Zarr arrays rowfold writes store every chunk, also one equal to the fill value (zarr
+# leaves those out by default), so that they pass the missing-chunk check when read.
+KEEP_EVERY_CHUNK: ArrayConfigParams = {"write_empty_chunks": True}
+
 
 @dataclass(frozen=True, slots=True)
 class ArrayRef:
@@ -43,10 +52,25 @@ class ArrayRef:
         Absolute path of the file or store.
     name : str
         Dataset path inside it, e.g. ``network/A``.
+    missing_chunks : str
+        ``"error"``: reading rows whose chunk is absent (Zarr) or never written (HDF5)
+        raises InputError; ``"fill_value"``: they read as the fill value
+        (``input.missing_chunks``; scratch arrays, which start as zeros).
     """
 
     path: str
     name: str
+    missing_chunks: str = "error"
+
+    def part(self, name: str) -> ArrayRef:
+        """The array ``name`` inside this group (e.g. ``indptr`` of a CSR group)."""
+        prefix = "" if self.name in ("", ".", "/") else self.name.rstrip("/") + "/"
+        return ArrayRef(self.path, prefix + name, self.missing_chunks)
+
+    @property
+    def checks_chunks(self) -> bool:
+        """True when missing chunks are an error (see :mod:`rowfold.storage.chunks`)."""
+        return self.missing_chunks != FILL_VALUE
 
     @property
     def is_hdf5(self) -> bool:
@@ -104,13 +128,57 @@ def _list_names(path: str) -> list[str]:
 
 
 def _missing(ref: ArrayRef) -> InputMissingError:
+    link = _broken_link(ref)
+    if link:
+        return InputMissingError(f"{ref.describe()}: {link}")
     try:
-        present = ", ".join(_list_names(ref.path)) or "none"
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")  # zarr warns about what it cannot read
+            present = ", ".join(_list_names(ref.path)) or "none"
     except Exception:  # listing is only a courtesy in an error message
         present = "unknown"
     return InputMissingError(
         f"{Path(ref.path).name}: dataset '{ref.name}' not found; datasets present: {present}"
     )
+
+
+def _broken_link(ref: ArrayRef) -> str | None:
+    """Describe the link that leaves ``ref.name`` dangling, if one does."""
+    try:
+        return _broken_hdf5_link(ref) if ref.is_hdf5 else _broken_zarr_link(ref)
+    except Exception:  # a courtesy in an error message
+        return None
+
+
+def _broken_zarr_link(ref: ArrayRef) -> str | None:
+    """A symbolic link inside the store (e.g. the array's folder) that points nowhere."""
+    folder = Path(ref.path)
+    for part in (p for p in ref.name.split("/") if p):
+        folder = folder / part
+        if folder.is_symlink() and not folder.exists():
+            return (
+                f"{part} is a broken symbolic link to {os.readlink(folder)} "
+                "(which does not exist); restore the target"
+            )
+    return None
+
+
+def _broken_hdf5_link(ref: ArrayRef) -> str | None:
+    """A soft or external link on the way to ``ref.name`` whose target is missing."""
+    with _HDF5_LOCK, h5py.File(ref.path, "r") as handle:
+        where = ""
+        for part in (p for p in ref.name.split("/") if p):
+            where = f"{where}/{part}"
+            link = handle.get(where, getlink=True)
+            dangling = handle.get(where) is None  # ``in`` is true for a dangling link
+            if isinstance(link, h5py.SoftLink) and dangling:
+                return f"{where} is a soft link to {link.path}, which does not exist"
+            if isinstance(link, h5py.ExternalLink) and dangling:
+                return (
+                    f"{where} is an external link to {link.filename}:{link.path}, which "
+                    "cannot be opened (is the file missing or moved?)"
+                )
+    return None
 
 
 def describe_array(ref: ArrayRef) -> ArrayInfo:
@@ -128,7 +196,9 @@ def describe_array(ref: ArrayRef) -> ArrayInfo:
     try:
         if ref.is_hdf5:
             return _describe_hdf5(ref)
-        return _describe_zarr(ref)
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")  # zarr warns about folders it cannot read
+            return _describe_zarr(ref)
     except (InputError, InputMissingError):
         raise
     except KeyError:
@@ -182,10 +252,18 @@ def read_rows(ref: ArrayRef, start: int, stop: int, purpose: str = "data") -> np
     try:
         if ref.is_hdf5:
             with _HDF5_LOCK:
-                return np.asarray(open_dataset(ref.path, ref.name)[start:stop])
+                dataset = open_dataset(ref.path, ref.name)
+                if ref.checks_chunks:
+                    signature = _kept(ref.path)[0]
+                    require_hdf5_chunks(dataset, ref.describe(), start, stop, signature)
+                return np.asarray(dataset[start:stop])
         root = _open_zarr(ref.path)
         obj = root[ref.name] if ref.name not in ("", ".", "/") else root
+        if ref.checks_chunks:
+            require_zarr_chunks(obj, ref.describe(), start, stop)
         return np.asarray(obj[start:stop])
+    except InputError:
+        raise
     except Exception as exc:
         raise InputError(
             f"{ref.describe()}: rows {start}..{stop - 1} cannot be read "
@@ -315,6 +393,10 @@ def write_arrays(path: str | Path, arrays: dict[str, np.ndarray], chunk_rows: in
     for name, array in arrays.items():
         rows = max(1, min(chunk_rows, array.shape[0]))
         created = group.create_array(
-            name, shape=array.shape, dtype=array.dtype, chunks=(rows, *array.shape[1:])
+            name,
+            shape=array.shape,
+            dtype=array.dtype,
+            chunks=(rows, *array.shape[1:]),
+            config=KEEP_EVERY_CHUNK,
         )
         created[...] = array

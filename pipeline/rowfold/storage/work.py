@@ -68,7 +68,8 @@ def create_work_array(
             f"{target}: cannot create the scratch array '{name}' "
             f"({exc.__class__.__name__}: {exc}); check that the output folder is writable"
         ) from None
-    return ArrayRef(str(target), name)
+    # zero-filled by design: a chunk no task has written yet reads as zeros
+    return ArrayRef(str(target), name, missing_chunks="fill_value")
 
 
 def write_rows(ref: ArrayRef, start: int, block: np.ndarray, col_start: int = 0) -> None:
