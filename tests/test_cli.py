@@ -28,8 +28,11 @@ import numpy as np
 import pytest
 import yaml
 
+from rowfold import runner
 from rowfold.cli import main
 from rowfold.storage import write_arrays
+
+from support import write_job
 
 EPS = float(np.finfo(np.float64).eps)
 TMP_PREFIX = ".rowfold-tmp-"
@@ -493,3 +496,27 @@ def _wait_for_temp(folder: Path, proc: Any, limit: float = 90.0) -> None:
             return
         time.sleep(0.05)
     raise AssertionError("no temporary result appeared while the run was going")
+
+
+@pytest.mark.parametrize("debug", [False, True], ids=["plain", "debug"])
+def test_unexpected_error_hints_at_debug_only_without_it(
+    tmp_path: Path,
+    capsys: pytest.CaptureFixture[str],
+    monkeypatch: pytest.MonkeyPatch,
+    debug: bool,
+) -> None:
+    """An unexpected exception: exit 4, one line; the hint to rerun with --debug only when
+    --debug was not given (with it, the traceback comes instead)."""
+    job = write_job(tmp_path, prescribed(40, 3, 10.0))
+
+    def broken(*args: object, **kwargs: object) -> None:
+        raise ValueError("unexpected state")
+
+    monkeypatch.setattr(runner, "run_job", broken)
+    status = main([*(["--debug"] if debug else []), "--quiet", "run", str(job), "--inline"])
+    err = capsys.readouterr().err
+    assert status == 4, err
+    last = err.strip().splitlines()[-1]
+    assert last.startswith("rowfold: failed: ValueError: unexpected state"), err
+    assert ("rerun with --debug" in last) is not debug, err
+    assert ("Traceback" in err) is debug, err

@@ -13,11 +13,17 @@ What is checked, and against what:
 - Every worker killed and none coming back: exit 4, the earlier result stays
   byte-identical (SPEC.md: exit 4 replaces no earlier good result).
 - No scheduler at ``cluster.address``: exit 4 with one line that names the address.
+- A worker or the scheduler stopped (SIGSTOP) mid-run: exit 4 within the job's
+  ``cluster.worker_timeout`` / ``cluster.timeout`` (plus polling), naming what stopped
+  answering; a scheduler killed mid-run: exit 4, one line naming it.
+- The embedded cluster listens on 127.0.0.1 only and serves no dashboard unless asked.
 """
 
 from __future__ import annotations
 
+import contextlib
 import hashlib
+import http.client
 import importlib.util
 import json
 import os
@@ -27,18 +33,23 @@ import subprocess
 import sys
 import threading
 import time
+import urllib.error
+import urllib.request
 from collections.abc import Callable, Iterator
 from dataclasses import dataclass, field
 from pathlib import Path
 
+import dask
 import numpy as np
+import psutil
 import pytest
 import yaml
 from distributed import Client
 
 from rowfold.cli import main
-from rowfold.cluster import no_worker_timeout
+from rowfold.cluster import Progress, no_worker_timeout, open_engine
 from rowfold.errors import RunError
+from rowfold.spec import ClusterSpec
 from rowfold.storage import write_arrays
 
 from support import U, assert_thin_qr, lapack_r, prescribed, read_store, write_job
@@ -183,14 +194,15 @@ def big_input(tmp_path_factory: pytest.TempPathFactory) -> BigInput:
     return BigInput(path, lapack_r(A), float(np.linalg.norm(A)))
 
 
-def big_job(folder: Path, source: Path, address: str) -> Path:
-    """A tsqr job over ``source`` in BIG_BLOCK-row blocks on the scheduler at ``address``."""
+def big_job(folder: Path, source: Path, address: str, **cluster: float) -> Path:
+    """A tsqr job over ``source`` in BIG_BLOCK-row blocks on the scheduler at ``address``
+    (``cluster`` adds keys to the job's cluster section, e.g. ``timeout=5``)."""
     job = {
         "name": "cluster-test",
         "input": {"path": str(source), "matrix": "model/A", "rows_per_block": BIG_BLOCK},
         "method": {"name": "tsqr"},
         "output": {"path": "out.h5", "overwrite": True},
-        "cluster": {"address": address},
+        "cluster": {"address": address, **cluster},
     }
     path = folder / "job.yaml"
     path.write_text(yaml.safe_dump(job), encoding="utf-8")
@@ -347,3 +359,191 @@ def test_no_worker_timeout_from_environment(
             no_worker_timeout()
     else:
         assert no_worker_timeout() == seconds
+
+
+# ---------------------------------------------------------------- stopped and killed processes
+
+# What the tests set in the job: seconds before a silent worker or scheduler fails the run.
+SILENCE = 5.0
+# Longest the tests wait for such a run to end; beyond it the run counts as hung.
+HANG_GUARD = 60.0
+
+
+def join_within(run: Background, seconds: float) -> tuple[int | None, float]:
+    """Wait for the run at most ``seconds``; return its status (None: still running) and
+    the seconds waited."""
+    started = time.monotonic()
+    run.thread.join(seconds)
+    waited = time.monotonic() - started
+    return (None if run.thread.is_alive() else run.status), waited
+
+
+def record(case: str, status: int | None, waited: float, err: str) -> None:
+    """Show what a run did and how long it took on the terminal (``-s``); not asserted."""
+    sys.__stdout__.write(f"\n{case}: exit {status} after {waited:.1f} s: {err.strip()}\n")
+
+
+def test_stopped_worker_fails_the_run_naming_it(
+    cluster: Cluster, big_input: BigInput, tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    """SIGSTOP one of two workers mid-run: exit 4 once it has been silent for
+    cluster.worker_timeout, one line naming that worker; nothing written."""
+    job = big_job(tmp_path, big_input.path, cluster.address, worker_timeout=SILENCE)
+    victim = cluster.workers[0]
+    with cluster.client() as client:
+        addresses = {pid: address for address, pid in client.run(os.getpid).items()}
+        run = Background(["--quiet", "run", str(job)])
+        wait_for_leaf_tasks(client, run)
+    os.killpg(victim.pid, signal.SIGSTOP)
+    try:
+        status, waited = join_within(run, HANG_GUARD)
+    finally:
+        os.killpg(victim.pid, signal.SIGCONT)
+    assert status is not None, f"the run still waited {HANG_GUARD:g} s after the worker stopped"
+    err = capsys.readouterr().err
+    record("stopped worker", status, waited, err)
+    assert status == 4, err
+    lines = err.strip().splitlines()
+    assert len(lines) == 1 and addresses[victim.pid] in lines[0], err
+    assert "worker" in lines[0] and "cluster.worker_timeout" in lines[0], err
+    assert not (tmp_path / "out.h5").exists()
+
+
+@pytest.fixture
+def own_scheduler(tmp_path: Path) -> Iterator[tuple[str, subprocess.Popen[bytes], Cluster]]:
+    """A scheduler for one test (so it can be stopped or killed) with two workers."""
+    info = tmp_path / "own-scheduler.json"
+    args = ("--host=127.0.0.1", "--port=0", "--no-dashboard", f"--scheduler-file={info}")
+    proc = dask_process("dask_scheduler", *args, folder=tmp_path)
+    own = Cluster("", tmp_path)
+    try:
+        wait_until(lambda: scheduler_address(info) is not None, "the scheduler")
+        own.address = str(scheduler_address(info))
+        own.start_workers(2)
+        yield own.address, proc, own
+    finally:
+        for member in [proc, *own.workers]:
+            with contextlib.suppress(ProcessLookupError):  # already gone
+                os.killpg(member.pid, signal.SIGCONT)
+            stop(member)
+
+
+def test_stopped_scheduler_fails_the_run_naming_it(
+    own_scheduler: tuple[str, subprocess.Popen[bytes], Cluster],
+    big_input: BigInput,
+    tmp_path: Path,
+    capsys: pytest.CaptureFixture[str],
+) -> None:
+    """SIGSTOP the scheduler mid-run: exit 4 once it has not answered for cluster.timeout,
+    one line naming it; nothing written."""
+    address, scheduler_proc, own = own_scheduler
+    job = big_job(tmp_path, big_input.path, address, timeout=SILENCE)
+    with own.client() as client:
+        run = Background(["--quiet", "run", str(job)])
+        wait_for_leaf_tasks(client, run)
+    os.killpg(scheduler_proc.pid, signal.SIGSTOP)
+    status, waited = join_within(run, HANG_GUARD)
+    os.killpg(scheduler_proc.pid, signal.SIGCONT)
+    assert status is not None, f"the run still waited {HANG_GUARD:g} s after the scheduler stopped"
+    err = capsys.readouterr().err
+    record("stopped scheduler", status, waited, err)
+    assert status == 4, err
+    lines = err.strip().splitlines()
+    assert len(lines) == 1 and address in lines[0] and "scheduler" in lines[0], err
+    assert "cluster.timeout" in lines[0], err
+    assert not (tmp_path / "out.h5").exists()
+
+
+def test_killed_scheduler_is_one_line_naming_it(
+    own_scheduler: tuple[str, subprocess.Popen[bytes], Cluster],
+    big_input: BigInput,
+    tmp_path: Path,
+    capsys: pytest.CaptureFixture[str],
+) -> None:
+    """SIGKILL the scheduler mid-run: exit 4 and one line naming the scheduler and saying
+    that nothing was written."""
+    address, scheduler_proc, own = own_scheduler
+    job = big_job(tmp_path, big_input.path, address, timeout=SILENCE)
+    with own.client() as client:
+        run = Background(["--quiet", "run", str(job)])
+        wait_for_leaf_tasks(client, run)
+    os.killpg(scheduler_proc.pid, signal.SIGKILL)
+    status, waited = join_within(run, HANG_GUARD)
+    assert status is not None, f"the run still waited {HANG_GUARD:g} s after the scheduler died"
+    err = capsys.readouterr().err
+    record("killed scheduler", status, waited, err)
+    assert status == 4, err
+    lines = err.strip().splitlines()
+    assert len(lines) == 1 and address in lines[0], err
+    assert "nothing was written" in lines[0] and "Traceback" not in err, err
+    assert not (tmp_path / "out.h5").exists()
+
+
+# ---------------------------------------------------------------- what the embedded cluster opens
+
+LOOPBACK = ("127.0.0.1", "::1")
+
+
+def listening(pids: set[int]) -> list[tuple[str, int]]:
+    """(address, port) of every TCP socket the processes ``pids`` listen on."""
+    found = []
+    for pid in pids:
+        for conn in psutil.Process(pid).net_connections(kind="tcp"):
+            if conn.status == psutil.CONN_LISTEN:
+                found.append((conn.laddr.ip, conn.laddr.port))
+    return found
+
+
+def http_status(port: int, path: str) -> int:
+    """HTTP status of GET ``path`` on 127.0.0.1:port (0 when the port does not speak HTTP,
+    e.g. a Dask comm port)."""
+    try:
+        with urllib.request.urlopen(f"http://127.0.0.1:{port}{path}", timeout=5) as answer:
+            return int(answer.status)
+    except urllib.error.HTTPError as exc:
+        return int(exc.code)
+    except (urllib.error.URLError, http.client.HTTPException, OSError):
+        return 0
+
+
+def engine_sockets(spec: ClusterSpec) -> tuple[list[str], list[tuple[str, int]], list[int]]:
+    """Start the embedded cluster; return its scheduler and worker addresses, the sockets
+    it listens on, and the HTTP status of the scheduler's dashboard page on each."""
+    before = set(listening({os.getpid()}))  # left by earlier tests in this process
+    with open_engine(spec, Progress()) as engine:
+        client = engine.client
+        pids = {os.getpid(), *client.run(os.getpid).values()}
+        sockets = [s for s in listening(pids) if s not in before]
+        addresses = [engine.address, *client.scheduler_info()["workers"]]
+        pages = [http_status(port, "/status") for ip, port in sockets if ip in LOOPBACK]
+    return addresses, sockets, pages
+
+
+@pytest.mark.parametrize("processes", [False, True], ids=["threads", "processes"])
+def test_embedded_cluster_listens_on_loopback_only(processes: bool) -> None:
+    """Scheduler, workers and nannies: loopback (or in-process) addresses, every listening
+    socket on 127.0.0.1, and no dashboard page by default."""
+    spec = ClusterSpec(workers=2, threads_per_worker=1, processes=processes)
+    addresses, sockets, pages = engine_sockets(spec)
+    assert all(a.startswith(("inproc://", "tcp://127.0.0.1:")) for a in addresses), addresses
+    assert sockets and all(ip in LOOPBACK for ip, _ in sockets), sockets
+    assert 200 not in pages, (sockets, pages)
+
+
+def test_embedded_dashboard_only_when_asked() -> None:
+    """cluster.dashboard: true serves the dashboard page, on 127.0.0.1."""
+    spec = ClusterSpec(workers=1, threads_per_worker=1, processes=False, dashboard="127.0.0.1:0")
+    _, sockets, pages = engine_sockets(spec)
+    assert all(ip in LOOPBACK for ip, _ in sockets), sockets
+    assert 200 in pages, (sockets, pages)
+
+
+def test_stalled_cluster_fails_naming_the_stall_timeout() -> None:
+    """A task that runs on while every worker keeps its heartbeat: RunError once nothing
+    has started or finished for cluster.stall_timeout, naming the worker."""
+    spec = ClusterSpec(workers=1, threads_per_worker=1, processes=False, stall_timeout=2.0)
+    with open_engine(spec, Progress()) as engine, pytest.raises(RunError) as caught:
+        engine.compute([dask.delayed(time.sleep)(6)], "sleep")
+    message = str(caught.value)
+    assert "no task started or finished for 2 s (cluster.stall_timeout" in message, message
+    assert "1 tasks running on inproc://" in message and "nothing was written" in message

@@ -87,3 +87,28 @@ def test_quick_start_demo_command_runs_end_to_end(tmp_path: Path) -> None:
     reports = sorted(p.name for p in results.glob("*.report.json"))
     assert len(reports) == len(list((tmp_path / "demo").glob("*.yaml")))
     assert "wrote" in done.stdout
+
+
+def test_template_lists_every_key() -> None:
+    """jobs/template.yaml names every key of the sections it shows (README: "lists every
+    key with its default"); method options of other methods are listed as comments."""
+    from dataclasses import fields
+
+    import yaml
+
+    from rowfold import spec
+
+    template = yaml.safe_load((ROOT / "jobs" / "template.yaml").read_text(encoding="utf-8"))
+    sections = {
+        "input": spec.InputSpec,
+        "output": spec.OutputSpec,
+        "solve": spec.SolveSpec,
+        "gates": spec.GateSpec,
+        "cluster": spec.ClusterSpec,
+    }
+    for section, kind in sections.items():
+        expected = {f.name for f in fields(kind)} | ({"profile"} if section == "cluster" else set())
+        assert set(template[section]) == expected, section
+    text = (ROOT / "jobs" / "template.yaml").read_text(encoding="utf-8")
+    for option in {f.name for f in fields(spec.MethodSpec)}:
+        assert f"{option}:" in text, option

@@ -265,5 +265,6 @@ def _dispatch(args: argparse.Namespace, progress: Progress) -> int:
     except Exception as exc:
         if args.debug:
             traceback.print_exc()
-        _error(f"rowfold: failed: {exc.__class__.__name__}: {exc} (rerun with --debug for details)")
+        hint = "" if args.debug else " (rerun with --debug for details)"
+        _error(f"rowfold: failed: {exc.__class__.__name__}: {exc}{hint}")
         return EXIT_RUN_FAILED

@@ -6,13 +6,18 @@ worker per core, as threads of this process (``cluster.processes: true`` for pro
 with BLAS limited to one thread per worker, so workers x threads x BLAS threads never
 exceeds the cores. ``cluster.address`` connects to a running scheduler
 instead. :class:`InlineEngine` runs graphs in this thread (``check``, and unit tests).
+The embedded cluster listens on 127.0.0.1 only and serves a dashboard only with
+``cluster.dashboard``.
 
 Losing workers: a task whose worker dies is run again elsewhere, at most
 :data:`ALLOWED_FAILURES` times on the embedded cluster (a remote scheduler keeps its own
 ``distributed.scheduler.allowed-failures``) before the run fails with :class:`RunError`.
-When no worker is connected at all for longer than :data:`NO_WORKER_TIMEOUT` seconds
-(environment variable ``ROWFOLD_NO_WORKER_TIMEOUT``) the run gives up with
-:class:`RunError` instead of waiting for workers that may never come back.
+Every wait of :class:`DistributedEngine` is bounded (:class:`Patience`): the scheduler must
+answer each request within ``cluster.timeout``, every worker must keep its heartbeat
+within ``cluster.worker_timeout``, something must start or finish within
+``cluster.stall_timeout``, and some worker must be connected within
+:data:`NO_WORKER_TIMEOUT` seconds (environment variable ``ROWFOLD_NO_WORKER_TIMEOUT``);
+otherwise the run fails with :class:`RunError` naming what stopped answering.
 """
 
 from __future__ import annotations
@@ -20,12 +25,13 @@ from __future__ import annotations
 import asyncio
 import collections
 import concurrent.futures
+import functools
 import logging
 import os
 import resource
 import sys
 import time
-from collections.abc import Callable, Iterator, Sequence
+from collections.abc import Awaitable, Callable, Iterator, Sequence
 from contextlib import contextmanager, suppress
 from dataclasses import dataclass
 from typing import Any, TextIO
@@ -34,7 +40,7 @@ import dask
 import dask.threaded
 from dask.callbacks import Callback
 
-from rowfold.errors import RunError
+from rowfold.errors import RowfoldError, RunError
 from rowfold.spec import ClusterSpec
 
 # Q blocks in flight at once when streaming (bounds client and worker memory).
@@ -44,8 +50,6 @@ ALLOWED_FAILURES = 3
 # Seconds a run waits while no worker is connected (override: ROWFOLD_NO_WORKER_TIMEOUT).
 NO_WORKER_TIMEOUT = 60.0
 NO_WORKER_TIMEOUT_ENV = "ROWFOLD_NO_WORKER_TIMEOUT"
-# How long to try to reach a scheduler at ``cluster.address``.
-CONNECT_TIMEOUT = "10s"
 # Seconds between checks on the workers while waiting for results.
 POLL_SECONDS = 0.5
 
@@ -219,8 +223,56 @@ class _TaskProgress(Callback):
             self.progress.show(self.label, self.done, max(self.total, self.done), self.started)
 
 
+@dataclass(frozen=True, slots=True)
+class Patience:
+    """How long the distributed engine waits for each kind of answer, in seconds.
+
+    Attributes
+    ----------
+    scheduler : float
+        For the scheduler: to connect, and for each answer (``cluster.timeout``).
+    worker : float
+        For the next heartbeat of a worker while the run waits (``cluster.worker_timeout``).
+    stall : float
+        While no task starts or finishes anywhere (``cluster.stall_timeout``).
+    no_worker : float
+        While no worker is connected at all (``ROWFOLD_NO_WORKER_TIMEOUT``).
+    """
+
+    scheduler: float = 10.0
+    worker: float = 60.0
+    stall: float = 1800.0
+    no_worker: float = NO_WORKER_TIMEOUT
+
+    @classmethod
+    def of(cls, spec: ClusterSpec) -> Patience:
+        """The patience a job asks for (the no-worker wait from the environment)."""
+        return cls(spec.timeout, spec.worker_timeout, spec.stall_timeout, no_worker_timeout())
+
+
+NOTHING_WRITTEN = "nothing was written (an earlier result is kept)"
+# Why distributed cancels a client's futures when its scheduler connection closes.
+CONNECTION_LOST = "scheduler-connection-lost"
+
+
+def _cancel_reasons(exc: BaseException) -> set[str]:
+    """The reasons distributed gives for cancelled futures (none for other errors)."""
+    groups = getattr(exc, "error_groups", None)
+    if groups is not None:
+        return {str(group.reason) for group in groups}
+    reason = getattr(exc, "reason", None)
+    return set() if reason is None else {str(reason)}
+
+
 class DistributedEngine:
-    """Run graphs on a ``distributed.Client``.
+    """Run graphs on a ``distributed.Client``, with every wait bounded.
+
+    While it waits for results it asks the scheduler, each time within
+    ``patience.scheduler`` seconds, for its workers (heartbeats, threads) and for the tasks
+    they are running, and gives up with :class:`RunError` naming what stopped answering:
+    the scheduler (no answer in time, or its connection lost), a worker (no heartbeat for
+    ``patience.worker`` s), the cluster as a whole (no task started or finished for
+    ``patience.stall`` s), or no worker at all for ``patience.no_worker`` s.
 
     Parameters
     ----------
@@ -228,26 +280,75 @@ class DistributedEngine:
         Connected client.
     progress : Progress
         Where progress goes.
-    no_worker_timeout : float
-        Seconds to wait while the cluster has no worker before raising :class:`RunError`.
+    patience : Patience
+        The bounds above.
     """
 
-    def __init__(
-        self, client: Any, progress: Progress, no_worker_timeout: float = NO_WORKER_TIMEOUT
-    ) -> None:
+    def __init__(self, client: Any, progress: Progress, patience: Patience | None = None) -> None:
         self.client = client
         self.progress = progress
-        self.no_worker_timeout = no_worker_timeout
+        self.patience = patience or Patience()
+        self.scheduler_silent = False
+        # worker address -> (last heartbeat time the scheduler reported, when we first saw it)
+        self._heard: dict[str, tuple[Any, float]] = {}
+        self._silent_workers: set[str] = set()
 
     @property
     def address(self) -> str:
         """The scheduler's address."""
         return str(self.client.scheduler.address)
 
+    def ask(self, what: str, call: Callable[[], Awaitable[Any]]) -> Any:
+        """Await ``call()`` on the client's loop within ``patience.scheduler`` seconds.
+
+        ``call`` runs on the loop, where client methods return awaitables.
+
+        Raises
+        ------
+        RunError
+            When the scheduler does not answer in time or its connection is lost.
+        """
+        from distributed.comm import CommClosedError
+        from distributed.utils import sync
+
+        seconds = self.patience.scheduler
+        try:
+            return sync(self.client.loop, call, callback_timeout=seconds)
+        except TimeoutError:
+            self.scheduler_silent = True
+            raise RunError(
+                f"cluster {self.address}: the scheduler has not answered for {seconds:g} s "
+                f"(cluster.timeout) while {what}; it may be stopped or overloaded; "
+                f"{NOTHING_WRITTEN}"
+            ) from None
+        except (CommClosedError, OSError, concurrent.futures.CancelledError) as exc:
+            raise self._lost(exc) from None
+
+    def _lost(self, exc: BaseException) -> RunError:
+        """The error for a scheduler that went away (or cancelled our tasks)."""
+        self.scheduler_silent = True
+        if _cancel_reasons(exc) - {CONNECTION_LOST} and not isinstance(exc, OSError):
+            return RunError(
+                f"cluster {self.address}: the scheduler cancelled this run's tasks "
+                f"(another client or a restart); {NOTHING_WRITTEN}"
+            )
+        return RunError(
+            f"cluster {self.address}: lost the connection to the scheduler while running "
+            f"(it stopped or was killed); {NOTHING_WRITTEN}"
+        )
+
     def run_on_workers(self, function: Callable[[], None]) -> None:
         """Call ``function`` once on every worker, best effort (a lost worker is skipped)."""
-        with suppress(Exception):
-            self.client.run(function)
+        if self.scheduler_silent:
+            return
+        # a worker known to be silent would hold the call up until cluster.timeout
+        answering = [w for w in self._heard if w not in self._silent_workers]
+        targets = answering if self._silent_workers else None
+        with suppress(RowfoldError, Exception):
+            self.ask(
+                "running clean-up on the workers",
+                lambda: self.client.run(function, workers=targets),
+            )
 
     def _wait(self, futures: list[Any], label: str) -> None:
         """Wait for futures, showing progress over every task of their graphs."""
@@ -261,46 +362,101 @@ class DistributedEngine:
             _stop_task_bar(bar)
 
     def _wait_for_workers(self, futures: list[Any]) -> None:
-        """Block until the futures finish; give up when no worker is left for too long.
+        """Block until the futures finish, watching the cluster between short waits.
 
         Raises
         ------
         RunError
-            When the cluster has had no worker for ``no_worker_timeout`` seconds.
+            When the scheduler or a worker stops answering, nothing progresses for
+            ``patience.stall`` s, or no worker is connected for ``patience.no_worker`` s.
         """
         from distributed import wait
 
         idle_since: float | None = None
+        mark: tuple[Any, ...] = ()
+        moved = time.monotonic()
         while True:
             try:
                 wait(futures, timeout=POLL_SECONDS)
                 return
             except TimeoutError:
                 pass
-            if self.client.nthreads():
-                idle_since = None
-                continue
+            except concurrent.futures.CancelledError as exc:
+                raise self._lost(exc) from None
+            workers = self._workers()
+            running = self._processing()
             now = time.monotonic()
-            idle_since = now if idle_since is None else idle_since
-            if now - idle_since >= self.no_worker_timeout:
+            self._check_heartbeats(workers, now)
+            idle_since = None if workers else (idle_since or now)
+            if idle_since is not None and now - idle_since >= self.patience.no_worker:
                 self.client.cancel(futures)
                 raise RunError(
                     f"cluster {self.address}: no Dask worker connected for "
-                    f"{self.no_worker_timeout:g} s; start workers (or set "
+                    f"{self.patience.no_worker:g} s; start workers (or set "
                     f"{NO_WORKER_TIMEOUT_ENV} to wait longer) and run the job again"
                 )
+            now_mark = (running, sum(future.done() for future in futures))
+            if now_mark != mark:
+                mark, moved = now_mark, now
+            elif now - moved >= self.patience.stall:
+                raise self._stalled(running)
+
+    def _workers(self) -> dict[str, Any]:
+        """Address -> identity of every worker with threads, from the scheduler."""
+        identity = self.ask(
+            "listing its workers", lambda: self.client.scheduler.identity(n_workers=-1)
+        )
+        workers = identity.get("workers", {})
+        return {addr: info for addr, info in workers.items() if info.get("nthreads")}
+
+    def _processing(self) -> frozenset[tuple[str, str]]:
+        """(worker, task) pairs the scheduler has running."""
+        processing = self.ask("listing running tasks", self.client.scheduler.processing)
+        return frozenset((str(w), str(key)) for w, keys in processing.items() for key in keys)
+
+    def _check_heartbeats(self, workers: dict[str, Any], now: float) -> None:
+        """Raise when a worker's last heartbeat has not changed for ``patience.worker`` s."""
+        for gone in set(self._heard) - set(workers):
+            del self._heard[gone]
+        for addr, info in workers.items():
+            seen = info.get("last_seen")
+            heard = self._heard.get(addr)
+            if heard is None or heard[0] != seen:
+                self._heard[addr] = (seen, now)
+            elif now - heard[1] >= self.patience.worker:
+                self._silent_workers.add(addr)
+                name = info.get("name")
+                named = f" ({name})" if name not in (None, addr) else ""
+                raise RunError(
+                    f"cluster {self.address}: worker {addr}{named} has sent no heartbeat "
+                    f"for {self.patience.worker:g} s (cluster.worker_timeout); it may be "
+                    f"stopped or overloaded; {NOTHING_WRITTEN}"
+                )
+
+    def _stalled(self, running: frozenset[tuple[str, str]]) -> RunError:
+        """The error for a cluster on which nothing moved for ``patience.stall`` s."""
+        workers = sorted({worker for worker, _ in running})
+        where = f"{len(running)} tasks running on {', '.join(workers)}" if workers else "none"
+        return RunError(
+            f"cluster {self.address}: no task started or finished for "
+            f"{self.patience.stall:g} s (cluster.stall_timeout; still running: {where}); "
+            f"{NOTHING_WRITTEN}"
+        )
 
     def _gather(self, futures: list[Any]) -> list[Any]:
         """Gather finished futures; a task whose workers kept dying becomes a RunError."""
         from distributed import KilledWorker
 
         try:
-            return list(self.client.gather(futures))
+            values = self.ask(
+                "sending results", lambda: self.client.gather(futures, asynchronous=True)
+            )
         except KilledWorker as exc:
             raise RunError(
                 f"cluster {self.address}: workers died while running one task "
                 f"({exc}); check the workers' memory limits and logs"
             ) from None
+        return list(values)
 
     def compute(self, tasks: Sequence[Any], label: str) -> list[Any]:
         """Compute on the cluster and gather the values."""
@@ -345,7 +501,7 @@ class DistributedEngine:
 
     def peak_memory_bytes(self) -> int:
         """Peak RSS of the client plus every worker process (each counted once)."""
-        peaks = self.client.run(_process_peak)
+        peaks = self.ask("measuring memory", lambda: self.client.run(_process_peak))
         by_pid = {pid: peak for pid, peak in peaks.values()}
         by_pid[os.getpid()] = peak_rss_bytes()
         return int(sum(by_pid.values()))
@@ -430,7 +586,7 @@ def no_worker_timeout() -> float:
     return seconds
 
 
-def announce_dashboard(client: Any, progress: Progress) -> None:
+def announce_dashboard(engine: DistributedEngine, progress: Progress) -> None:
     """Print the Dask dashboard link on the progress stream when there is a dashboard.
 
     Nothing is printed when progress is quiet or the scheduler lacks bokeh (then it has
@@ -438,8 +594,11 @@ def announce_dashboard(client: Any, progress: Progress) -> None:
     """
     if progress.stream is None:
         return
+    client = engine.client
     try:
-        versions = client.get_versions(packages=["bokeh"])
+        versions = engine.ask(
+            "reporting its versions", lambda: client.get_versions(packages=["bokeh"])
+        )
         link = client.dashboard_link if versions["scheduler"]["packages"].get("bokeh") else None
     except (KeyError, OSError):
         link = None
@@ -448,54 +607,109 @@ def announce_dashboard(client: Any, progress: Progress) -> None:
         progress.stream.flush()
 
 
+# The embedded cluster's HTTP endpoints (Dask always opens one on the scheduler and on each
+# worker) listen here: the loopback, on a free port.
+LOOPBACK_HTTP = "127.0.0.1:0"
+# Without a dashboard they serve only Dask's health check (no cluster pages, no metrics).
+HEALTH_ONLY = ["distributed.http.health"]
+
+
 @contextmanager
 def open_engine(spec: ClusterSpec, progress: Progress) -> Iterator[DistributedEngine]:
     """Start (or connect to) a Dask cluster and yield an engine on it.
+
+    The embedded cluster listens on 127.0.0.1 only (scheduler, workers, nannies and their
+    HTTP endpoints); it serves Dask's dashboard only with ``cluster.dashboard``.
 
     Raises
     ------
     RunError
         When the scheduler at ``cluster.address`` cannot be reached within
-        :data:`CONNECT_TIMEOUT`.
+        ``cluster.timeout`` seconds.
     """
-    from distributed import Client, LocalCluster
+    from distributed import Client
 
     # Task failures are reported by rowfold as one line; keep distributed's own logs quiet.
     logging.getLogger("distributed").setLevel(logging.CRITICAL)
-    patience = no_worker_timeout()
-
+    patience = Patience.of(spec)
     if spec.address:
         try:
-            client = Client(spec.address, timeout=CONNECT_TIMEOUT)
+            client = Client(spec.address, timeout=f"{spec.timeout}s")
         except OSError as exc:
             raise RunError(
                 f"cluster.address {spec.address}: cannot connect to the Dask scheduler ({exc}); "
                 "check that it is running and reachable"
             ) from None
-        with client:
-            announce_dashboard(client, progress)
-            yield DistributedEngine(client, progress, patience)
+        engine = DistributedEngine(client, progress, patience)
+        try:
+            announce_dashboard(engine, progress)
+            yield engine
+        finally:
+            _close(engine)
         return
+    with _embedded_cluster(spec) as (cluster, blas):
+        engine = DistributedEngine(Client(cluster), progress, patience)
+        try:
+            engine.ask("limiting BLAS threads", lambda: engine.client.run(limit_blas_threads, blas))
+            announce_dashboard(engine, progress)
+            yield engine
+        finally:
+            _close(engine)
+
+
+def _close(engine: DistributedEngine) -> None:
+    """Close the client, briefly when the scheduler has stopped answering."""
+    seconds = 1.0 if engine.scheduler_silent else engine.patience.scheduler
+    with suppress(Exception):
+        engine.client.close(timeout=seconds)
+
+
+@contextmanager
+def _embedded_cluster(spec: ClusterSpec) -> Iterator[tuple[Any, int]]:
+    """A ``LocalCluster`` on the loopback; yields it and the BLAS threads per worker."""
+    from distributed import LocalCluster
+
     cores = os.cpu_count() or 1
     workers, threads = local_layout(spec, cores)
     processes = bool(spec.processes)  # None (auto) is decided by the runner; threads here
-    config = {
+    config: dict[str, Any] = {
         "distributed.worker.daemon": False,
         "distributed.scheduler.allowed-failures": ALLOWED_FAILURES,
         "logging.distributed": "error",
     }
+    if spec.dashboard is None:
+        config["distributed.scheduler.http.routes"] = HEALTH_ONLY
+        config["distributed.worker.http.routes"] = HEALTH_ONLY
+    # processes talk tcp on 127.0.0.1; worker threads talk in-process, and their HTTP
+    # endpoints are put on the loopback by _loopback_worker_class
+    placement: dict[str, Any] = (
+        {"host": "127.0.0.1"} if processes else {"worker_class": _loopback_worker_class()}
+    )
     with (
         dask.config.set(config),
         LocalCluster(
             n_workers=workers,
             threads_per_worker=threads,
             processes=processes,
-            dashboard_address=":0",
+            dashboard_address=spec.dashboard or LOOPBACK_HTTP,
+            scheduler_kwargs={"dashboard": spec.dashboard is not None},
             silence_logs=logging.CRITICAL,
+            **placement,
         ) as cluster,
-        Client(cluster) as client,
     ):
         blas = 1 if processes else max(1, cores // max(1, workers * threads))
-        client.run(limit_blas_threads, blas)
-        announce_dashboard(client, progress)
-        yield DistributedEngine(client, progress, patience)
+        yield cluster, blas
+
+
+@functools.cache
+def _loopback_worker_class() -> type:
+    """A ``distributed.Worker`` whose HTTP endpoint listens on 127.0.0.1, never with a
+    dashboard (a worker thread's address is in-process, so Dask would bind all interfaces)."""
+    from distributed import Worker
+
+    class LoopbackWorker(Worker):
+        def __init__(self, *args: Any, **kwargs: Any) -> None:
+            kwargs.update(dashboard=False, dashboard_address=LOOPBACK_HTTP)
+            super().__init__(*args, **kwargs)
+
+    return LoopbackWorker
