@@ -23,6 +23,7 @@ TSQR_TREES = ("flat", "binary")
 INNER_QR = ("householder", "cholqr2", "mgs")
 SKETCHES = ("sparse_sign", "gaussian")
 PRECISIONS = ("float64", "native")
+VERIFY_MODES = ("all", "sample")
 
 # Which method takes which option (every method takes ``precision``).
 METHOD_OPTIONS: dict[str, tuple[str, ...]] = {
@@ -177,6 +178,24 @@ class GateSpec:
 
 
 @dataclass(frozen=True, slots=True)
+class UpdateSpec:
+    """How ``rowfold update`` proves that the input still starts with the old rows.
+
+    Attributes
+    ----------
+    verify : str
+        ``"all"`` (default): every old row block of every input is hashed and compared with
+        the digests the earlier result recorded; ``"sample"``: only a random share of the
+        old blocks (always the last), which the report and a warning say.
+    sample_fraction : float
+        With ``verify: sample``, the share of old row blocks checked, in (0, 1].
+    """
+
+    verify: str = "all"
+    sample_fraction: float = 0.1
+
+
+@dataclass(frozen=True, slots=True)
 class ClusterSpec:
     """Where the Dask work runs.
 
@@ -215,7 +234,7 @@ class Job:
         Free text used in reports.
     source : Path
         The job file it came from.
-    input, method, output, solve, gates, cluster
+    input, method, output, solve, gates, cluster, update
         The sections, each validated.
     resolved : Mapping
         The job as plain data after overrides and path resolution (goes into the store).
@@ -230,6 +249,7 @@ class Job:
     gates: GateSpec = field(default_factory=GateSpec)
     cluster: ClusterSpec = field(default_factory=ClusterSpec)
     resolved: Mapping[str, Any] = field(default_factory=lambda: MappingProxyType({}))
+    update: UpdateSpec = field(default_factory=UpdateSpec)
 
     def resolved_json(self) -> str:
         """Return the resolved job as a JSON string."""
@@ -555,6 +575,20 @@ def _parse_gates(doc: _Doc) -> GateSpec:
     )
 
 
+def _fraction(value: Any) -> float:
+    if isinstance(value, bool) or not isinstance(value, int | float) or not 0 < value <= 1:
+        raise TypeError("expected a fraction in (0, 1]")
+    return float(value)
+
+
+def _parse_update(doc: _Doc) -> UpdateSpec:
+    section = _Section(doc, ("update",), ("verify", "sample_fraction"))
+    return UpdateSpec(
+        verify=section.get("verify", _one_of(VERIFY_MODES), "all"),
+        sample_fraction=section.get("sample_fraction", _fraction, 0.1),
+    )
+
+
 CLUSTER_KEYS = ("address", "workers", "threads_per_worker", "processes", "scheduler")
 SCHEDULERS = ("distributed", "threads")
 
@@ -609,7 +643,7 @@ def _parse_cluster(doc: _Doc, base: Path) -> ClusterSpec:
     return spec
 
 
-SECTIONS = ("name", "input", "method", "output", "solve", "gates", "cluster")
+SECTIONS = ("name", "input", "method", "output", "solve", "gates", "cluster", "update")
 
 
 def load_job(path: str | Path, overrides: tuple[str, ...] = ()) -> Job:
@@ -653,6 +687,7 @@ def load_job(path: str | Path, overrides: tuple[str, ...] = ()) -> Job:
         solve=_parse_solve(doc),
         gates=_parse_gates(doc),
         cluster=_parse_cluster(doc, base),
+        update=_parse_update(doc),
     )
     return _with_resolved(job)
 
@@ -668,6 +703,7 @@ def _with_resolved(job: Job) -> Job:
         "solve": asdict(job.solve),
         "gates": asdict(job.gates),
         "cluster": asdict(job.cluster),
+        "update": asdict(job.update),
     }
     resolved = json.loads(json.dumps(plain, default=str))
     return Job(
@@ -680,4 +716,5 @@ def _with_resolved(job: Job) -> Job:
         gates=job.gates,
         cluster=job.cluster,
         resolved=MappingProxyType(resolved),
+        update=job.update,
     )

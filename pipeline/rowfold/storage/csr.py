@@ -14,7 +14,6 @@ to the task that loads the block (:mod:`rowfold.blocks`).
 
 from __future__ import annotations
 
-import hashlib
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
@@ -23,7 +22,6 @@ import h5py
 import numpy as np
 
 from rowfold.errors import InputError, InputMissingError
-from rowfold.storage import inputs
 from rowfold.storage.inputs import (
     _HDF5_LOCK,
     HDF5_SUFFIXES,
@@ -40,11 +38,11 @@ from rowfold.storage.inputs import (
 CSR_ARRAYS = ("data", "indices", "indptr")
 """The arrays a CSR group holds."""
 
-WRITE_CHUNK = 1 << 20
-"""Elements per on-disk chunk of ``data`` and ``indices`` written by :func:`write_csr`."""
-
-PTR_CHUNK = 1 << 16
-"""Elements per on-disk chunk of ``indptr`` written by :func:`write_csr`."""
+WRITE_CHUNK = 1 << 16
+"""Elements (rows, for the arrays beside the group) per on-disk chunk of every array
+:func:`write_csr` writes. Fixed, whatever the length, so that the chunks of rows already
+written keep their stored bytes when the group is written again with more rows (``update``
+compares those bytes), and growable (HDF5 ``maxshape`` None)."""
 
 
 @dataclass(frozen=True, slots=True)
@@ -236,7 +234,7 @@ def read_csr_rows(
     start, stop : int
         Row range.
     purpose : str
-        Recorded in the read log (``ROWFOLD_READ_LOG``): ``data`` or ``fingerprint``.
+        Recorded in the read log (``ROWFOLD_READ_LOG``): ``data`` or ``digest-rows``.
 
     Returns
     -------
@@ -278,34 +276,6 @@ def _read_from(group: Any, start: int, stop: int) -> tuple[np.ndarray, np.ndarra
     data = np.asarray(group["data"][lo:hi])
     indices = np.asarray(group["indices"][lo:hi], dtype=np.int64)
     return data, indices, ptr - lo
-
-
-def window_hash(ref: ArrayRef, start: int, stop: int) -> str:
-    """SHA-256 of rows ``[start, stop)`` of a CSR group, as (data, indices, indptr)."""
-    digest = hashlib.sha256()
-    for part in read_csr_rows(ref, start, stop, purpose="fingerprint"):
-        digest.update(np.ascontiguousarray(part).tobytes())
-    return digest.hexdigest()
-
-
-def fingerprint(ref: ArrayRef, shape: tuple[int, ...], rows: int | None = None) -> dict[str, Any]:
-    """Fingerprint a dense array or a CSR group (the same record for both).
-
-    Dense arrays go to :func:`rowfold.storage.inputs.fingerprint`; for a CSR group the same
-    row windows are hashed as (data, indices, indptr) by :func:`window_hash`.
-    """
-    if not is_csr(ref):
-        return inputs.fingerprint(ref, shape, rows)
-    upto = shape[0] if rows is None else rows
-    return {
-        "shape": list(shape),
-        "rows": upto,
-        "format": "csr",
-        "windows": [
-            [start, stop, window_hash(ref, start, stop)]
-            for start, stop in inputs.prefix_windows(upto)
-        ],
-    }
 
 
 def write_csr(
@@ -353,9 +323,8 @@ def write_csr(
         _write_zarr(target, group, shape, arrays, extra)
 
 
-def _chunk(name: str, array: np.ndarray) -> tuple[int, ...]:
-    rows = PTR_CHUNK if name.endswith("/indptr") else WRITE_CHUNK
-    return (max(1, min(rows, array.shape[0])), *array.shape[1:])
+def _chunk(array: np.ndarray) -> tuple[int, ...]:
+    return (WRITE_CHUNK, *array.shape[1:])
 
 
 def _write_hdf5(
@@ -373,7 +342,9 @@ def _write_hdf5(
         created = handle.create_group(group)
         created.attrs["shape"] = shape
         for name, array in {**arrays, **extra}.items():
-            handle.create_dataset(name, data=array, chunks=_chunk(name, array))
+            handle.create_dataset(
+                name, data=array, chunks=_chunk(array), maxshape=(None, *array.shape[1:])
+            )
 
 
 def _write_zarr(
@@ -392,20 +363,5 @@ def _write_zarr(
     created = root.require_group(group)
     created.attrs["shape"] = [int(v) for v in shape]
     for name, array in {**arrays, **extra}.items():
-        out = root.create_array(
-            name, shape=array.shape, dtype=array.dtype, chunks=_chunk(name, array)
-        )
+        out = root.create_array(name, shape=array.shape, dtype=array.dtype, chunks=_chunk(array))
         out[...] = array
-
-
-def same_prefix(ref: ArrayRef, recorded: dict[str, Any]) -> bool:
-    """True when a dense array's or CSR group's first rows still hash as ``recorded``."""
-    if not is_csr(ref):
-        return inputs.same_prefix(ref, recorded)
-    try:
-        return all(
-            window_hash(ref, int(start), int(stop)) == digest
-            for start, stop, digest in recorded.get("windows", [])
-        )
-    except InputError:
-        return False
