@@ -34,6 +34,7 @@ from typing import Any
 import blake3
 import numpy as np
 
+from rowfold.errors import InputError
 from rowfold.storage.inputs import (
     _HDF5_LOCK,
     ArrayRef,
@@ -218,13 +219,19 @@ def range_digest(ref: ArrayRef, start: int, stop: int) -> RangeDigest:
         return RangeDigest(digest.hexdigest(), 0, decoded)
     decoded = _update_decoded(digest, ref, start, first * size)
     _log_read(ref, first * size, last * size, "digest-chunks")
-    for row_chunk in range(first, last):
-        for coords in chunks.coordinates(row_chunk):
-            header, data = chunks.read(coords)
-            digest.update(header + (b"A" if data is None else b"S"))
-            if data is not None:
-                digest.update(np.asarray([len(data)], dtype="<i8").tobytes())
-                digest.update(data)
+    try:
+        for row_chunk in range(first, last):
+            for coords in chunks.coordinates(row_chunk):
+                header, data = chunks.read(coords)
+                digest.update(header + (b"A" if data is None else b"S"))
+                if data is not None:
+                    digest.update(np.asarray([len(data)], dtype="<i8").tobytes())
+                    digest.update(data)
+    except Exception as exc:
+        raise InputError(
+            f"{ref.describe()}: the stored chunks of rows {first * size}..{last * size - 1} "
+            f"cannot be read ({exc.__class__.__name__}: {exc})"
+        ) from None
     decoded += _update_decoded(digest, ref, last * size, stop)
     return RangeDigest(digest.hexdigest(), (last - first) * size, decoded)
 
