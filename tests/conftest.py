@@ -26,6 +26,7 @@ NUMERICAL_MODULES = {
     "test_operations.py",
     "test_sparse.py",
     "test_strategies.py",
+    "test_update_guards.py",
 }
 
 

@@ -212,7 +212,7 @@ def csr_chunk_of_data_missing(folder: Path) -> Path:
 
 def csr_chunk_of_indices_missing(folder: Path) -> Path:
     job = csr_input(folder, 2)
-    drop(folder / "in.zarr", "S/indices/7")  # entries 112..127: rows 56..63
+    drop(folder / "in.zarr", "S/indices/7")  # entries 112..127: rows 56..63 (a block may hold part)
     return job
 
 
@@ -338,7 +338,11 @@ CATALOGUE: list[tuple[str, Callable[[Path], Path], tuple[str, ...]]] = [
     ("weights-chunk-missing", zarr2_chunk_of_weights_missing, ("in.zarr:w", "chunk 1", "rows 16")),
     ("zarr3-shard-missing", zarr3_shard_of_a_missing, ("in.zarr:A", "chunk c/1/0", "rows 32..63")),
     ("csr-data-missing", csr_chunk_of_data_missing, ("in.zarr:S/data", "chunk c/4", "rows 32..39")),
-    ("csr-indices-missing", csr_chunk_of_indices_missing, ("S/indices", "chunk 7", "rows 56..63")),
+    (
+        "csr-indices-missing",
+        csr_chunk_of_indices_missing,
+        ("S/indices", "chunk 7", "entries 1", ", rows "),
+    ),
     ("csr-indptr-missing", csr_chunk_of_indptr_missing, ("S/indptr", "chunk c/2", "rows 32..")),
     ("hdf5-chunk-unwritten", hdf5_chunk_never_written, ("in.h5:A", "chunk", "rows 48..63")),
     ("hdf5-never-written", hdf5_dataset_never_written, ("in.h5:A", "never written")),

@@ -176,7 +176,9 @@ def test_inspect_shows_provenance(tmp_path: Path, capsys: pytest.CaptureFixture[
     prov = shown["attrs"]["provenance"]
     for key in ("rowfold", "numpy", "scipy", "dask", "h5py", "zarr", "blas", "host", "started"):
         assert key in prov
-    assert shown["attrs"]["inputs"]["matrix"]["windows"]
+    matrix = shown["attrs"]["inputs"]["matrix"]
+    assert matrix["hash"] == "blake3" and len(matrix["content"]) == 64
+    assert matrix["blocks"] == 2 and matrix["rows"] == 300  # 150 rows per block
 
 
 def test_killed_run_resumes_without_rereading_finished_blocks(

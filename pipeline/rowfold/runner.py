@@ -6,7 +6,6 @@ whole result is ready; the result store and its reports are committed together.
 
 from __future__ import annotations
 
-import json
 import os
 import time
 from collections.abc import Iterator
@@ -43,7 +42,8 @@ from rowfold.refine import refine
 from rowfold.report import CAUTION, render_html, to_json
 from rowfold.solve import Solution, Statistics, solve, statistics
 from rowfold.spec import METHOD_NAMES, ClusterSpec, Job, check_fits_input, load_job
-from rowfold.storage.checkpoints import close_checkpoints, open_checkpoints
+from rowfold.storage.checkpoints import block_stamp, close_checkpoints, open_checkpoints
+from rowfold.storage.checkpoints import job_digest as job_digest_of
 
 __all__ = [
     "METHOD_NAMES",
@@ -193,23 +193,32 @@ def _run_with_engine(
         workdir = stack.enter_context(storage.scratch_folder(job.output.path))
         with clock.stage("cluster_start"):
             engine = stack.enter_context(_engine(job, progress, inline))
-        inputs = _fingerprints(job, plan, engine)
+        with clock.stage("fingerprint"):
+            inputs = _fingerprints(job, plan, engine)
         checkpoints = _checkpoints(job, plan, inputs, resume)
         ctx = Context(engine, wants_q(job), workdir, checkpoints)
         return _run_on(job, plan, ctx, inputs, clock, started)
 
 
 def _checkpoints(job: Job, plan: BlockPlan, inputs: dict[str, Any], resume: bool) -> Path | None:
-    """The checkpoint folder for methods that checkpoint their first pass (tsqr)."""
+    """The checkpoint folder for methods that checkpoint their first pass (tsqr).
+
+    Each block's checkpoint is stamped with the digest of the job (without its cluster and
+    update sections) and of the block's rows in every input; on ``resume`` only those whose
+    stamp and content still hold are kept (see :mod:`rowfold.storage.checkpoints`).
+    """
     if job.method.name != "tsqr" or job.solve.scale_columns:
         return None
-    resolved = {key: value for key, value in job.resolved.items() if key != "cluster"}
-    manifest = {
-        "job": resolved,
-        "rows": [plan.first_row, plan.rows, plan.per_block],
-        "inputs": inputs,
-    }
-    folder, _ = open_checkpoints(job.output.path, json.loads(json.dumps(manifest)), resume)
+    resolved = {k: v for k, v in job.resolved.items() if k not in ("cluster", "update")}
+    job_digest = job_digest_of(resolved)
+    names = sorted(inputs)
+    blocks = [
+        [start, stop, block_stamp(job_digest, start, stop, row_digests)]
+        for (start, stop), *row_digests in zip(
+            plan.bounds, *(inputs[name]["block_digests"] for name in names), strict=True
+        )
+    ]
+    folder, _, _ = open_checkpoints(job.output.path, {"job": job_digest, "blocks": blocks}, resume)
     return folder
 
 
@@ -271,6 +280,7 @@ def _run_on(
             plan = replace(plan, column_scale=tuple(scale))
     with clock.stage("factor"):
         fact = get_method(job.method.name)(plan, job.method, ctx)
+    extra["warnings"].extend(fact.details.get("warnings", []))
     with clock.stage("solve"):
         solution = None if fact.qhb is None else solve(fact.R, fact.qhb, job.solve.rank_tolerance)
     refine_passes = 0
@@ -305,13 +315,13 @@ def _run_on(
             peak_memory=engine.peak_memory_bytes(),
             extra={
                 **extra,
-                "inputs": inputs,
+                "inputs": storage.public_record(inputs),
                 "provenance": provenance(started, time.time()),
                 "caution": CAUTION,
             },
         )
         with clock.stage("write"):
-            state = {**fact.sums, **check.sums}
+            state = {**fact.sums, **check.sums, "input_digests": inputs}
             return _commit(writer, job, plan, fact, solution, stats, report, scale, state)
 
 
@@ -374,8 +384,9 @@ def update_job(job: Job, progress: Progress | None = None, inline: bool = False)
     Raises
     ------
     InputError
-        When there is no earlier result, or the input no longer starts with the rows it
-        consumed (run ``run`` instead).
+        When there is no earlier result, a key that changes the answer differs from the
+        stored one, or the input no longer starts with the rows it consumed (run ``run``
+        instead).
     """
     from rowfold import update
 
@@ -384,23 +395,30 @@ def update_job(job: Job, progress: Progress | None = None, inline: bool = False)
         raise InputError(f"{out}: no earlier result to update; run `rowfold run` first")
     started = time.time()
     clock = _Clock()
-    plan = plan_job(job)
     state, attrs = storage.read_state(out)
+    update.check_answer_keys(job, attrs, out)
+    plan = plan_job(job)
     rows_done = int(attrs.get("rows_done", -1))
-    if "R" not in state or state["R"].shape[0] != plan.cols or rows_done > plan.rows:
+    if "R" not in state or state["R"].shape[0] != plan.cols or not 0 <= rows_done <= plan.rows:
         raise InputError(
             f"{out}: the earlier result does not match the input ({plan.rows} x {plan.cols}); "
             "run `rowfold run` instead of update"
         )
-    update.check_prefix(plan, attrs, rows_done)
-    if rows_done == plan.rows:
-        raise NoNewRowsError(f"{out}: no rows added since the earlier result ({rows_done} rows)")
     job = replace(job, gates=replace(job.gates, orthogonality=None, residual=None))
     with ExitStack() as stack:
         engine = stack.enter_context(_engine(job, progress or Progress(), inline))
+        with clock.stage("prefix_check"):
+            check = update.verify_prefix(plan, state, attrs, job.update, engine, out)
+        if rows_done == plan.rows:
+            raise NoNewRowsError(
+                f"{out}: no rows added since the earlier result ({rows_done} rows)"
+            )
         with clock.stage("factor"):
             folded = update.fold(plan, state, attrs, engine)
-        return _commit_update(job, plan, folded, engine, clock, started)
+        with clock.stage("fingerprint"):
+            added = _fingerprints(job, replace(plan, first_row=rows_done), engine)
+        inputs = storage.extend_records(check.records, added)
+        return _commit_update(job, plan, folded, engine, clock, started, check, inputs)
 
 
 class NoNewRowsError(RowfoldError):
@@ -410,9 +428,17 @@ class NoNewRowsError(RowfoldError):
 
 
 def _commit_update(
-    job: Job, plan: BlockPlan, folded: Any, engine: Engine, clock: _Clock, started: float
+    job: Job,
+    plan: BlockPlan,
+    folded: Any,
+    engine: Engine,
+    clock: _Clock,
+    started: float,
+    check: Any,
+    inputs: dict[str, Any],
 ) -> RunOutcome:
-    """Solve, report and commit an updated result."""
+    """Solve, report and commit an updated result (with what the prefix check proved and
+    the input digests extended by the new rows)."""
     fact = folded.fact
     solution = stats = None
     if fact.qhb is not None:
@@ -420,10 +446,11 @@ def _commit_update(
         stats = statistics(solution, folded.residual_sq, folded.rows_used)
     sums = {**fact.sums, "res2": folded.residual_sq}
     extra = {
-        "warnings": _update_warnings(job),
+        "warnings": [*check.warnings, *_update_warnings(job)],
         "update": fact.details["update"],
+        "prefix_check": check.report,
         "q_state": STALE_Q_TEXT,
-        "inputs": _fingerprints(job, plan, engine),
+        "inputs": storage.public_record(inputs),
         "provenance": provenance(started, time.time()),
         "caution": CAUTION,
     }
@@ -440,7 +467,7 @@ def _commit_update(
         passes=1,
         extra=extra,
     )
-    state_sums = {**fact.sums, "rows_used": folded.rows_used}
+    state_sums = {**fact.sums, "rows_used": folded.rows_used, "input_digests": inputs}
     if folded.residual_factor is not None:
         factor = folded.residual_factor
         state_sums["rtr"] = factor.conj().T @ factor
@@ -546,19 +573,25 @@ def _scaling_figures(R_scaled: np.ndarray, scale: np.ndarray) -> dict[str, Any]:
 
 
 def _fingerprints(job: Job, plan: BlockPlan, engine: Engine) -> dict[str, Any]:
-    """Fingerprint each input on the workers (they are the ones that see the files)."""
+    """Digest every row block of each input on the workers (they are the ones that see the
+    files): the records the store keeps for ``update`` and that checkpoints are tied to
+    (:mod:`rowfold.storage.digests`). The plan's blocks cover ``[plan.first_row, m)``."""
     refs = {"matrix": plan.matrix, "rhs": plan.rhs, "weights": plan.weights}
     shapes = {
-        "matrix": (plan.rows, plan.cols),
+        "matrix": (plan.rows, plan.input_cols),
         "rhs": (plan.rows,) if plan.rhs_1d else (plan.rows, plan.rhs_cols),
         "weights": (plan.rows,),
     }
     present = {name: ref for name, ref in refs.items() if ref is not None}
-    tasks = [task(storage.fingerprint, ref, shapes[name]) for name, ref in present.items()]
-    values = engine.compute(tasks, "fingerprint inputs")
+    sources = tuple((ref, name == "matrix" and plan.sparse) for name, ref in present.items())
+    bounds = plan.bounds
+    tasks = [task(storage.block_digests, sources, start, stop) for start, stop in bounds]
+    per_block = engine.compute(tasks, "fingerprint inputs")
     return {
-        name: {"path": ref.path, "dataset": ref.name, **value}
-        for (name, ref), value in zip(present.items(), values, strict=True)
+        name: storage.input_record(
+            ref, csr, shapes[name], bounds, [digests[i] for digests in per_block]
+        )
+        for i, ((name, ref), (_, csr)) in enumerate(zip(present.items(), sources, strict=True))
     }
 
 
@@ -638,7 +671,9 @@ def _write_state(
     """What ``update`` needs to fold in later rows without reading these again.
 
     ``state/R`` and ``state/qhb`` are in working coordinates (after any column scaling),
-    ``state/residual_factor`` F has F^H F = r^H r, ``state/gram`` is A^H A.
+    ``state/residual_factor`` F has F^H F = r^H r, ``state/gram`` is A^H A;
+    ``state/digest_bounds`` and ``state/digest_<input>`` are the row-block digests of the
+    inputs (:func:`rowfold.storage.digest_arrays`).
     """
     writer.put("state/R", fact.R)
     writer.put("state/gram", np.asarray(sums["gram"]))
@@ -646,6 +681,8 @@ def _write_state(
         writer.put("state/qhb", fact.qhb)
         writer.put("state/residual_factor", residual_factor(np.asarray(sums["rtr"])))
     writer.put("state/column_scale", np.ones(plan.cols) if scale is None else scale)
+    for name, array in storage.digest_arrays(sums["input_digests"]).items():
+        writer.put(f"state/{name}", array)
     writer.set_attrs(
         {
             "rows_done": plan.rows,

@@ -35,6 +35,7 @@ SKETCH_ROWS_PER_COLUMN = 8
 CORES_OVERCOMMIT = 4
 # cluster.dashboard: true serves Dask's dashboard here (a free port on the loopback only).
 LOOPBACK_DASHBOARD = "127.0.0.1:0"
+VERIFY_MODES = ("all", "sample")
 
 # Which method takes which option (every method takes ``precision``).
 METHOD_OPTIONS: dict[str, tuple[str, ...]] = {
@@ -194,6 +195,24 @@ class GateSpec:
 
 
 @dataclass(frozen=True, slots=True)
+class UpdateSpec:
+    """How ``rowfold update`` proves that the input still starts with the old rows.
+
+    Attributes
+    ----------
+    verify : str
+        ``"all"`` (default): every old row block of every input is hashed and compared with
+        the digests the earlier result recorded; ``"sample"``: only a random share of the
+        old blocks (always the last), which the report and a warning say.
+    sample_fraction : float
+        With ``verify: sample``, the share of old row blocks checked, in (0, 1].
+    """
+
+    verify: str = "all"
+    sample_fraction: float = 0.1
+
+
+@dataclass(frozen=True, slots=True)
 class ClusterSpec:
     """Where the Dask work runs.
 
@@ -246,7 +265,7 @@ class Job:
         Free text used in reports.
     source : Path
         The job file it came from.
-    input, method, output, solve, gates, cluster
+    input, method, output, solve, gates, cluster, update
         The sections, each validated.
     resolved : Mapping
         The job as plain data after overrides and path resolution (goes into the store).
@@ -265,6 +284,7 @@ class Job:
     cluster: ClusterSpec = field(default_factory=ClusterSpec)
     resolved: Mapping[str, Any] = field(default_factory=lambda: MappingProxyType({}))
     places: Mapping[str, str] = field(default_factory=lambda: MappingProxyType({}))
+    update: UpdateSpec = field(default_factory=UpdateSpec)
 
     def resolved_json(self) -> str:
         """Return the resolved job as a JSON string."""
@@ -680,6 +700,20 @@ def _parse_gates(doc: _Doc) -> GateSpec:
     )
 
 
+def _share(value: Any) -> float:
+    if isinstance(value, bool) or not isinstance(value, int | float) or not 0 < value <= 1:
+        raise TypeError("expected a fraction in (0, 1]")
+    return float(value)
+
+
+def _parse_update(doc: _Doc) -> UpdateSpec:
+    section = _Section(doc, ("update",), ("verify", "sample_fraction"))
+    return UpdateSpec(
+        verify=section.get("verify", _one_of(VERIFY_MODES), "all"),
+        sample_fraction=section.get("sample_fraction", _share, 0.1),
+    )
+
+
 CLUSTER_KEYS = (
     "address",
     "workers",
@@ -808,7 +842,7 @@ def check_fits_input(job: Job, rows: int, cols: int) -> None:
         )
 
 
-SECTIONS = ("name", "input", "method", "output", "solve", "gates", "cluster")
+SECTIONS = ("name", "input", "method", "output", "solve", "gates", "cluster", "update")
 
 
 def load_job(path: str | Path, overrides: tuple[str, ...] = ()) -> Job:
@@ -853,6 +887,7 @@ def load_job(path: str | Path, overrides: tuple[str, ...] = ()) -> Job:
         gates=_parse_gates(doc),
         cluster=_parse_cluster(doc, base),
         places=MappingProxyType({".".join(key): doc.where(key) for key in doc.lines}),
+        update=_parse_update(doc),
     )
     return _with_resolved(job)
 
@@ -868,6 +903,7 @@ def _with_resolved(job: Job) -> Job:
         "solve": asdict(job.solve),
         "gates": asdict(job.gates),
         "cluster": asdict(job.cluster),
+        "update": asdict(job.update),
     }
     resolved = json.loads(json.dumps(plain, default=str))
     return Job(
@@ -881,4 +917,5 @@ def _with_resolved(job: Job) -> Job:
         cluster=job.cluster,
         resolved=MappingProxyType(resolved),
         places=job.places,
+        update=job.update,
     )

@@ -6,9 +6,14 @@ R, ``Q^H b`` and a residual factor F (``F^H F = r^H r``), plus ``A^H A``. New ro
 augmented factors are reduced by one more stacked-R step (the TSQR reduction), so the result
 equals a full refactorization up to rounding, without reading the old rows again.
 
-Before that, the inputs' first ``rows_done`` rows are checked against the fingerprints the
-earlier result recorded (hashes of sampled row windows and of the last window); a mismatch
-is refused (exit 2), since the old factor no longer describes the input.
+Before that, two things must hold, or the update is refused (exit 2) and ``run`` is the way:
+
+* every job key that changes the answer (:data:`ANSWER_KEYS`) equals the one the earlier
+  result was computed with (:func:`check_answer_keys`);
+* the inputs still start with the rows the earlier result consumed: every old row block of
+  every input is hashed again and compared with the digests the earlier result recorded
+  (:func:`verify_prefix`; :mod:`rowfold.storage.digests`). ``update.verify: sample`` checks
+  only a share of the blocks, and the report says exactly which.
 
 Q is not carried forward: an updated store has no Q (``q_state`` says so); run ``run`` to
 form it again.
@@ -16,7 +21,13 @@ form it again.
 
 from __future__ import annotations
 
+import itertools
+import json
+import math
+import secrets
+import time
 from dataclasses import dataclass, replace
+from pathlib import Path
 from typing import Any
 
 import numpy as np
@@ -28,6 +39,7 @@ from rowfold.kernels import positive_diagonal, stacked_r
 from rowfold.methods import tsqr
 from rowfold.methods._graph import task
 from rowfold.methods.base import Engine, Factorization
+from rowfold.spec import Job, UpdateSpec
 
 
 @dataclass(frozen=True)
@@ -59,24 +71,224 @@ def count_used_rows(plan: BlockPlan, index: int) -> int:
     return int(np.count_nonzero(load_weights(plan, index)))
 
 
-def check_prefix(plan: BlockPlan, attrs: dict[str, Any], rows_done: int) -> None:
-    """Refuse when an input no longer starts with the rows the earlier result consumed."""
-    recorded = attrs.get("inputs") or {}
+ANSWER_KEYS: tuple[tuple[str, str], ...] = (
+    ("input", "matrix"),
+    ("input", "rhs"),
+    ("input", "weights"),
+    ("input", "fixed_columns"),
+    ("method", "precision"),
+    ("solve", "scale_columns"),
+    ("solve", "rank_tolerance"),
+)
+"""Job keys whose value changes the answer: an update must use the stored ones.
+
+The others do not: ``input.path`` (the digests prove the rows, wherever the file is),
+``input.rows_per_block`` and ``method.*`` other than ``precision`` (the same R up to
+rounding), the outputs, gates and cluster keys."""
+
+
+def check_answer_keys(job: Job, attrs: dict[str, Any], output: Path) -> None:
+    """Refuse when a key of :data:`ANSWER_KEYS` differs from the earlier result's.
+
+    Raises
+    ------
+    InputError
+        Naming the key, the stored value and the new one.
+    """
+    stored = attrs.get("job")
+    if not isinstance(stored, dict):
+        raise InputError(
+            f"{output}: the earlier result records no job; run `rowfold run` instead of update"
+        )
+    for section, key in ANSWER_KEYS:
+        old = (stored.get(section) or {}).get(key)
+        new = job.resolved[section][key]
+        if _plain(old) != _plain(new):
+            raise InputError(
+                f"key '{section}.{key}': the earlier result was computed with "
+                f"{json.dumps(_plain(old))}, this job has {json.dumps(_plain(new))}; an update "
+                "keeps every key that changes the answer; run `rowfold run` instead of update"
+            )
+
+
+def _plain(value: Any) -> Any:
+    """A job value in plain JSON form (lists for tuples), for comparing and showing."""
+    return json.loads(json.dumps(value, default=str))
+
+
+def _sources(plan: BlockPlan) -> dict[str, tuple[storage.ArrayRef, bool]]:
+    """The inputs of a plan by name, each with whether it is a CSR group."""
     refs = {"matrix": plan.matrix, "rhs": plan.rhs, "weights": plan.weights}
-    for name, ref in refs.items():
-        if (ref is None) != (name not in recorded):
+    return {
+        name: (ref, name == "matrix" and plan.sparse)
+        for name, ref in refs.items()
+        if ref is not None
+    }
+
+
+@dataclass(frozen=True)
+class PrefixCheck:
+    """What :func:`verify_prefix` proved, and the records to extend after the update.
+
+    Attributes
+    ----------
+    report : dict
+        The report's ``prefix_check`` entry.
+    records : dict
+        The earlier result's per-input digest records.
+    warnings : list of str
+        What the report's warnings must say (rows not checked in sample mode).
+    """
+
+    report: dict[str, Any]
+    records: dict[str, Any]
+    warnings: list[str]
+
+
+def verify_prefix(
+    plan: BlockPlan,
+    state: dict[str, np.ndarray],
+    attrs: dict[str, Any],
+    spec: UpdateSpec,
+    engine: Engine,
+    output: Path,
+) -> PrefixCheck:
+    """Check that the inputs still start with the rows the earlier result consumed.
+
+    Every old row block of every input (``update.verify: all``), or a random share of them
+    that always holds the last (``sample``), is hashed again on the workers and compared
+    with the digests the earlier result recorded.
+
+    Raises
+    ------
+    InputError
+        When the earlier result holds no digests, an input's layout changed (stored bytes
+        cannot be compared), or a block differs (naming the input and the first such block).
+    """
+    started = time.perf_counter()
+    rows_done = int(attrs["rows_done"])
+    records = storage.stored_records(state, attrs)
+    if records is None:
+        raise InputError(
+            f"{output}: the earlier result holds no row-block digests (written before rowfold "
+            "recorded them), so update cannot prove the old rows unchanged; run `rowfold run` "
+            "once, and update after that"
+        )
+    sources = _sources(plan)
+    _check_records(sources, records, rows_done)
+    bounds = [(int(a), int(b)) for a, b in records["matrix"]["bounds"]]
+    chosen, seed = _chosen_blocks(len(bounds), spec)
+    refs = tuple(sources.values())
+    tasks = [task(storage.block_digests, refs, *bounds[i]) for i in chosen]
+    found = engine.compute(tasks, "update: check the old rows")
+    tallies = {name: [0, 0] for name in sources}
+    for index, digests in zip(chosen, found, strict=True):
+        for (name, (ref, _)), digest in zip(sources.items(), digests, strict=True):
+            if digest.digest != records[name]["block_digests"][index]:
+                start, stop = bounds[index]
+                raise InputError(
+                    f"{ref.describe()}: row block {index} (rows {start}..{stop - 1}) differs "
+                    f"from the rows the earlier result consumed; update needs the input to "
+                    f"still start with those {rows_done} rows; run `rowfold run` instead of "
+                    "update"
+                )
+            tallies[name][0] += digest.stored
+            tallies[name][1] += digest.decoded
+    checked = sum(bounds[i][1] - bounds[i][0] for i in chosen)
+    report = _check_report(sources, tallies, spec, bounds, chosen, seed, rows_done, checked)
+    report["seconds"] = round(time.perf_counter() - started, 4)
+    warnings = []
+    if checked < rows_done:
+        warnings.append(
+            f"update.verify: sample: {rows_done - checked} of the {rows_done} old rows were "
+            f"not checked ({len(chosen)} of {len(bounds)} row blocks were); a change there "
+            "goes unnoticed; use update.verify: all to check every row"
+        )
+    return PrefixCheck(report, records, warnings)
+
+
+def _check_records(
+    sources: dict[str, tuple[storage.ArrayRef, bool]], records: dict[str, Any], rows_done: int
+) -> None:
+    """Refuse records that cannot prove this job's inputs: missing, incomplete, or taken
+    under another storage layout."""
+    for name, (ref, csr) in sources.items():
+        record = records.get(name)
+        if record is None:
             raise InputError(
-                f"input.{name}: present in one of the job and the earlier result but not the "
-                "other; run `rowfold run` instead of update"
+                f"{ref.describe()}: the earlier result holds no digests of input.{name}; "
+                "run `rowfold run` instead of update"
             )
-        if ref is None:
-            continue
-        windows = [w for w in recorded[name].get("windows", []) if int(w[1]) <= rows_done]
-        if not storage.same_prefix(ref, {"windows": windows}):
+        bounds = record["bounds"]
+        starts_ok = bool(bounds) and bounds[0][0] == 0 and bounds[-1][1] == rows_done
+        if not starts_ok or any(a[1] != b[0] for a, b in itertools.pairwise(bounds)):
             raise InputError(
-                f"{ref.describe()}: the first {rows_done} rows differ from those the earlier "
-                "result consumed; run `rowfold run` instead of update"
+                f"{ref.describe()}: the earlier result's digests do not cover its "
+                f"{rows_done} rows; run `rowfold run` instead of update"
             )
+        if record.get("format") != ("csr" if csr else "dense"):
+            raise InputError(
+                f"{ref.describe()}: the earlier result read it as {record.get('format')}; "
+                "run `rowfold run` instead of update"
+            )
+        change = storage.layout_change(record["layout"], storage.input_layout(ref, csr))
+        if change is not None:
+            raise InputError(
+                f"{ref.describe()}: its storage layout changed since the earlier result "
+                f"({change}); stored chunk bytes cannot be compared; run `rowfold run` "
+                "instead of update"
+            )
+
+
+def _chosen_blocks(blocks: int, spec: UpdateSpec) -> tuple[list[int], int | None]:
+    """The old blocks to check: all, or a random share holding the last (and the seed)."""
+    if spec.verify == "all":
+        return list(range(blocks)), None
+    seed = secrets.randbits(63)
+    wanted = max(1, math.ceil(spec.sample_fraction * blocks))
+    others = np.random.default_rng(seed).permutation(blocks - 1)[: wanted - 1]
+    return sorted({blocks - 1, *(int(i) for i in others)}), seed
+
+
+def _check_report(
+    sources: dict[str, tuple[storage.ArrayRef, bool]],
+    tallies: dict[str, list[int]],
+    spec: UpdateSpec,
+    bounds: list[tuple[int, int]],
+    chosen: list[int],
+    seed: int | None,
+    rows_done: int,
+    checked: int,
+) -> dict[str, Any]:
+    """The report's ``prefix_check`` entry: what was hashed, how, and what was not."""
+    inputs = {}
+    for name, (ref, csr) in sources.items():
+        stored, decoded = tallies[name]
+        how = [("stored chunk bytes", stored), ("decoded rows", decoded)]
+        inputs[name] = {
+            "array": ref.describe(),
+            "unit": "elements" if csr else "rows",
+            "stored_chunk_items": stored,
+            "decoded_items": decoded,
+            "method": " and ".join(label for label, count in how if count) or "nothing",
+        }
+    report: dict[str, Any] = {
+        "verify": spec.verify,
+        "result": "unchanged",
+        "hash": "blake3",
+        "rows_before": rows_done,
+        "blocks": len(bounds),
+        "blocks_checked": len(chosen),
+        "rows_checked": checked,
+        "rows_not_checked": rows_done - checked,
+        "fraction_checked": checked / rows_done if rows_done else 1.0,
+        "inputs": inputs,
+    }
+    if spec.verify == "sample":
+        report.update(
+            {"sample_fraction": spec.sample_fraction, "sample_seed": seed, "checked_blocks": chosen}
+        )
+    return report
 
 
 def new_rows_plan(plan: BlockPlan, rows_done: int, scale: np.ndarray) -> BlockPlan:

@@ -9,19 +9,27 @@ path from the root to leaf i (the tree's factors applied back down).
 
 from __future__ import annotations
 
+import os
 from pathlib import Path
 from typing import Any
 
 import numpy as np
 
 from rowfold.blocks import BlockPlan, BlockSource, load_for_products
+from rowfold.errors import RunError
 from rowfold.kernels import householder_q, householder_r, metrics, positive_diagonal, stacked_r
 from rowfold.kernels import sparse as sparse_kernels
 from rowfold.kernels.fold import folded_r
 from rowfold.methods._graph import task, tree_levels
 from rowfold.methods.base import Context, Engine, Factorization
 from rowfold.spec import MethodSpec
-from rowfold.storage.checkpoints import load_checkpoint, save_checkpoint
+from rowfold.storage.checkpoints import (
+    CheckpointError,
+    block_stamps,
+    leaf_name,
+    load_checkpoint,
+    save_checkpoint,
+)
 
 
 def leaf_factor(
@@ -51,18 +59,30 @@ def leaf_factor(
 
 
 def checkpointed_leaf(
-    source: BlockSource, index: int, path: str, keep_q: bool
+    source: BlockSource, index: int, path: str, keep_q: bool, stamp: str
 ) -> tuple[Any, Any, Any, metrics.Sums]:
-    """:func:`leaf_factor`, saving its result to ``path`` for a later resume."""
+    """:func:`leaf_factor`, saving its result to ``path`` under the block's ``stamp`` (the
+    digest of the job and of the block's rows) for a later resume."""
     result = leaf_factor(source, index, keep_q)
     R, C, _, sums = result
-    save_checkpoint(path, {"R": R, "C": C, "a_fro2": sums["a_fro2"], "gram": sums["gram"]})
+    arrays = {"R": R, "C": C, "a_fro2": sums["a_fro2"], "gram": sums["gram"]}
+    save_checkpoint(path, arrays, stamp)
     return result
 
 
-def resumed_leaf(path: str) -> tuple[Any, Any, Any, metrics.Sums]:
-    """A leaf result saved by :func:`checkpointed_leaf` (its block is not read again)."""
-    saved = load_checkpoint(path)
+def resumed_leaf(path: str, stamp: str) -> tuple[Any, Any, Any, metrics.Sums]:
+    """A leaf result saved by :func:`checkpointed_leaf` (its block is not read again).
+
+    The runner kept only checkpoints that held when the run started; one that no longer
+    does (changed since) fails the run with its name, and the next resume discards it.
+    """
+    try:
+        saved = load_checkpoint(path, stamp)
+    except CheckpointError as exc:
+        raise RunError(
+            f"checkpoint {path}: {exc} (it changed during the run); run `rowfold run "
+            "--resume` again to compute that block again"
+        ) from None
     sums = {"a_fro2": float(saved["a_fro2"]), "gram": saved["gram"]}
     return saved["R"], saved.get("C"), None, sums
 
@@ -96,12 +116,15 @@ def fan_in_of(tree: str | int, leaves: int) -> int:
 
 def factor(plan: BlockPlan, spec: MethodSpec, ctx: Context) -> Factorization:
     """Run Householder TSQR over the plan's row blocks."""
-    leaves = None
+    leaves: list[_Leaf] | None = None
+    notes: list[str] = []
     if ctx.checkpoints is not None:
-        leaves = _checkpoint_leaves(plan, ctx.checkpoints, ctx.want_q)
+        leaves, notes = _checkpoint_leaves(plan, ctx.checkpoints, ctx.want_q)
     fact = factor_source(plan, spec.tree, ctx.engine, ctx.want_q, leaves=leaves)
     if leaves is not None:
         fact.details["resumed_blocks"] = sum(1 for leaf in leaves if leaf.resumed)
+    if notes:
+        fact.details["warnings"] = notes
     return fact
 
 
@@ -113,16 +136,23 @@ class _Leaf:
         self.resumed = resumed
 
 
-def _checkpoint_leaves(plan: BlockPlan, folder: Path, keep_q: bool) -> list[_Leaf]:
-    """Leaf tasks that save checkpoints, or load the ones a killed run left."""
+def _checkpoint_leaves(
+    plan: BlockPlan, folder: Path, keep_q: bool
+) -> tuple[list[_Leaf], list[str]]:
+    """Leaf tasks that save checkpoints, or load the ones a killed run left (the runner has
+    removed those whose rows or job changed, or whose content does not match its digest),
+    and the notes on those removed."""
+    stamps, notes = block_stamps(folder)
+    if len(stamps) != plan.blocks:
+        raise RunError(f"{folder}: the checkpoint manifest does not describe this run's blocks")
     leaves = []
-    for i in range(plan.blocks):
-        path = folder / f"tsqr-leaf-{i:07d}.npz"
-        if path.exists():
-            leaves.append(_Leaf(task(resumed_leaf, str(path)), True))
+    for i, stamp in enumerate(stamps):
+        path = str(folder / leaf_name(i))
+        if os.path.isfile(path):
+            leaves.append(_Leaf(task(resumed_leaf, path, stamp), True))
         else:
-            leaves.append(_Leaf(task(checkpointed_leaf, plan, i, str(path), keep_q), False))
-    return leaves
+            leaves.append(_Leaf(task(checkpointed_leaf, plan, i, path, keep_q, stamp), False))
+    return leaves, notes
 
 
 def factor_source(

@@ -2,19 +2,27 @@
 
 Inputs are read by row range from HDF5 or Zarr, dense (:mod:`.inputs`) or as a CSR group
 (:mod:`.csr`); results and reports are written atomically (:mod:`.results`). Nothing here
-knows about Dask. ``fingerprint`` and ``same_prefix`` are the format-aware ones from
-:mod:`.csr`.
+knows about Dask. Row-block digests of inputs (what ``update`` and ``run --resume`` check)
+are in :mod:`.digests`, first-pass checkpoints in :mod:`.checkpoints`.
 """
 
 from rowfold.storage.csr import (
     CsrInfo,
     describe_csr,
     describe_matrix,
-    fingerprint,
     is_csr,
     read_csr_rows,
-    same_prefix,
     write_csr,
+)
+from rowfold.storage.digests import (
+    block_digests,
+    digest_arrays,
+    extend_records,
+    input_layout,
+    input_record,
+    layout_change,
+    public_record,
+    stored_records,
 )
 from rowfold.storage.inputs import (
     ArrayInfo,
@@ -41,22 +49,28 @@ __all__ = [
     "ArrayRef",
     "CsrInfo",
     "ResultWriter",
+    "block_digests",
     "check_output_path",
     "close_open_inputs",
     "describe_array",
     "describe_csr",
     "describe_matrix",
     "describe_path",
-    "fingerprint",
+    "digest_arrays",
+    "extend_records",
+    "input_layout",
+    "input_record",
     "is_csr",
+    "layout_change",
+    "public_record",
     "read_csr_rows",
     "read_result",
     "read_rows",
     "read_state",
     "remove_litter",
     "report_paths",
-    "same_prefix",
     "scratch_folder",
+    "stored_records",
     "write_arrays",
     "write_csr",
     "write_text_atomic",

@@ -14,7 +14,6 @@ to the task that loads the block (:mod:`rowfold.blocks`).
 
 from __future__ import annotations
 
-import hashlib
 import warnings
 from collections.abc import Callable
 from dataclasses import dataclass
@@ -25,7 +24,6 @@ import h5py
 import numpy as np
 
 from rowfold.errors import InputError, InputMissingError
-from rowfold.storage import inputs
 from rowfold.storage.chunks import require_hdf5_chunks, require_zarr_chunks, row_range
 from rowfold.storage.inputs import (
     _HDF5_LOCK,
@@ -49,11 +47,11 @@ ChunkCheck = Callable[[str, int, int, Callable[[int, int], str]], None]
 CSR_ARRAYS = ("data", "indices", "indptr")
 """The arrays a CSR group holds."""
 
-WRITE_CHUNK = 1 << 20
-"""Elements per on-disk chunk of ``data`` and ``indices`` written by :func:`write_csr`."""
-
-PTR_CHUNK = 1 << 16
-"""Elements per on-disk chunk of ``indptr`` written by :func:`write_csr`."""
+WRITE_CHUNK = 1 << 16
+"""Elements (rows, for the arrays beside the group) per on-disk chunk of every array
+:func:`write_csr` writes. Fixed, whatever the length, so that the chunks of rows already
+written keep their stored bytes when the group is written again with more rows (``update``
+compares those bytes), and growable (HDF5 ``maxshape`` None)."""
 
 
 @dataclass(frozen=True, slots=True)
@@ -247,7 +245,7 @@ def read_csr_rows(
     start, stop : int
         Row range.
     purpose : str
-        Recorded in the read log (``ROWFOLD_READ_LOG``): ``data`` or ``fingerprint``.
+        Recorded in the read log (``ROWFOLD_READ_LOG``): ``data`` or ``digest-rows``.
 
     Returns
     -------
@@ -279,6 +277,34 @@ def read_csr_rows(
             f"{ref.describe()}: rows {start}..{stop - 1} cannot be read "
             f"({exc.__class__.__name__}: {exc})"
         ) from None
+
+
+def require_csr_chunks(ref: ArrayRef, start: int, stop: int) -> None:
+    """Raise InputError when a stored chunk holding rows ``[start, stop)`` of a CSR group is
+    missing (named by the matrix rows that own its entries); reads only ``indptr``."""
+    if not ref.checks_chunks:
+        return
+    if ref.is_hdf5:
+        with _HDF5_LOCK:
+            arrays = {part: open_dataset(ref.path, ref.part(part).name) for part in CSR_ARRAYS}
+            _check_parts(arrays, start, stop, _hdf5_check(ref, arrays))
+        return
+    root = _open_zarr(ref.path)
+    group = root[ref.name] if ref.name not in ("", ".", "/") else root
+    _check_parts(group, start, stop, _zarr_check(ref, group))
+
+
+def _check_parts(group: Any, start: int, stop: int, check: ChunkCheck | None) -> None:
+    """Run ``check`` over the indptr entries of rows ``[start, stop)`` and the value ranges
+    they point to."""
+    if check is None:
+        return
+    check("indptr", start, stop + 1, row_range)
+    ptr = np.asarray(group["indptr"][start : stop + 1], dtype=np.int64)
+    lo, hi = (int(ptr[0]), int(ptr[-1])) if ptr.size else (0, 0)
+    if 0 <= lo <= hi:
+        for part in ("data", "indices"):
+            check(part, lo, hi, _entries(ptr, start, lo, hi))
 
 
 def _zarr_check(ref: ArrayRef, group: Any) -> ChunkCheck | None:
@@ -334,34 +360,6 @@ def _read_from(
     return data, indices, ptr - lo
 
 
-def window_hash(ref: ArrayRef, start: int, stop: int) -> str:
-    """SHA-256 of rows ``[start, stop)`` of a CSR group, as (data, indices, indptr)."""
-    digest = hashlib.sha256()
-    for part in read_csr_rows(ref, start, stop, purpose="fingerprint"):
-        digest.update(np.ascontiguousarray(part).tobytes())
-    return digest.hexdigest()
-
-
-def fingerprint(ref: ArrayRef, shape: tuple[int, ...], rows: int | None = None) -> dict[str, Any]:
-    """Fingerprint a dense array or a CSR group (the same record for both).
-
-    Dense arrays go to :func:`rowfold.storage.inputs.fingerprint`; for a CSR group the same
-    row windows are hashed as (data, indices, indptr) by :func:`window_hash`.
-    """
-    if not is_csr(ref):
-        return inputs.fingerprint(ref, shape, rows)
-    upto = shape[0] if rows is None else rows
-    return {
-        "shape": list(shape),
-        "rows": upto,
-        "format": "csr",
-        "windows": [
-            [start, stop, window_hash(ref, start, stop)]
-            for start, stop in inputs.prefix_windows(upto)
-        ],
-    }
-
-
 def write_csr(
     path: str | Path,
     group: str,
@@ -407,9 +405,8 @@ def write_csr(
         _write_zarr(target, group, shape, arrays, extra)
 
 
-def _chunk(name: str, array: np.ndarray) -> tuple[int, ...]:
-    rows = PTR_CHUNK if name.endswith("/indptr") else WRITE_CHUNK
-    return (max(1, min(rows, array.shape[0])), *array.shape[1:])
+def _chunk(array: np.ndarray) -> tuple[int, ...]:
+    return (WRITE_CHUNK, *array.shape[1:])
 
 
 def _write_hdf5(
@@ -427,7 +424,9 @@ def _write_hdf5(
         created = handle.create_group(group)
         created.attrs["shape"] = shape
         for name, array in {**arrays, **extra}.items():
-            handle.create_dataset(name, data=array, chunks=_chunk(name, array))
+            handle.create_dataset(
+                name, data=array, chunks=_chunk(array), maxshape=(None, *array.shape[1:])
+            )
 
 
 def _write_zarr(
@@ -450,20 +449,7 @@ def _write_zarr(
             name,
             shape=array.shape,
             dtype=array.dtype,
-            chunks=_chunk(name, array),
+            chunks=_chunk(array),
             config=KEEP_EVERY_CHUNK,
         )
         out[...] = array
-
-
-def same_prefix(ref: ArrayRef, recorded: dict[str, Any]) -> bool:
-    """True when a dense array's or CSR group's first rows still hash as ``recorded``."""
-    if not is_csr(ref):
-        return inputs.same_prefix(ref, recorded)
-    try:
-        return all(
-            window_hash(ref, int(start), int(stop)) == digest
-            for start, stop, digest in recorded.get("windows", [])
-        )
-    except InputError:
-        return False

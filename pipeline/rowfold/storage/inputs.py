@@ -6,7 +6,6 @@ range; the worker opens the file itself. Nothing here keeps a file open between 
 
 from __future__ import annotations
 
-import hashlib
 import os
 import threading
 import warnings
@@ -241,7 +240,7 @@ def read_rows(ref: ArrayRef, start: int, stop: int, purpose: str = "data") -> np
     start, stop : int
         Row range.
     purpose : str
-        Recorded in the read log (``ROWFOLD_READ_LOG``): ``data`` or ``fingerprint``.
+        Recorded in the read log (``ROWFOLD_READ_LOG``): ``data`` or ``digest-rows``.
 
     Returns
     -------
@@ -316,55 +315,6 @@ def _log_read(ref: ArrayRef, start: int, stop: int, purpose: str) -> None:
             handle.write(f"{purpose}\t{ref.path}\t{ref.name}\t{start}\t{stop}\n")
 
 
-def window_hash(ref: ArrayRef, start: int, stop: int) -> str:
-    """SHA-256 of rows ``[start, stop)`` of an array (its raw bytes)."""
-    data = np.ascontiguousarray(read_rows(ref, start, stop, purpose="fingerprint"))
-    return hashlib.sha256(data.tobytes()).hexdigest()
-
-
-def prefix_windows(rows: int, samples: int = 4, width: int = 1024) -> list[tuple[int, int]]:
-    """Row windows that fingerprint the first ``rows`` rows: ``samples`` evenly spaced
-    windows of ``width`` rows, plus the last window before ``rows``."""
-    if rows <= 0:
-        return []
-    starts = {int(s) for s in np.linspace(0, max(0, rows - width), samples)}
-    starts.add(max(0, rows - width))
-    return [(start, min(rows, start + width)) for start in sorted(starts)]
-
-
-def fingerprint(ref: ArrayRef, shape: tuple[int, ...], rows: int | None = None) -> dict[str, Any]:
-    """Fingerprint an array: its shape and hashes of sampled windows of its first rows.
-
-    Parameters
-    ----------
-    ref : ArrayRef
-        The array.
-    shape : tuple of int
-        Its shape (recorded as is).
-    rows : int, optional
-        Fingerprint only the first ``rows`` rows (default: all). ``update`` recomputes the
-        same windows to check that an input still starts with the rows a result consumed.
-    """
-    upto = shape[0] if rows is None else rows
-    windows = prefix_windows(upto)
-    return {
-        "shape": list(shape),
-        "rows": upto,
-        "windows": [[start, stop, window_hash(ref, start, stop)] for start, stop in windows],
-    }
-
-
-def same_prefix(ref: ArrayRef, recorded: dict[str, Any]) -> bool:
-    """True when the array's first rows still hash as ``recorded`` (see :func:`fingerprint`)."""
-    try:
-        return all(
-            window_hash(ref, int(start), int(stop)) == digest
-            for start, stop, digest in recorded.get("windows", [])
-        )
-    except InputError:
-        return False
-
-
 def write_arrays(path: str | Path, arrays: dict[str, np.ndarray], chunk_rows: int = 16384) -> None:
     """Write arrays into a new HDF5 file or Zarr store (for demo data and tests).
 
@@ -375,7 +325,9 @@ def write_arrays(path: str | Path, arrays: dict[str, np.ndarray], chunk_rows: in
     arrays : dict
         Dataset name -> array.
     chunk_rows : int
-        Rows per on-disk chunk.
+        Rows per on-disk chunk, whatever the length (so the chunks of rows already written
+        keep their stored bytes when the arrays are written again with more rows, which
+        ``update`` relies on); HDF5 datasets are growable (``maxshape`` None).
     """
     target = Path(path)
     target.parent.mkdir(parents=True, exist_ok=True)
@@ -383,20 +335,23 @@ def write_arrays(path: str | Path, arrays: dict[str, np.ndarray], chunk_rows: in
         forget_input(target)
         with _HDF5_LOCK, h5py.File(target, "w") as handle:
             for name, array in arrays.items():
-                rows = min(chunk_rows, array.shape[0])
-                chunks = (rows, *array.shape[1:]) if rows and all(array.shape) else None
-                handle.create_dataset(name, data=array, chunks=chunks)
+                if array.ndim == 0 or not all(array.shape[1:]):
+                    handle.create_dataset(name, data=array)
+                    continue
+                tail = array.shape[1:]
+                handle.create_dataset(
+                    name, data=array, chunks=(chunk_rows, *tail), maxshape=(None, *tail)
+                )
         return
     import zarr
 
     group = zarr.open_group(str(target), mode="w")
     for name, array in arrays.items():
-        rows = max(1, min(chunk_rows, array.shape[0]))
         created = group.create_array(
             name,
             shape=array.shape,
             dtype=array.dtype,
-            chunks=(rows, *array.shape[1:]),
+            chunks=(chunk_rows, *array.shape[1:]),
             config=KEEP_EVERY_CHUNK,
         )
         created[...] = array
