@@ -105,3 +105,40 @@ def relative_error(measured: np.ndarray, reference: np.ndarray) -> float:
     scale = float(np.linalg.norm(reference))
     diff = float(np.linalg.norm(measured - reference))
     return diff / scale if scale > 0 else diff
+
+
+def projector(n: int, kappa: float, dtype: Any = np.float64) -> float:
+    """||P1 - P2||_2 between the orthogonal projectors onto the rank-r column space of A
+    computed by two backward-stable methods, with kappa = sigma_1 / sigma_r the condition of
+    the rank-r part (its gap to sigma_{r+1} = 0 is sigma_r).
+
+    Source: the sin-theta theorem for singular subspaces, ||sin Theta|| <= ||E|| / gap
+    (Wedin, BIT 12 (1972); Stewart & Sun, Matrix Perturbation Theory, 1990, Thm V.4.4),
+    with ||E|| / ||A||_2 = O(n u) per method (Higham 2002, Thm 19.4). ``SAFETY`` is common
+    practice. Every diagonal entry of P1 - P2 (a leverage difference) is bounded by it too.
+    """
+    return 2 * SAFETY * n * unit_roundoff(dtype) * max(1.0, kappa)
+
+
+def pseudo_inverse(n: int, kappa: float, dtype: Any = np.float64) -> float:
+    """||X1 - X2||_2 / ||A^+||_2 between the pseudo-inverses (or truncated-SVD inverses of
+    the same rank) of A computed by two backward-stable methods: c kappa eta.
+
+    Source: Wedin, BIT 13 (1973), the perturbation of the pseudo-inverse under a
+    rank-preserving perturbation, ||dA^+|| <= mu ||A^+||^2 ||dA|| (mu <= 3); Stewart, SIAM
+    Review 19 (1977). eta = n u per method (Higham 2002, Thm 19.4); ``SAFETY`` is common
+    practice.
+    """
+    return 2 * 3 * SAFETY * n * unit_roundoff(dtype) * max(1.0, kappa)
+
+
+def inner_products(m: int, n: int, dtype: Any = np.float64) -> float:
+    """||fl(Q^H Q) - Q^H Q||_F for an m x n Q with columns of norm about 1, the products
+    accumulated in ``dtype``: each entry errs by at most gamma_m |q_i|^T |q_j| <= gamma_m,
+    gamma_m = m u / (1 - m u), so the Frobenius norm by at most n gamma_m.
+
+    Source: Higham, Accuracy and Stability of Numerical Algorithms, 2nd ed. 2002, eq. (3.5)
+    (inner products) and Lemma 3.1. A worst-case bound, no safety factor needed.
+    """
+    mu = m * unit_roundoff(dtype)
+    return n * mu / (1 - mu)

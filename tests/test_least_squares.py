@@ -157,7 +157,9 @@ def levelling_network(benchmarks: int, rng: np.random.Generator) -> np.ndarray:
 
 def test_levelling_network_without_datum_is_rank_n_minus_1(job_folder: Path) -> None:
     """No fixed height: the datum defect makes the rank n - 1; x is the minimum-norm
-    solution, equal to numpy's pseudo-inverse solution."""
+    solution in the scaled variables D x (D: the power of two nearest each column norm,
+    the README's rule), i.e. numpy's pseudo-inverse solution of A D^-1, unscaled. The height
+    differences, which no datum changes, equal those of the plain pseudo-inverse solution."""
     rng = np.random.default_rng(36)
     A = levelling_network(12, rng)
     heights = rng.uniform(10, 60, 12)
@@ -166,7 +168,11 @@ def test_levelling_network_without_datum_is_rank_n_minus_1(job_folder: Path) -> 
     assert outcome.report["rank"] == 11
     assert sorted(outcome.report["rank_deficient_columns"]) == list(range(12))
     assert any("rank deficient" in w for w in outcome.report["warnings"])
-    assert np.allclose(stored(outcome)["x"], np.linalg.pinv(A) @ b, atol=1e-9)
+    x = stored(outcome)["x"]
+    d = 2.0 ** np.round(np.log2(np.linalg.norm(A, axis=0)))
+    assert np.allclose(x, (np.linalg.pinv(A / d) @ b) / d, atol=1e-9)
+    plain = np.linalg.pinv(A) @ b
+    assert np.allclose(x - x[0], plain - plain[0], atol=1e-9)
 
 
 def test_leverages_and_standardized_residuals(job_folder: Path) -> None:

@@ -24,10 +24,10 @@ import pytest
 import scipy.sparse as sp
 import yaml
 
-import bounds
 from rowfold import runner, storage
 from rowfold.cli import main
 
+import bounds
 from support import lapack_r, prescribed
 
 M, N, CHUNK, BLOCK, ADDED = 20_250, 4, 500, 3000, 500

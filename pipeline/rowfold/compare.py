@@ -18,6 +18,7 @@ import numpy as np
 
 from rowfold import svgplot
 from rowfold.errors import BreakdownError
+from rowfold.kernels.norms import frobenius
 from rowfold.report import CAUTION
 from rowfold.spec import Job
 
@@ -69,7 +70,7 @@ def table(rows: list[Row]) -> list[dict[str, Any]]:
         rep = row.report or {}
         diff = None
         if row.R is not None and reference is not None:
-            diff = float(np.linalg.norm(row.R - reference) / np.linalg.norm(reference))
+            diff = frobenius(row.R - reference) / frobenius(reference)
         seconds = rep.get("seconds", {})
         records.append(
             {

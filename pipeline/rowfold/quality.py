@@ -17,7 +17,7 @@ import numpy as np
 
 from rowfold import __version__
 from rowfold.blocks import BlockPlan, load_block, load_weights
-from rowfold.kernels import metrics
+from rowfold.kernels import metrics, norms
 from rowfold.methods._graph import sum_tree, task
 from rowfold.methods.base import Engine, Factorization
 from rowfold.solve import Solution, Statistics, numerical_rank, rank_tolerance
@@ -34,19 +34,24 @@ def verify_block(
     q_kernel: Callable[[np.ndarray, Any], np.ndarray] | None,
     recipe: Any,
     outputs: tuple[str, ...],
+    basis: np.ndarray | None = None,
 ) -> tuple[metrics.Sums, dict[str, np.ndarray]]:
     """Read one block; return its verification sums and the per-row outputs asked for.
 
     Per-row outputs: ``Q`` (the block of Q), ``residuals`` (weighted residuals
-    ``sqrt(w) (b - A x)``) and ``leverage`` (``h_i = ||q_i||^2``, the diagonal of the hat
-    matrix).
+    ``sqrt(w) (b - A x)``) and ``leverage`` (the diagonal of the hat matrix: ``h_i =
+    ||q_i||^2`` at full rank, ``||q_i U_r||^2`` with the rank-r range basis ``basis``
+    below it, so the leverages sum to the rank).
+
+    Q is rounded to the plan's dtype (the dtype it is stored in) before anything is
+    measured, so the figures and leverages are those of the Q that is written.
     """
     if plan.sparse and q_kernel is None:
         # residual sums need only products with A: keep a CSR block sparse
         block, rhs = plan.load_sparse(index)
     else:
         block, rhs = load_block(plan, index, "C")
-    q = None if q_kernel is None else q_kernel(block, recipe)
+    q = None if q_kernel is None else stored_q(q_kernel(block, recipe), plan)
     sums = metrics.block_sums(block, rhs, x, R, q)
     if plan.weights is not None:
         sums["rows_used"] = int(np.count_nonzero(load_weights(plan, index)))
@@ -56,8 +61,21 @@ def verify_block(
     if "residuals" in outputs and rhs is not None and x is not None:
         rows["residuals"] = rhs - block @ x
     if "leverage" in outputs and q is not None:
-        rows["leverage"] = np.sum(np.abs(q) ** 2, axis=1)
+        rows["leverage"] = leverages(q, basis)
     return sums, rows
+
+
+def stored_q(q: np.ndarray, plan: BlockPlan) -> np.ndarray:
+    """A block of Q in the dtype the store holds it in (the plan's working dtype)."""
+    return np.asarray(q, dtype=np.dtype(plan.dtype))
+
+
+def leverages(q: np.ndarray, basis: np.ndarray | None) -> np.ndarray:
+    """Squared row norms of ``Q`` (or of ``Q U_r``), accumulated in at least float64."""
+    wide = np.asarray(q, dtype=np.promote_types(q.dtype, np.float64))
+    if basis is not None:
+        wide = wide @ basis.astype(wide.dtype, copy=False)
+    return np.asarray(np.sum(np.abs(wide) ** 2, axis=1))
 
 
 def first_of(pair: tuple[Any, Any]) -> Any:
@@ -98,6 +116,7 @@ def verify(
     form_q: bool,
     outputs: tuple[str, ...] = (),
     sink: RowSink | None = None,
+    basis: np.ndarray | None = None,
 ) -> Verification:
     """Run the verification pass.
 
@@ -115,6 +134,8 @@ def verify(
     sink : callable or None
         Called with (start row, {name: rows}) for every block, in order; blocks are
         streamed so only a few are in memory at once.
+    basis : ndarray (n, r) or None
+        The solution's range basis ``U_r`` below full rank (leverages ``||q_i U_r||^2``).
     """
     needs_q = form_q or "Q" in outputs or "leverage" in outputs
     q_kernel = fact.q_kernel if needs_q else None
@@ -130,6 +151,7 @@ def verify(
             q_kernel,
             fact.q_recipes[i] if q_kernel else None,
             outputs if sink else (),
+            basis,
         )
         for i in range(plan.blocks)
     ]
@@ -146,27 +168,31 @@ def verify(
     return Verification(total_sums, q_kernel is not None)
 
 
-def column_norm_block(plan: BlockPlan, index: int) -> np.ndarray:
-    """Squared column norms of one (weighted) block."""
+def column_norm_block(plan: BlockPlan, index: int) -> norms.RootSumSquares:
+    """Column norms of one (weighted) block, free of overflow and underflow."""
     block, _ = load_block(plan, index, "C")
-    return np.sum(np.abs(block) ** 2, axis=0)
+    return norms.column_norm_sums(block)
 
 
 def column_norms(plan: BlockPlan, engine: Engine) -> np.ndarray:
-    """Column norms of the (weighted) matrix, in one pass (for ``solve.scale_columns``)."""
+    """Column norms of the (weighted) matrix, in one pass (for ``solve.scale_columns``).
+
+    Block norms are combined with ``hypot``, so the norms are right at any scaling that
+    float64 can hold (a sum of squares would overflow above about 1e154 and lose its
+    digits below about 1e-154).
+    """
     tasks = [task(column_norm_block, plan, i) for i in range(plan.blocks)]
-    (total,) = engine.compute([sum_tree(tasks, metrics.add_arrays)], "column norms")
-    return np.sqrt(np.asarray(total))
+    (total,) = engine.compute([sum_tree(tasks, norms.add_norms)], "column norms")
+    return np.asarray(total.value)
 
 
-def equilibration(norms: np.ndarray) -> np.ndarray:
+def equilibration(norms_: np.ndarray) -> np.ndarray:
     """Column multipliers that bring each column norm into [2^-0.5, 2^0.5).
 
     Powers of two, so scaling A is exact and adds no rounding error (the same reason
     LAPACK's equilibration offers radix-power scaling); zero columns keep multiplier 1.
     """
-    safe = np.where(norms > 0, norms, 1.0)
-    return np.asarray(2.0 ** -np.round(np.log2(safe)))
+    return np.asarray(1.0 / norms.power_of_two_scale(norms_))
 
 
 WORST_ROWS = 20
@@ -355,13 +381,10 @@ def assemble_report(
     """Assemble the report dictionary (the keys SPEC lists, and more)."""
     sigma = metrics.singular_values(fact.R)
     norm_a = float(sigma[0]) if sigma.size else 0.0
-    a_fro2 = float(sums["a_fro2"])
     figures: dict[str, Any] = {
         "orthogonality_loss": metrics.orthogonality_loss(sums["qhq"]) if formed_q else None,
-        "factorization_residual": (
-            math.sqrt(sums["defect2"] / a_fro2) if formed_q and a_fro2 > 0 else None
-        ),
-        "gram_residual": metrics.gram_residual(sums["gram"], fact.R, a_fro2),
+        "factorization_residual": _factorization_residual(sums) if formed_q else None,
+        "gram_residual": metrics.gram_residual(sums["gram"], fact.R, plan.rows),
         "r_condition": metrics.condition_from(sigma),
     }
     used = str(fact.details.get("method_used", job.method.name))
@@ -371,7 +394,7 @@ def assemble_report(
         plan.rows,
         plan.cols,
         figures["r_condition"],
-        fact.R.dtype,
+        np.dtype(plan.dtype),
     )
     loo = figures["orthogonality_loss"]
     bound["measured"] = loo
@@ -413,7 +436,15 @@ def assemble_report(
     if report["rank"] < plan.cols:
         report["warnings"].append(
             f"rank deficient: numerical rank {report['rank']} of {plan.cols} columns; "
-            "x is the minimum-norm least-squares solution"
+            "x is the least-squares solution of minimum norm in the scaled variables D x "
+            "(D: the power of two nearest each column norm); fix a datum "
+            "(input.fixed_columns) for a unique solution"
+        )
+    problem = metrics.gram_range_problem(sums["gram"], plan.rows)
+    if problem is not None:
+        report["warnings"].append(
+            f"A^H A {problem} in float64 at this scaling of A, so gram_residual is not "
+            "measured; solve.scale_columns: true brings the columns to norm about 1"
         )
     gates = check_gates(job.gates, figures)
     report["gates"] = {
@@ -426,6 +457,15 @@ def assemble_report(
     return cleaned
 
 
+def _factorization_residual(sums: metrics.Sums) -> float | None:
+    """``||A - QR||_F / ||A||_F`` from the norms the verification pass added."""
+    defect, a_norm = sums.get("defect"), sums.get("a_norm")
+    if defect is None or a_norm is None:
+        return None
+    size = float(a_norm.value)
+    return float(defect.value) / size if size > 0 else None
+
+
 def _rank_only(R: np.ndarray, job: Job) -> int:
     rank, _ = numerical_rank(R, rank_tolerance(R.shape[1], R.dtype, job.solve.rank_tolerance))
     return rank
@@ -436,7 +476,9 @@ def _solution_figures(
 ) -> dict[str, Any]:
     ne = None
     if "ahr" in sums:
-        ne = _per_rhs(plan, metrics.normal_equations_residual(sums["ahr"], norm_a, sums["res2"]))
+        ne = _per_rhs(
+            plan, metrics.normal_equations_residual(sums["ahr"], norm_a, stats.residual_norm)
+        )
     return {
         "rank_tolerance": solution.tolerance,
         "rank_deficient_columns": solution.deficient_columns,

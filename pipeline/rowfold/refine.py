@@ -27,6 +27,7 @@ from scipy.linalg import solve_triangular
 
 from rowfold.blocks import BlockPlan, load_block
 from rowfold.kernels import metrics
+from rowfold.kernels.norms import frobenius
 from rowfold.methods._graph import sum_tree, task
 from rowfold.methods.base import Engine, Factorization
 from rowfold.storage.inputs import ArrayRef, read_rows
@@ -131,7 +132,7 @@ def refine(
         if dx is not None:
             x = x + dx
         dx = _correction(fact.R, sums)
-        size = float(np.linalg.norm(dx) / max(np.linalg.norm(x), np.finfo(float).tiny))
+        size = frobenius(dx) / max(frobenius(x), float(np.finfo(float).tiny))
         history.append(size)
         if size > 0.5 * previous:
             break  # no longer shrinking: keep x as it is

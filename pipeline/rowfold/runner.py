@@ -292,11 +292,13 @@ def _run_on(
             outputs = _row_outputs(job, plan)
             sink = _row_sink(writer, plan, outputs) if outputs else None
             x = None if solution is None else solution.x
-            check = quality.verify(plan, fact, x, engine, wants_q(job), outputs, sink)
+            basis = None if solution is None else solution.range_basis
+            check = quality.verify(plan, fact, x, engine, wants_q(job), outputs, sink, basis)
         stats = None
         if solution is not None:
             used = int(check.sums.get("rows_used", plan.rows))
-            stats = statistics(solution, check.sums["res2"], used)
+            norms = check.sums["res_norm"].value
+            stats = statistics(solution, check.sums["res2"], used, norms)
         if stats is not None and job.solve.residuals:
             with clock.stage("screen"):
                 extra["residual_screening"] = _screen(writer, plan, stats, job)

@@ -12,6 +12,7 @@ from typing import Any
 import numpy as np
 from scipy.linalg import svdvals
 
+from rowfold.kernels import norms
 from rowfold.kernels.householder import as_columns
 
 Sums = dict[str, Any]
@@ -34,31 +35,56 @@ def block_sums(
 ) -> Sums:
     """Return the verification sums of one row block.
 
-    Keys: with rhs and x, ``res2`` (||r_i||^2 per column), ``rtr`` (r_i^H r_i, k x k) and
-    ``ahr`` (A_i^H r_i); with Q,
-    ``qhq`` (Q_i^H Q_i) and ``defect2`` (||A_i - Q_i R||_F^2).
-    """
-    from rowfold.kernels.gram import block_gram
+    Keys: with rhs and x, ``res2`` (||r_i||^2 per column), ``res_norm`` (the same as norms,
+    :class:`~rowfold.kernels.norms.RootSumSquares`, free of overflow and underflow),
+    ``rtr`` (r_i^H r_i, k x k) and ``ahr`` (A_i^H r_i); with Q, ``qhq`` (Q_i^H Q_i),
+    ``defect`` (||A_i - Q_i R||_F) and ``a_norm`` (||A_i||_F), the last two as
+    RootSumSquares.
 
+    Q is measured as given (the caller passes it in the dtype it is stored in); its Gram is
+    accumulated in at least float64, so a float32 Q's figure is that of the float32 values
+    and not of their float32 rounding errors.
+    """
     sums: Sums = {}
     if rhs is not None and x is not None:
         residual = as_columns(rhs) - block @ as_columns(x)
         sums["res2"] = np.sum(np.abs(residual) ** 2, axis=0)
+        sums["res_norm"] = norms.column_norm_sums(residual)
         sums["rtr"] = residual.conj().T @ residual
         sums["ahr"] = block.conj().T @ residual
     if Q is not None:
-        sums["qhq"] = block_gram(Q)
-        defect = block - Q @ R
-        sums["defect2"] = float(np.vdot(defect, defect).real)
+        sums["qhq"] = measured_gram(Q)
+        sums["defect"] = norms.norm_sum(block - Q @ R.astype(Q.dtype, copy=False))
+        sums["a_norm"] = norms.norm_sum(block)
     return sums
 
 
+def measured_gram(Q: np.ndarray) -> np.ndarray:
+    """``Q^H Q`` accumulated in float64 (complex128) at least, piece by piece."""
+    from rowfold.kernels.gram import gram_upper, hermitian_from_upper
+
+    wide = np.promote_types(Q.dtype, np.float64)
+    upper = np.zeros((Q.shape[1], Q.shape[1]), dtype=wide)
+    for start in range(0, Q.shape[0], MEASURE_ROWS):
+        upper += gram_upper(np.asarray(Q[start : start + MEASURE_ROWS], dtype=wide))
+    return hermitian_from_upper(upper)
+
+
+# Rows of Q widened at a time by measured_gram (a cache-sized piece; common practice).
+MEASURE_ROWS = 2048
+
+
 def add_sums(*parts: Sums) -> Sums:
-    """Add quality sums key by key."""
+    """Add quality sums key by key.
+
+    A sum that overflows becomes inf or NaN silently here: the figures built from it check
+    for that and say so (see :mod:`rowfold.kernels.norms`), so no warning is printed.
+    """
     total: Sums = dict(parts[0])
-    for part in parts[1:]:
-        for key, value in part.items():
-            total[key] = total[key] + value
+    with np.errstate(over="ignore", invalid="ignore"):
+        for part in parts[1:]:
+            for key, value in part.items():
+                total[key] = total[key] + value
     return total
 
 
@@ -72,14 +98,50 @@ def add_arrays(*parts: np.ndarray) -> np.ndarray:
 
 def orthogonality_loss(qhq: np.ndarray) -> float:
     """Return ``||I - Q^H Q||_F``."""
-    return float(np.linalg.norm(np.eye(qhq.shape[0]) - qhq))
+    return norms.frobenius(np.eye(qhq.shape[0]) - qhq)
 
 
-def gram_residual(gram: np.ndarray, R: np.ndarray, a_fro2: float) -> float:
-    """Return ``||A^H A - R^H R||_F / ||A||_F^2`` (0 for a zero matrix)."""
-    if a_fro2 == 0:
+def gram_range_problem(gram: np.ndarray, rows: int) -> str | None:
+    """Why ``A^H A`` cannot stand for A in its dtype, or None when it can.
+
+    ``"overflows"`` when an entry is not finite; ``"underflows"`` when its largest diagonal
+    entry (a squared column norm) is positive but below :func:`underflow_limit`, so the
+    squares of the entries fell below the dtype's normal range and lost their digits.
+    """
+    if not np.all(np.isfinite(gram)):
+        return "overflows"
+    diagonal = np.real(np.diagonal(gram))
+    top = float(np.max(diagonal)) if diagonal.size else 0.0
+    if 0 < top < underflow_limit(rows, gram.dtype):
+        return "underflows"
+    return None
+
+
+def underflow_limit(rows: int, dtype: Any = np.float64) -> float:
+    """Smallest squared column norm of ``rows`` entries whose squares all kept their digits
+    (``rows * tiny / eps`` of the dtype: each square errs by at most tiny * eps)."""
+    info = np.finfo(np.dtype(dtype))
+    return max(rows, 1) * float(info.tiny) / float(info.eps)
+
+
+def gram_residual(gram: np.ndarray, R: np.ndarray, rows: int) -> float | None:
+    """Return ``||A^H A - R^H R||_F / ||A||_F^2`` (0 for a zero matrix), or None when the
+    accumulated ``A^H A`` is out of float64's range (see :func:`gram_range_problem`).
+
+    Both terms are scaled by the same power of two before they are subtracted (exact), so
+    the figure neither overflows nor underflows while A^H A itself is representable.
+    """
+    if gram_range_problem(gram, rows) is not None:
+        return None
+    diagonal = np.real(np.diagonal(gram))
+    top = float(np.max(diagonal)) if diagonal.size else 0.0
+    if top == 0:
         return 0.0
-    return float(np.linalg.norm(gram - R.conj().T @ R) / a_fro2)
+    half = int(np.frexp(top)[1]) // 2
+    scaled_gram = gram * 2.0 ** (-2 * half)
+    scaled_r = R * 2.0 ** (-half)
+    trace = float(np.sum(np.real(np.diagonal(scaled_gram))))
+    return norms.frobenius(scaled_gram - scaled_r.conj().T @ scaled_r) / trace
 
 
 def singular_values(R: np.ndarray) -> np.ndarray:
@@ -96,9 +158,15 @@ def condition_from(sigma: np.ndarray) -> float:
     return float(sigma[0] / sigma[-1]) if sigma[-1] > 0 else float("inf")
 
 
-def normal_equations_residual(ahr: np.ndarray, norm_a: float, res2: np.ndarray) -> np.ndarray:
-    """Return ``||A^H r_j|| / (||A||_2 ||r_j||)`` per right-hand side (0 where r_j = 0)."""
-    res = np.sqrt(res2)
-    num = np.linalg.norm(ahr, axis=0)
-    den = norm_a * res
-    return np.where(den > 0, num / np.where(den > 0, den, 1), 0.0)
+def normal_equations_residual(
+    ahr: np.ndarray, norm_a: float, residual_norm: np.ndarray
+) -> np.ndarray:
+    """Return ``||A^H r_j|| / (||A||_2 ||r_j||)`` per right-hand side (0 where r_j = 0).
+
+    Divided one factor at a time, so the product in the denominator never overflows.
+    """
+    res = np.asarray(residual_norm, dtype=float).reshape(-1)
+    num = norms.column_norms(as_columns(np.asarray(ahr)))
+    defined = (res > 0) & (norm_a > 0)
+    ratio = num / np.where(defined, res, 1.0) / (norm_a if norm_a > 0 else 1.0)
+    return np.where(defined, ratio, 0.0)

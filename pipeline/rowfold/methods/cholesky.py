@@ -18,8 +18,19 @@ squared, per row). Later passes form ``X = A F1^{-1} F2^{-1} ...`` as the sparse
 nnz * n) followed by triangular solves with the later factors, and take its Gram by syrk.
 Q is formed by the same recipe (:func:`q_block_sparse`) so it matches the X whose Gram gave
 R bit for bit, which is what keeps CholeskyQR2's orthogonality at O(u). The residual
-``||A - QR||`` picks up the rounding of ``inv(F1)``: a small multiple of u in our tests
-(tests/test_sparse.py), where the dense recipe gives about u.
+``||A - QR||`` picks up the rounding of ``inv(F1)``, a relative error of about
+``u cond(F1)``: a small multiple of u in our tests (tests/test_sparse.py), where the dense
+recipe gives about u. For scholqr3 the shift bounds cond(F1) by about
+``1 / sqrt(11 (mn + n(n+1)) u)`` (6.7e4 at m = 300, n = 30), so the inverse is accurate to
+about 1e-11 there. What the explicit inverse cannot do is make a numerically rank-deficient
+A (a network without datum) factorable: X = A F1^-1 is then singular to working accuracy
+with either recipe (condition ~1e11 after trsm, ~1e19 after the inverse, measured), and
+pass 2 breaks down or returns a factor of condition ~1e11 depending on the rounding, so
+:func:`scholqr3_from` refuses both the same way.
+
+First Grams out of float64's range (entries of A above about 1e154, or a column whose
+squared norm lost its digits to underflow) are refused before any Cholesky
+(:func:`check_gram_range`): an R from such a Gram would be wrong, not merely inaccurate.
 """
 
 from __future__ import annotations
@@ -101,11 +112,13 @@ def gram_leaf(source: BlockSource, index: int, factors: tuple[np.ndarray, ...]) 
 
 
 def add_gram_sums(*parts: dict[str, Any]) -> dict[str, Any]:
-    """Add Gram sums (``cross`` may be None)."""
+    """Add Gram sums (``cross`` may be None); a Gram that overflows is refused later by
+    name (:func:`cholesky_or_refuse`), so the addition itself warns of nothing."""
     total = dict(parts[0])
-    for part in parts[1:]:
-        for key, value in part.items():
-            total[key] = None if value is None else total[key] + value
+    with np.errstate(over="ignore", invalid="ignore"):
+        for part in parts[1:]:
+            for key, value in part.items():
+                total[key] = None if value is None else total[key] + value
     return total
 
 
@@ -184,6 +197,37 @@ def cholesky_or_refuse(gram: np.ndarray, method: str, stage: str, advice: str) -
         ) from None
 
 
+def check_gram_range(gram: np.ndarray, rows: int, method: str) -> None:
+    """Refuse a first Gram that float64 cannot hold (BreakdownError naming why).
+
+    CholeskyQR squares the entries of A: above about 1e154 the Gram overflows, and below
+    about 1e-154 (per column: a squared column norm below ``rows * tiny / eps``) the squares
+    lose their digits or vanish, so any R from that Gram would be wrong, not just
+    inaccurate. TSQR never squares A, and ``solve.scale_columns`` brings every column to
+    norm about 1 before the Gram is formed.
+    """
+    problem = metrics.gram_range_problem(gram, rows)
+    floor = metrics.underflow_limit(rows, gram.dtype)
+    small = np.flatnonzero(np.real(np.diagonal(gram)) < floor)
+    if problem is None and small.size == 0:
+        return
+    kind = np.dtype(gram.real.dtype).name
+    if problem == "overflows":
+        what = f"A^H A overflows in {kind} (entries of A near or above the square root of "
+        what += f"{kind}'s largest number)"
+    else:
+        columns = ", ".join(str(int(j)) for j in small[:5]) + (", ..." if small.size > 5 else "")
+        what = (
+            f"A^H A underflows in {kind}: the squared norm of column {columns} is zero or "
+            f"below {floor:.3g}, where the squares of the entries lose their digits"
+        )
+    raise BreakdownError(
+        f"{method}: {what}; CholeskyQR squares the entries of A, so it cannot factor this "
+        "scaling; set solve.scale_columns: true (or drop an all-zero column), or use "
+        "method.name: tsqr"
+    )
+
+
 def condition_estimate(R: np.ndarray) -> float:
     """2-norm condition number of a triangular factor, from its singular values."""
     return metrics.condition_from(metrics.singular_values(R))
@@ -253,17 +297,18 @@ def assemble(
 
 
 def cholqr2_from(
-    source: BlockSource, engine: Engine, first: dict[str, Any], details: dict[str, Any]
+    source: BlockSource, engine: Engine, first: dict[str, Any], rows: int, details: dict[str, Any]
 ) -> Factorization:
-    """CholeskyQR2 given the first pass's Gram sums (reused by ``auto``)."""
+    """CholeskyQR2 given the first pass's Gram sums (reused by ``auto``); ``rows`` is m."""
     advice = "use method.name: scholqr3 or tsqr"
+    check_gram_range(first["gram"], rows, "cholqr2")
     factor = cholesky_or_refuse(first["gram"], "cholqr2", "first", advice)
     estimate = condition_estimate(factor)
     details = {**details, "first_pass_condition_estimate": estimate}
     limit = cholqr2_limit(factor.dtype)
     if not estimate < limit:
         raise BreakdownError(
-            f"cholqr2: first-pass condition estimate {estimate:.3g} exceeds {limit:.2g}; "
+            f"cholqr2: first-pass condition estimate {estimate:.3g} exceeds {limit:.3g}; "
             f"CholeskyQR2 cannot guarantee an orthogonal Q here; {advice}"
         )
     factors = [factor]
@@ -283,19 +328,35 @@ def cholqr2_from(
 def scholqr3_from(
     source: BlockSource, engine: Engine, first: dict[str, Any], rows: int, details: dict[str, Any]
 ) -> Factorization:
-    """Shifted CholeskyQR3 given the first pass's Gram sums (reused by ``auto``)."""
+    """Shifted CholeskyQR3 given the first pass's Gram sums (reused by ``auto``).
+
+    Passes 2 and 3 are CholeskyQR2 on ``X = A F1^-1``, so pass 2's factor must show X
+    within CholeskyQR2's range (condition below :func:`cholqr2_limit`), as
+    :func:`cholqr2_from` requires of A. An exactly or numerically rank-deficient A leaves X
+    singular to working accuracy whatever the shift, and whether pass 2's Cholesky then
+    breaks down or returns a factor of condition ~1e11 depends on the rounding (the BLAS
+    kernel, dense or sparse storage): both are refused with the same reason.
+    """
     advice = "use method.name: tsqr"
-    shift = shift_for(first["gram"], rows)
-    shifted = first["gram"] + shift * np.eye(first["gram"].shape[0])
+    gram = first["gram"]
+    check_gram_range(gram, rows, "scholqr3")
+    shift = shift_for(gram, rows)
+    identity = np.eye(gram.shape[0], dtype=gram.dtype)
+    shifted = gram + np.asarray(shift, dtype=gram.real.dtype) * identity
     factor = cholesky_or_refuse(shifted, "scholqr3", "shifted first", advice)
-    details = {
-        **details,
-        "shift": shift,
-        "first_pass_condition_estimate": condition_estimate(factor),
-    }
+    details = {**details, "shift": shift, "shifted_factor_condition": condition_estimate(factor)}
     factors = [factor]
     sparse = is_sparse(source)
-    last = more_passes(source, engine, factors, 2, "scholqr3", advice, sparse)
+    limit = cholqr2_limit(factor.dtype)
+    try:
+        more_passes(source, engine, factors, 1, "scholqr3", advice, sparse)
+    except BreakdownError:
+        raise _beyond_scholqr3(float("inf"), limit) from None
+    second = condition_estimate(factors[1])
+    if not second < limit:
+        raise _beyond_scholqr3(second, limit)
+    details["second_pass_condition"] = second
+    last = more_passes(source, engine, factors, 1, "scholqr3", advice, sparse)
     final = condition_estimate(factors[-1])
     if final > SECOND_FACTOR_LIMIT:
         raise BreakdownError(
@@ -307,11 +368,22 @@ def scholqr3_from(
     return assemble(factors, last["cross"], first, 3, source.blocks, details, sparse)
 
 
+def _beyond_scholqr3(condition: float, limit: float) -> BreakdownError:
+    """The refusal when pass 2 finds A F1^-1 out of CholeskyQR2's range (inf: breakdown)."""
+    return BreakdownError(
+        f"scholqr3: pass 2 gives A F1^-1 a condition estimate of {condition:.3g} (inf when "
+        f"its Cholesky breaks down), and CholeskyQR2 needs it below {limit:.3g}: A is "
+        "numerically rank deficient or beyond shifted CholeskyQR3's range; fix a datum "
+        "(input.fixed_columns) or use method.name: tsqr",
+        passes=1,
+    )
+
+
 def cholqr2(plan: BlockPlan, spec: MethodSpec, ctx: Context) -> Factorization:
     """Run CholeskyQR2 over the plan's row blocks."""
     engine = ctx.engine
     first = gram_pass(plan, engine, (), "cholqr2: pass 1 (Gram)")
-    return cholqr2_from(plan, engine, first, {})
+    return cholqr2_from(plan, engine, first, plan.rows, {})
 
 
 def scholqr3(plan: BlockPlan, spec: MethodSpec, ctx: Context) -> Factorization:

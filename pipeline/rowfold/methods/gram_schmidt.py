@@ -58,6 +58,7 @@ from rowfold.methods._graph import sum_tree, task
 from rowfold.methods.base import Context, Engine, Factorization, QKernel
 from rowfold.methods.cholesky import (
     SECOND_FACTOR_LIMIT,
+    check_gram_range,
     cholesky_or_refuse,
     cholqr2_limit,
     condition_estimate,
@@ -306,12 +307,13 @@ def cholqr2_panel(source: PanelSource, engine: Engine, label: str) -> PanelQR:
         CholeskyQR2 to give an orthogonal Q (the limits of :mod:`.cholesky`).
     """
     first = gram_pass(source, engine, (), f"{label}: Gram pass 1")
+    check_gram_range(first["gram"], source.plan.rows, label)
     factors = [cholesky_or_refuse(first["gram"], label, "first", CHOLQR2_ADVICE)]
     estimate = condition_estimate(factors[0])
     limit = cholqr2_limit(factors[0].dtype)
     if not estimate < limit:
         raise BreakdownError(
-            f"{label}: panel condition estimate {estimate:.3g} exceeds {limit:.2g}, "
+            f"{label}: panel condition estimate {estimate:.3g} exceeds {limit:.3g}, "
             f"so CholeskyQR2 cannot give an orthogonal panel; {CHOLQR2_ADVICE}"
         )
     more_passes(source, engine, factors, 1, label, CHOLQR2_ADVICE)

@@ -2,12 +2,13 @@
 
 Pass 1 reads every block once and adds its contribution ``Omega_i A_i`` to a small sketch
 (``s`` rows, about 3n), with ``Omega`` a sparse sign embedding (each row of A lands in 8
-random sketch rows with random signs) or a Gaussian matrix, drawn per block from the
-recorded seed. The R factor ``R0`` of the sketch makes ``X = A R0^{-1}`` well conditioned
-whatever A's condition, so CholeskyQR on X (pass 2) gives an orthogonal Q; when the
-second factor is not close to orthogonal-exact (condition above 10) one more CholeskyQR
-pass is made. Published basis: Balabanov 2022 (arXiv 2210.09953); Higgins, Szyld, Boman,
-Yamazaki 2023 (arXiv 2309.05868); Garrison & Ipsen 2024.
+distinct random sketch rows with random signs, drawn directly by Floyd's algorithm) or a
+Gaussian matrix, drawn per block from the recorded seed and the block index. The R factor
+``R0`` of the sketch makes ``X = A R0^{-1}`` well conditioned whatever A's condition, so
+CholeskyQR on X (pass 2) gives an orthogonal Q; when the second factor is not close to
+orthogonal-exact (condition above 10) one more CholeskyQR pass is made. Published basis:
+Balabanov 2022 (arXiv 2210.09953); Higgins, Szyld, Boman, Yamazaki 2023 (arXiv
+2309.05868); Garrison & Ipsen 2024.
 """
 
 from __future__ import annotations
@@ -30,18 +31,44 @@ NONZEROS_PER_ROW = 8
 RETRY_ABOVE = 10.0
 
 
-def embedding(kind: str, sketch_rows: int, rows: int, seed: int, index: int) -> Any:
-    """Return this block's slice of the embedding, ``sketch_rows x rows``."""
+def embedding(
+    kind: str, sketch_rows: int, rows: int, seed: int, index: int, dtype: Any = np.float64
+) -> Any:
+    """Return this block's slice of the embedding, ``sketch_rows x rows``, in ``dtype``.
+
+    The draw depends only on ``(seed, index)``, so every run (and every worker) builds the
+    same slice. The sparse sign embedding is built as a CSC matrix straight from its
+    nonzeros (``per_row`` of them in every column): memory ~ rows * per_row.
+    """
     rng = np.random.default_rng([seed, index])
     if kind == "gaussian":
-        return rng.standard_normal((sketch_rows, rows)) / np.sqrt(sketch_rows)
+        gaussian = rng.standard_normal((sketch_rows, rows)) / np.sqrt(sketch_rows)
+        return gaussian.astype(dtype, copy=False)
     per_row = min(NONZEROS_PER_ROW, sketch_rows)
-    targets = np.argsort(rng.random((rows, sketch_rows)), axis=1)[:, :per_row]
-    signs = rng.choice(np.array([-1.0, 1.0]), size=(rows, per_row)) / np.sqrt(per_row)
-    columns = np.repeat(np.arange(rows), per_row)
-    return scipy.sparse.csr_matrix(
-        (signs.ravel(), (targets.ravel(), columns)), shape=(sketch_rows, rows)
-    )
+    targets = distinct_draws(rng, rows, sketch_rows, per_row)
+    value = 1.0 / np.sqrt(per_row)
+    signs = rng.integers(0, 2, size=rows * per_row, dtype=np.int8).astype(bool)
+    data = np.where(signs, value, -value).astype(dtype, copy=False)
+    pointers = np.arange(0, rows * per_row + 1, per_row, dtype=targets.dtype)
+    return scipy.sparse.csc_matrix((data, targets.reshape(-1), pointers), shape=(sketch_rows, rows))
+
+
+def distinct_draws(rng: np.random.Generator, count: int, population: int, size: int) -> Any:
+    """``count`` independent uniform draws of ``size`` distinct integers in [0, population).
+
+    Floyd's algorithm (Bentley & Floyd, Commun. ACM 30(9), 1987), vectorised over the
+    draws: step j = population - size, ..., population - 1 picks t uniformly in [0, j] and
+    keeps t, or j when t was already picked. Every size-subset is equally likely. Memory
+    and work are ~ count * size (plus size^2 / 2 comparisons per draw), never
+    count * population.
+    """
+    index_type = np.int32 if population <= np.iinfo(np.int32).max else np.int64
+    chosen = np.empty((count, size), dtype=index_type)
+    for step, top in enumerate(range(population - size, population)):
+        pick = rng.integers(0, top + 1, size=count, dtype=index_type)
+        taken = np.any(chosen[:, :step] == pick[:, None], axis=1)
+        chosen[:, step] = np.where(taken, top, pick)
+    return chosen
 
 
 def sketch_leaf(
@@ -50,7 +77,7 @@ def sketch_leaf(
     """First-pass sums of a block plus its sketch contribution ``Omega_i A_i``."""
     block, _ = load_for_products(source, index)
     sums = metrics.gram_sums(block)
-    omega = embedding(kind, sketch_rows, block.shape[0], seed, index)
+    omega = embedding(kind, sketch_rows, block.shape[0], seed, index, block.real.dtype)
     sums["sketch"] = np.asarray(omega @ block)
     return sums
 
