@@ -322,6 +322,37 @@ def absurd_worker_count(folder: Path) -> Path:
     return with_keys(make(folder, A, b), cluster={"workers": 100_000})
 
 
+def names_too_few(folder: Path) -> Path:
+    A, b = good()
+    return with_keys(make(folder, A, b), input={"parameter_names": ["a", "b", "c"]})
+
+
+def names_repeated(folder: Path) -> Path:
+    A, b = good()
+    return with_keys(make(folder, A, b), input={"parameter_names": ["a", "b", "a", "d"]})
+
+
+def names_dataset_too_long(folder: Path) -> Path:
+    A, b = good()
+    job = make(folder, A, b)
+    with h5py.File(folder / "in.h5", "a") as handle:
+        handle.create_dataset("names", data=["p", "q", "r", "s", "t"], dtype=h5py.string_dtype())
+    return with_keys(job, input={"parameter_names": "names"})
+
+
+def names_dataset_of_numbers(folder: Path) -> Path:
+    A, b = good()
+    job = make(folder, A, b)
+    with h5py.File(folder / "in.h5", "a") as handle:
+        handle.create_dataset("names", data=np.arange(4.0))
+    return with_keys(job, input={"parameter_names": "names"})
+
+
+def names_dataset_missing(folder: Path) -> Path:
+    A, b = good()
+    return with_keys(make(folder, A, b), input={"parameter_names": "labels"})
+
+
 CATALOGUE: list[tuple[str, Callable[[Path], Path], tuple[str, ...]]] = [
     ("a-not-2d", not_2d, ("in.h5:A", "2-D")),
     ("empty-matrix", empty, ("in.h5:A", "empty")),
@@ -360,6 +391,12 @@ CATALOGUE: list[tuple[str, Callable[[Path], Path], tuple[str, ...]]] = [
     ("rank-tolerance-10", rank_tolerance_ten, ("job.yaml line", "solve.rank_tolerance")),
     ("address-not-a-url", address_not_a_url, ("job.yaml line", "cluster.address", "not a url")),
     ("workers-100000", absurd_worker_count, ("job.yaml line", "cluster.workers", "cores")),
+    # parameter names: one distinct text per input column
+    ("names-too-few", names_too_few, ("job.yaml line", "input.parameter_names", "3 names", "4")),
+    ("names-repeated", names_repeated, ("input.parameter_names", "'a' is entries 0 and 2")),
+    ("names-dataset-long", names_dataset_too_long, ("dataset in.h5:names", "5 names", "4")),
+    ("names-not-text", names_dataset_of_numbers, ("in.h5:names", "must be text")),
+    ("names-dataset-missing", names_dataset_missing, ("in.h5", "'labels' not found")),
 ]
 
 

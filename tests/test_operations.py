@@ -263,3 +263,41 @@ def test_log_file_gets_time_stamped_summary_and_errors(tmp_path: Path) -> None:
     assert any("wrote" in line for line in lines)
     assert any("rowfold: error:" in line and "nope.yaml" in line for line in lines)
     assert all(line[:4].isdigit() and "T" in line[:11] for line in lines)
+
+
+def test_update_keeps_its_gates_and_a_gate_it_cannot_evaluate_gives_exit_3(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    """update does not form Q, so an orthogonality gate cannot be measured: it is reported
+    as not evaluated, with the reason, and the exit status is 3, never 0 (a cron job reads
+    0 as "every gate held"). The gram gate is measured and still held."""
+    rng = np.random.default_rng(45)
+    A = prescribed(650, 4, 10.0, seed=45)
+    b = A @ rng.standard_normal(4) + 1e-3 * rng.standard_normal(650)
+    data = make_input(tmp_path, A[:600], b[:600], ".h5")
+    gates = {"orthogonality": 1e-10, "gram": 1e-10}
+    job = write_job(
+        tmp_path, data, output={"path": "result.h5", "overwrite": True, "q": True}, gates=gates
+    )
+    assert main(["--quiet", "run", str(job), "--inline"]) == 0
+    _, before = result(tmp_path)
+    assert before["gates"]["orthogonality"]["evaluated"] is True
+    append_rows(data, A[600:], b[600:])
+    capsys.readouterr()
+    assert main(["--quiet", "update", str(job), "--inline"]) == 3
+    out = capsys.readouterr().out
+    assert "not evaluated: orthogonality" in out
+    _, report = result(tmp_path)
+    gate = report["gates"]["orthogonality"]
+    assert gate == {
+        "limit": 1e-10,
+        "value": None,
+        "held": None,
+        "evaluated": False,
+        "reason": gate["reason"],
+    }
+    assert "Q not formed by update" in gate["reason"]
+    assert report["gates"]["gram"]["held"] is True and report["gates"]["gram"]["evaluated"]
+    assert report["gates_status"] == "not evaluated" and report["exit_status"] == 3
+    page = (tmp_path / "result.report.html").read_text(encoding="utf-8")
+    assert "NOT EVALUATED" in page and "Q not formed by update" in page

@@ -1,144 +1,263 @@
-"""The HTML and JSON reports of `run` and `compare`: present, consistent, and with inline
-SVG plots that are well-formed (validated with Python's HTML parser and ElementTree)."""
+"""The HTML and JSON reports of `run` and `compare`: the answer first, labelled plots that
+show every value, and matplotlib kept out of the caller's process state.
+
+Structure is checked with Python's HTML parser and each inline svg with ElementTree; what
+each plot's axes show comes from :func:`rowfold.report.plots`. The page in a real browser
+is checked in ``test_browser.py``.
+"""
 
 from __future__ import annotations
 
 import json
 import re
+import subprocess
+import sys
 import xml.etree.ElementTree as ET
 from html.parser import HTMLParser
 from pathlib import Path
 from typing import Any
 
+import h5py
 import numpy as np
 import pytest
 
+from rowfold import report as reporting
 from rowfold.cli import main
-from rowfold.report import CAUTION
+from rowfold.report import CAUTION, with_error
 
 from support import prescribed, write_job
 
 SVG_NS = "http://www.w3.org/2000/svg"  # the SVG namespace (W3C SVG 1.1 and SVG 2)
 S = f"{{{SVG_NS}}}"
 VOID = {"meta", "br", "img", "hr", "link", "input"}  # HTML elements without an end tag
+NAMES = ["offset", "slope", "drift", "tilt", "scale"]
 
 
 class Page(HTMLParser):
-    """Collects the text, each svg's preceding h2 title, and checks that tags balance.
-
-    HTMLParser lowercases tag names, and self-closing svg children (``<circle .../>``)
-    arrive through handle_startendtag, which opens nothing.
-    """
+    """Collects text, h2 headings in order, table rows by class, figure captions, and
+    checks that tags balance (svg children such as ``<path .../>`` open nothing)."""
 
     def __init__(self) -> None:
         super().__init__()
         self.text: list[str] = []
         self.open: list[str] = []
         self.headings: list[str] = []
-        self.svg_titles: list[str] = []
+        self.captions: list[str] = []
+        self.parameter_rows: list[list[str]] = []
+        self._table = ""
+        self._cells: list[str] | None = None
 
     def handle_starttag(self, tag: str, attrs: list[tuple[str, str | None]]) -> None:
         assert tag != "img", "plots are inline svg, not images"
-        if tag == "svg":
-            self.svg_titles.append(self.headings[-1] if self.headings else "")
         if tag == "h2":
             self.headings.append("")
+        if tag == "figcaption":
+            self.captions.append("")
+        if tag == "table":
+            self._table = dict(attrs).get("class") or ""
+        if tag == "tr" and self._table == "parameters":
+            self._cells = []
+        if tag == "td" and self._cells is not None:
+            self._cells.append("")
         if tag not in VOID:
             self.open.append(tag)
-
-    def handle_startendtag(self, tag: str, attrs: list[tuple[str, str | None]]) -> None:
-        assert tag not in ("svg", "h2"), f"<{tag}/> cannot be self-closing here"
 
     def handle_endtag(self, tag: str) -> None:
         assert self.open and self.open[-1] == tag, f"unbalanced </{tag}>"
         self.open.pop()
+        if tag == "tr" and self._cells:
+            self.parameter_rows.append(self._cells)
+        if tag in ("tr", "table"):
+            self._cells = None
 
     def handle_data(self, data: str) -> None:
         self.text.append(data)
-        if self.open and self.open[-1] == "h2":
+        if "h2" in self.open:
             self.headings[-1] += data
+        if "figcaption" in self.open:
+            self.captions[-1] += data
+        if self._cells is not None and self.open and self.open[-1] in ("td", "b"):
+            self._cells[-1] += data
 
 
 def parse(path: Path) -> tuple[Page, list[ET.Element]]:
-    """The page and its svg elements, each parsed as XML under its h2 title."""
+    """The page and its svg elements, each parsed as XML with its figcaption as title."""
     text = path.read_text(encoding="utf-8")
     page = Page()
     page.feed(text)
     page.close()
     assert page.open == [], page.open
     svgs = [ET.fromstring(chunk) for chunk in re.findall(r"<svg\b.*?</svg>", text, re.DOTALL)]
-    assert len(svgs) == len(page.svg_titles)
-    for svg, heading in zip(svgs, page.svg_titles, strict=True):
+    assert len(svgs) == len(page.captions)
+    for svg, caption in zip(svgs, page.captions, strict=True):
         assert svg.tag == f"{S}svg"
-        width, height = float(svg.attrib["width"]), float(svg.attrib["height"])
-        assert width > 0 and height > 0
-        assert [float(v) for v in svg.attrib["viewBox"].split()] == [0, 0, width, height]
+        box = [float(v) for v in svg.attrib["viewBox"].split()]
+        assert box[:2] == [0, 0] and box[2] > 0 and box[3] > 0
         title = svg.find(f"{S}title")
-        assert title is not None and title.text == heading  # accessible name = the h2 title
+        assert title is not None and title.text == caption  # accessible name = the caption
     return page, svgs
 
 
-def marks(element: ET.Element) -> list[ET.Element]:
-    """The drawn data marks inside an element."""
-    return [e for e in element.iter() if e.get("class") == "mark"]
+def texts(svg: ET.Element) -> str:
+    """All text drawn in an svg (matplotlib writes text as text: svg.fonttype none)."""
+    return " ".join("".join(t.itertext()) for t in svg.iter(f"{S}text"))
 
 
-def series(svg: ET.Element) -> list[ET.Element]:
-    return [g for g in svg.iter(f"{S}g") if g.get("class") == "series"]
-
-
-def frame(svg: ET.Element) -> tuple[float, float, float, float]:
-    """left, top, right, bottom of the plot box."""
-    box = next(r for r in svg.iter(f"{S}rect") if r.get("class") == "frame")
-    x, y = float(box.attrib["x"]), float(box.attrib["y"])
-    return x, y, x + float(box.attrib["width"]), y + float(box.attrib["height"])
-
-
-def check_spectrum(svg: ET.Element, report: dict[str, Any]) -> None:
-    """One point per column in each series, inside the plot box, falling as sigma falls."""
-    sigma, diag = series(svg)
-    n = report["cols"]
-    assert [len(marks(sigma)), len(marks(diag))] == [n, n]
-    left, top, right, bottom = frame(svg)
-    ys = []
-    for mark in marks(sigma):
-        x, y = float(mark.attrib["cx"]), float(mark.attrib["cy"])
-        assert left <= x <= right and top <= y <= bottom
-        ys.append(y)
-    # singular values come in non-increasing order (scipy.linalg.svdvals), so on a log axis
-    # drawn upwards their points move down the page; these five are distinct (condition 1e3).
-    assert ys == sorted(ys) and len(set(ys)) == n
-
-
-def check_orthogonality_bars(svg: ET.Element, count: int) -> None:
-    """A bar and a bound tick per method; each measured bar ends below its bound tick."""
-    bars = marks(svg)
-    ticks = [e for e in svg.iter(f"{S}line") if e.get("class") == "bound"]
-    assert len(bars) == len(ticks) == count
-    for bar, tick in zip(bars, ticks, strict=True):
-        assert float(bar.attrib["y"]) >= float(tick.attrib["y1"])  # loss <= bound (larger y)
-
-
-def test_run_report_html_renders_with_its_plots(job_folder: Path) -> None:
+def levelling_job(folder: Path, outlier: float = 0.0) -> tuple[Path, np.ndarray, np.ndarray]:
+    """A small weighted problem with named columns, column 0 held fixed, residuals screened
+    and refined; ``outlier`` (in units of the noise) is added to row 700."""
     rng = np.random.default_rng(51)
-    A = prescribed(400, 5, 1e3, seed=51)
-    b = A @ np.ones(5) + 0.01 * rng.standard_normal(400)
-    job = write_job(job_folder, A, b, solve={"residuals": True}, gates={"gram": 1e-10})
+    A = prescribed(1500, 5, 1e3, seed=51)
+    noise = 0.01
+    b = A @ np.arange(1.0, 6.0) + noise * rng.standard_normal(1500)
+    b[700] += outlier * noise
+    job = write_job(
+        folder,
+        A,
+        b,
+        input={"parameter_names": NAMES, "fixed_columns": [0], "rows_per_block": 400},
+        solve={"residuals": True, "refine": True},
+        gates={"gram": 1e-10},
+    )
+    return job, A, b
+
+
+def test_report_shows_the_answer_first_with_names_datum_refinement_and_inputs(
+    job_folder: Path,
+) -> None:
+    job, _, _ = levelling_job(job_folder)
     assert main(["--quiet", "run", str(job), "--inline"]) == 0
-    page, svgs = parse(job_folder / "out.report.html")
-    assert len(svgs) == 3  # spectrum of R, time per stage, residual histogram
     report = json.loads((job_folder / "out.report.json").read_text())
-    check_spectrum(svgs[0], report)
-    bars = marks(svgs[1])
-    assert len(bars) == len(report["seconds"])  # one bar per timed stage
-    counts = report["residual_screening"]["histogram"]["counts"]
-    assert len(marks(svgs[2])) == sum(1 for c in counts if c > 0)  # one bar per nonzero bin
-    assert len([e for e in svgs[2].iter() if e.get("class") == "vline"]) == 2  # +-flag_above
+    page, svgs = parse(job_folder / "out.report.html")
+    assert page.headings == [
+        "Answer",
+        "Refinement",
+        "Inputs",
+        "Quality",
+        "Residual screening",
+        "Conditioning",
+        "Run",
+    ]
+    with h5py.File(job_folder / "out.h5", "r") as store:
+        x, stderr = store["x"][...], store["x_stderr"][...]
+    # JSON: one entry per input column, named, with the stored x and standard error
+    assert [p["name"] for p in report["parameters"]] == NAMES
+    assert [p["x"] for p in report["parameters"]] == [float(v) for v in x]
+    assert [p["stderr"] for p in report["parameters"]] == [float(v) for v in stderr]
+    assert [p["fixed"] for p in report["parameters"]] == [True, False, False, False, False]
+    assert report["datum"]["fixed_columns"] == [0] and report["datum"]["names"] == ["offset"]
+    assert list(report)[:9] == [
+        "rowfold_version",
+        "name",
+        "job_file",
+        "exit_status",
+        "gates_status",
+        "parameters",
+        "datum",
+        "refinement",
+        "inputs",
+    ]
+    # HTML: the same table, x rounded to two digits of its standard error
+    assert [row[1] for row in page.parameter_rows] == NAMES
+    for row, value, error in zip(page.parameter_rows[1:], x[1:], stderr[1:], strict=True):
+        assert row[2:] == list(with_error(float(value), float(error)))
+        assert abs(float(row[2]) - value) <= error  # rounding moves x by far less than 1 s.e.
+    assert "held fixed (datum)" in page.parameter_rows[0][3]
     text = " ".join(page.text)
-    assert CAUTION in text
-    assert "gram" in text and "held" in text
-    assert report["caution"] == CAUTION
-    assert sum(report["residual_screening"]["histogram"]["counts"]) == 400
+    assert "offset held fixed at 0" in text
+    assert str(job_folder / "input.h5") in text  # the input's path
+    assert "corrections in" in text  # the refinement history
+    assert re.search(r"\d+\.\d MiB \([\d,]+ bytes\)", text)  # peak memory in binary units
+    assert "constant from memory" not in text
+    assert CAUTION in text and report["caution"] == CAUTION
+    assert page.captions == [
+        "Parameters with their standard errors",
+        "Iterative refinement",
+        "Standardized residuals",
+        "Spectrum of R",
+    ]
+    assert all(name in texts(svgs[0]) for name in NAMES)  # names under the axis
+
+
+def test_every_plot_has_labelled_axes_and_log_axes_bracket_their_values(
+    job_folder: Path,
+) -> None:
+    job, _, _ = levelling_job(job_folder)
+    assert main(["--quiet", "run", str(job), "--inline"]) == 0
+    report = json.loads((job_folder / "out.report.json").read_text())
+    drawn = reporting.plots(report)
+    assert set(drawn) == {"answer", "refinement", "screening", "conditioning"}
+    for plot in drawn.values():
+        for axes in plot.axes:
+            assert axes.ylabel, (plot.title, axes.title)
+            assert axes.xlabel or axes.shares_x, (plot.title, axes.title)
+            assert axes.ylabel in texts(ET.fromstring(plot.svg))
+    (spectrum,) = drawn["conditioning"].axes
+    sigma = np.array(report["r_singular_values"])
+    values = np.concatenate([sigma, np.abs(report["r_diagonal"])])
+    # a labelled decade at or below the smallest value and at or above the largest
+    assert spectrum.yscale == "log"
+    assert min(spectrum.yticks) <= values.min() and max(spectrum.yticks) >= values.max()
+    assert spectrum.ylim[0] <= values.min() and spectrum.ylim[1] >= values.max()
+    (refine,) = drawn["refinement"].axes
+    corrections = np.array(report["refinement"]["corrections"])
+    positive = corrections[corrections > 0]
+    assert min(refine.yticks) <= positive.min() and max(refine.yticks) >= positive.max()
+
+
+def test_a_gross_outlier_is_counted_apart_not_folded_into_the_edge_bin(
+    job_folder: Path,
+) -> None:
+    """A 100-sigma error lies beyond the histogram's range: the edge bins keep only values
+    inside it, the outlier is counted in ``above`` (``below`` for a negative one), the plot
+    says so, and the other residual plots draw it on their edge."""
+    job, _, _ = levelling_job(job_folder, outlier=100.0)
+    assert main(["--quiet", "run", str(job), "--inline"]) == 0
+    report = json.loads((job_folder / "out.report.json").read_text())
+    screening = report["residual_screening"]
+    hist = screening["histogram"]
+    edges, counts = np.array(hist["edges"]), np.array(hist["counts"])
+    z = np.abs(screening["worst"][0]["standardized"])
+    assert screening["worst"][0]["row"] == 700 and z > edges[-1]
+    assert hist["above"] + hist["below"] == 1 and hist["largest"] == pytest.approx(z)
+    assert counts.sum() + hist["below"] + hist["above"] == 1500  # every row counted once
+    assert counts[-1] == 0 and counts[0] == 0  # nothing else that far out (N(0,1) noise)
+    drawn = reporting.plots(report)
+    notes = [note for axes in drawn["screening"].axes for note in axes.notes]
+    assert any("1 above +6" in note or "1 below -6" in note for note in notes)
+    assert any("against row: 1 beyond" in note for note in notes)
+    page, _ = parse(job_folder / "out.report.html")
+    assert any("not in the bars" in t for t in page.text)
+
+
+def test_plot_summaries_are_bounded_and_match_the_stored_rows(job_folder: Path) -> None:
+    job, _, _ = levelling_job(job_folder)
+    assert main(["--quiet", "run", str(job), "--inline"]) == 0
+    report = json.loads((job_folder / "out.report.json").read_text())
+    with h5py.File(job_folder / "out.h5", "r") as store:
+        z = store["standardized_residuals"][:, 0]
+        h = store["leverage"][...]
+    data = report["plots_data"]
+    bins = data["row_bins"]
+    assert len(bins["starts"]) == 1500 // 50  # at least 50 rows a bin (summaries.py)
+    assert bins["starts"][0] == 0 and bins["stops"][-1] == 1500
+    for start, stop, low, high, median in zip(
+        bins["starts"], bins["stops"], bins["min"], bins["max"], bins["median"], strict=True
+    ):
+        assert low == np.min(z[start:stop]) and high == np.max(z[start:stop])
+        # read from a histogram of 1/16 sigma bins: within one bin of the values that
+        # split the bin's rows in halves
+        values, step = np.sort(z[start:stop]), bins["median_resolution"]
+        lower, upper = values[(values.size - 1) // 2], values[values.size // 2]
+        assert lower - step <= median <= upper + step
+    sample = data["sample"]
+    assert sample["size"] == 500 and sample["population"] == 1500
+    assert sample["seed"] == 16 and sample["rows"] == sorted(set(sample["rows"]))
+    rows = np.array(sample["rows"])
+    assert np.array_equal(np.array(sample["standardized"]), z[rows])
+    assert np.array_equal(np.array(sample["leverage"]), h[rows])
+    top = [t["row"] for t in data["high_leverage"]]
+    assert top == list(np.argsort(h)[::-1][: len(top)])
 
 
 def test_compare_table_json_and_html_agree(
@@ -165,14 +284,19 @@ def test_compare_table_json_and_html_agree(
         assert row["orthogonality_loss"] <= row["orthogonality_bound"]
         assert row["r_difference"] <= 1e-5  # kappa u = 1e10 * 1.1e-16
     assert by_name["auto"]["method_used"] == "scholqr3"
-    _, svgs = parse(job_folder / "out.compare.html")
+    text = (job_folder / "out.compare.html").read_text(encoding="utf-8")
+    svgs = [ET.fromstring(chunk) for chunk in re.findall(r"<svg\b.*?</svg>", text, re.DOTALL)]
     assert len(svgs) == 3  # time per method, loss of orthogonality, diag(R)
+    from rowfold import compare
+
+    drawn = compare.plots(data["methods"])
     ran = [name for name in methods if by_name[name]["status"] != "refused"]
-    assert len(marks(svgs[0])) == len(ran)  # one time bar per method that ran
-    check_orthogonality_bars(svgs[1], len(ran))
-    lines = series(svgs[2])
-    assert [g.get("data-name") for g in lines] == ran
-    assert all(len(marks(g)) == 8 for g in lines)  # one point per column of R
+    (loo,) = drawn[1].axes
+    measured = [by_name[n]["orthogonality_loss"] for n in ran]
+    bounds = [by_name[n]["orthogonality_bound"] for n in ran]
+    assert loo.yscale == "log"  # points, not bars standing on an arbitrary floor
+    assert loo.ylim[0] <= min(measured) and loo.ylim[1] >= max(bounds)
+    assert all(name in texts(svgs[1]) for name in ran)
     assert (job_folder / "out.compare" / "tsqr.h5").exists()
 
 
@@ -182,3 +306,93 @@ def test_compare_refuses_unknown_methods(
     job = write_job(job_folder, prescribed(100, 3, 10.0))
     assert main(["compare", str(job), "--methods", "tsqr,qr", "--inline"]) == 2
     assert "unknown method qr" in capsys.readouterr().err
+
+
+def test_drawing_leaves_matplotlib_state_of_the_caller_alone(job_folder: Path) -> None:
+    """rcParams and the backend are as before, and pyplot is never imported."""
+    import matplotlib
+
+    job, _, _ = levelling_job(job_folder)
+    assert main(["--quiet", "run", str(job), "--inline"]) == 0
+    report = json.loads((job_folder / "out.report.json").read_text())
+    before = dict(matplotlib.rcParams)
+    backend = matplotlib.get_backend()
+    with matplotlib.rc_context({"font.size": 17.0}):
+        reporting.render_html(report)
+        assert matplotlib.rcParams["font.size"] == 17.0  # the caller's own context holds
+    after = dict(matplotlib.rcParams)
+    assert {k for k in before if before[k] != after[k]} == set()
+    assert matplotlib.get_backend() == backend
+
+
+def test_matplotlib_is_imported_only_when_a_report_is_drawn() -> None:
+    code = (
+        "import sys, rowfold.cli, rowfold.runner, rowfold.report, rowfold.compare;"
+        "print(sorted(m for m in sys.modules if m.split('.')[0] == 'matplotlib'))"
+    )
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
+    assert out.stdout.strip() == "[]"
+
+
+def test_pyplot_is_never_imported_by_drawing(job_folder: Path) -> None:
+    job, _, _ = levelling_job(job_folder)
+    code = (
+        "import sys; from rowfold.cli import main;"
+        f"status = main(['--quiet', 'run', {str(job)!r}, '--inline']);"
+        "print(status, 'matplotlib.figure' in sys.modules, 'matplotlib.pyplot' in sys.modules)"
+    )
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
+    assert out.stdout.splitlines()[-1].split() == ["0", "True", "False"]
+
+
+@pytest.mark.parametrize(
+    ("x", "se", "expected"),
+    [
+        (1.23456789, 0.00123, ("1.2346", "0.0012")),  # two digits of the error
+        (4.0012, 0.001, ("4.0012", "0.0010")),  # trailing zero kept: 2 significant digits
+        (123456.7, 25.0, ("123457", "25")),
+        (-0.5, 0.0, ("-0.5", "0")),  # a fixed parameter
+        (2.5, None, ("2.5", "&mdash;")),
+    ],
+)
+def test_x_is_rounded_to_its_standard_error(
+    x: float, se: float | None, expected: tuple[str, str]
+) -> None:
+    assert with_error(x, se) == expected
+
+
+def test_report_without_rhs_says_there_is_no_solution(job_folder: Path) -> None:
+    job = write_job(job_folder, prescribed(300, 4, 10.0, seed=53))
+    assert main(["--quiet", "run", str(job), "--inline"]) == 0
+    report: dict[str, Any] = json.loads((job_folder / "out.report.json").read_text())
+    assert report["parameters"] is None
+    page, _ = parse(job_folder / "out.report.html")
+    assert "no solution x" in " ".join(page.text)
+    assert page.captions == ["Spectrum of R"]
+
+
+@pytest.mark.parametrize("suffix", [".h5", ".zarr"])
+def test_parameter_names_from_a_dataset_of_text(job_folder: Path, suffix: str) -> None:
+    """``input.parameter_names`` may name a 1-D text dataset (HDF5 or Zarr) in the input."""
+    from rowfold.storage import write_arrays
+
+    A = prescribed(200, 3, 10.0, seed=54)
+    names = np.array(["north", "east", "höhe"])  # any UTF-8 text
+    write_arrays(job_folder / f"in{suffix}", {"A": A, "b": A[:, 0], "names": names})
+    job = job_folder / "job.yaml"
+    job.write_text(
+        f"input: {{path: in{suffix}, matrix: A, rhs: b, parameter_names: names}}\n"
+        "output: {path: out.h5, overwrite: true}\n",
+        encoding="utf-8",
+    )
+    assert main(["--quiet", "run", str(job), "--inline"]) == 0
+    report = json.loads((job_folder / "out.report.json").read_text())
+    assert [p["name"] for p in report["parameters"]] == list(names)
+    default = job_folder / "default.yaml"
+    default.write_text(
+        f"input: {{path: in{suffix}, matrix: A, rhs: b}}\noutput: {{path: d.h5}}\n",
+        encoding="utf-8",
+    )
+    assert main(["--quiet", "run", str(default), "--inline"]) == 0
+    plain = json.loads((job_folder / "d.report.json").read_text())
+    assert [p["name"] for p in plain["parameters"]] == ["x0", "x1", "x2"]

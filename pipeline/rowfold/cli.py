@@ -1,9 +1,9 @@
 """Command line: ``rowfold VERB ...`` (also ``python -m rowfold``).
 
 Verbs call :mod:`rowfold.runner` and nothing deeper. Exit statuses: 0 success, 2 invalid
-job or input (nothing computed or written), 3 written but a quality gate failed, 4 failed
-while running (no earlier result replaced). Errors are one line on stderr; ``--debug``
-adds the traceback.
+job or input (nothing computed or written), 3 written but a quality gate failed or could
+not be evaluated, 4 failed while running (no earlier result replaced). Errors are one
+line on stderr; ``--debug`` adds the traceback.
 """
 
 from __future__ import annotations
@@ -107,7 +107,8 @@ def _summary(outcome: runner.RunOutcome) -> str:
             "n/a" if value is None else f"{value:.2e}" if isinstance(value, float) else str(value)
         )
 
-    failed = [name for name, gate in report["gates"].items() if not gate["held"]]
+    failed = [name for name, gate in report["gates"].items() if gate["held"] is False]
+    unknown = [name for name, gate in report["gates"].items() if gate["held"] is None]
     lines = [
         f"{report['name']}: {report['method']} on {report['rows']} x {report['cols']} "
         f"in {report['blocks']} blocks, {report['passes_over_input']} passes over A",
@@ -119,6 +120,8 @@ def _summary(outcome: runner.RunOutcome) -> str:
     lines += [f"  warning: {w}" for w in report.get("warnings", [])]
     if failed:
         lines.append(f"  quality gate failed: {', '.join(failed)} (see the report)")
+    if unknown:
+        lines.append(f"  quality gate not evaluated: {', '.join(unknown)} (exit 3; see the report)")
     return "\n".join(lines)
 
 

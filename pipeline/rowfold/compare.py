@@ -16,7 +16,6 @@ from typing import Any
 
 import numpy as np
 
-from rowfold import svgplot
 from rowfold.errors import BreakdownError
 from rowfold.kernels.norms import frobenius
 from rowfold.report import CAUTION
@@ -124,34 +123,24 @@ def text_table(records: list[dict[str, Any]]) -> str:
     return "\n".join(out)
 
 
-def plots(records: list[dict[str, Any]]) -> list[tuple[str, str]]:
-    """(title, inline SVG text) for time, loss of orthogonality against its bound, and diag(R)."""
+def plots(records: list[dict[str, Any]]) -> list[Any]:
+    """The comparison's plots (:class:`rowfold.plots.Plot`): time per method, loss of
+    orthogonality against its published bound, and diag(R) of each method."""
+    from rowfold import plots as draw
+
     ran = [r for r in records if r["status"] != "refused"]
     names = [r["method"] for r in ran]
-    time_title = "Time per method"
-    loo_title = "Loss of orthogonality against the published bound"
-    diag_title = "Diagonal of R"
-    time = svgplot.bar_chart(
-        names, [r["seconds"] for r in ran], title=time_title, value_label="seconds"
-    )
-    loo = svgplot.bar_chart(
-        names,
-        [r["orthogonality_loss"] for r in ran],
-        title=loo_title,
-        log_y=True,
-        ticks=[r["orthogonality_bound"] for r in ran],
-        bar_label="measured ||I - Q^H Q||_F",
-        tick_label="published bound",
-        color=svgplot.COLORS[1],
-    )
-    series = [
-        svgplot.Series(r["method"], np.abs(svgplot.floats(r["r_diagonal"] or [])), marker="circle")
-        for r in ran
-    ]
-    diag = svgplot.line_chart(
-        series, title=diag_title, x_label="column", y_label="|r_ii|", log_y=True
-    )
-    return [(time_title, time), (loo_title, loo), (diag_title, diag)]
+    with draw.drawing() as canvas:
+        return [
+            draw.method_times(canvas, names, [r["seconds"] for r in ran]),
+            draw.orthogonality(
+                canvas,
+                names,
+                [r["orthogonality_loss"] for r in ran],
+                [r["orthogonality_bound"] for r in ran],
+            ),
+            draw.diagonals(canvas, {r["method"]: r["r_diagonal"] or [] for r in ran}),
+        ]
 
 
 def render_html(job: Job, records: list[dict[str, Any]]) -> str:
@@ -166,12 +155,13 @@ def render_html(job: Job, records: list[dict[str, Any]]) -> str:
         for r in records
         if r["message"]
     )
-    images = "".join(f"<h2>{html.escape(title)}</h2>{svg}" for title, svg in plots(records))
+    images = "".join(f"<h2>{html.escape(plot.title)}</h2>{plot.svg}" for plot in plots(records))
     title = html.escape(f"rowfold comparison: {job.name}")
     return (
         f"<!DOCTYPE html><html lang='en'><head><meta charset='utf-8'><title>{title}</title>"
         "<style>body{font-family:sans-serif;max-width:60em;margin:2em auto}"
-        "td,th{padding:.2em .6em;text-align:left}td{font-family:monospace}</style></head>"
+        "td,th{padding:.2em .6em;text-align:left}td{font-family:monospace}"
+        "svg.plot{width:100%;height:auto;max-width:54em;display:block}</style></head>"
         f"<body><h1>{title}</h1><table><tr>{head}</tr>{body}</table>"
         f"{f'<ul>{notes}</ul>' if notes else ''}{images}"
         f"<p>{html.escape(CAUTION)}</p></body></html>\n"

@@ -10,7 +10,9 @@ its drains and pumping stations as the peat shrinks. Each row is one levelled he
 difference between two neighbouring benchmarks (+1 and -1 in A, so A is sparse and stored
 as CSR), weighted by 1 / distance as levelling error grows with the square root of the
 distance. The board's datum benchmark (column 0) is held fixed at height 0
-(``input.fixed_columns``), so the other heights are relative to it.
+(``input.fixed_columns``), so the other heights are relative to it. The benchmarks' names
+are a dataset beside the network (``input.parameter_names``); the calibration's parameter
+names are a list in its job files.
 
 The numbers of both are synthetic, drawn from fixed seeds, with known true parameters.
 """
@@ -43,6 +45,11 @@ input:
   matrix: calibration/design
   rhs: calibration/offsets
   rows_per_block: auto
+  parameter_names: [zp_d00, zp_d01, zp_d02, zp_d03, zp_d04, zp_d05, zp_d06, zp_d07,
+    zp_d08, zp_d09, zp_d10, zp_d11, zp_d12, zp_d13, zp_d14, zp_d15, zp_d16, zp_d17,
+    zp_d18, zp_d19, zp_d20, zp_d21, zp_d22, zp_d23, zp_d24, zp_d25, zp_d26, zp_d27,
+    zp_d28, zp_d29, zp_d30, zp_d31, extinction, colour, flat_x, flat_y, flat_xx,
+    flat_xy, flat_yy, flat_xxx]
 method:
   name: tsqr
   tree: binary
@@ -67,6 +74,11 @@ input:
   path: data/tarnholm_photometry.h5
   matrix: calibration/design
   rhs: calibration/offsets
+  parameter_names: [zp_d00, zp_d01, zp_d02, zp_d03, zp_d04, zp_d05, zp_d06, zp_d07,
+    zp_d08, zp_d09, zp_d10, zp_d11, zp_d12, zp_d13, zp_d14, zp_d15, zp_d16, zp_d17,
+    zp_d18, zp_d19, zp_d20, zp_d21, zp_d22, zp_d23, zp_d24, zp_d25, zp_d26, zp_d27,
+    zp_d28, zp_d29, zp_d30, zp_d31, extinction, colour, flat_x, flat_y, flat_xx,
+    flat_xy, flat_yy, flat_xxx]
 method:
   name: cholqr2
 output:
@@ -113,6 +125,7 @@ input:
   rhs: network/dh
   weights: network/w
   fixed_columns: [0]
+  parameter_names: network/benchmarks   # a dataset of names, one per benchmark
 method:
   name: cholqr2
 output:
@@ -121,6 +134,30 @@ output:
 gates:
   gram: 1.0e-12
 """
+
+
+# Drains, sluices and droves of the (invented) fen, for naming its benchmarks.
+PLACES = (
+    "Ketterby Sluice",
+    "Haddle Lode",
+    "Scurry Dyke",
+    "Sallow Drain",
+    "Moorcock Bridge",
+    "Fenny Reach",
+    "Tollgate Culvert",
+    "Wrayholme Cut",
+    "Pellow Outfall",
+    "Hobble Staunch",
+    "Crane Fen Drove",
+    "Lattermere Drove",
+)
+
+
+def benchmark_names(benchmarks: int = BENCHMARKS) -> list[str]:
+    """Names of the benchmarks; the datum (column 0) is the pumping-station plate."""
+    names = [f"BF{i:03d} {PLACES[i % len(PLACES)]}" for i in range(benchmarks)]
+    names[DATUM] = f"BF{DATUM:03d} Brackenholt pumping station datum plate"
+    return names
 
 
 def benchmark_positions(benchmarks: int = BENCHMARKS, seed: int = 11) -> np.ndarray:
@@ -208,7 +245,10 @@ def write_scenario(folder: Path, rows: int | None = None) -> list[Path]:
     A, dh, w = network(network_rows(rows))
     levelling = folder / "data" / "brackenholt_levelling.h5"
     levelling.unlink(missing_ok=True)
-    write_csr(levelling, "network/A", A, {"network/dh": dh, "network/w": w})
+    names = np.array(benchmark_names(A.shape[1]))
+    write_csr(
+        levelling, "network/A", A, {"network/dh": dh, "network/w": w, "network/benchmarks": names}
+    )
     jobs = []
     for name, text in (
         ("zero_points_tsqr.yaml", JOB_TSQR),

@@ -15,8 +15,9 @@ from typing import Any
 
 import numpy as np
 
-from rowfold import __version__
+from rowfold import __version__, summaries
 from rowfold.blocks import BlockPlan, load_block, load_weights
+from rowfold.errors import EXIT_GATE_FAILED, EXIT_OK
 from rowfold.kernels import metrics, norms
 from rowfold.methods._graph import sum_tree, task
 from rowfold.methods.base import Engine, Factorization
@@ -196,7 +197,8 @@ def equilibration(norms_: np.ndarray) -> np.ndarray:
 
 
 WORST_ROWS = 20
-# Standardized residuals beyond +-6 are counted in the outermost histogram bins.
+# The histogram of standardized residuals covers +-HISTOGRAM_LIMIT; values beyond are
+# counted apart (``below``, ``above``), never folded into the outer bins.
 HISTOGRAM_LIMIT = 6.0
 
 
@@ -212,12 +214,20 @@ class Screening:
         Count of flagged rows per right-hand side.
     worst : list of dict
         The largest |standardized residuals|: row, rhs column, residual, leverage, value.
+    histogram : dict
+        ``edges`` and ``counts`` over +-HISTOGRAM_LIMIT; ``below`` and ``above`` count the
+        values beyond, ``largest`` is the largest |value|, ``not_finite`` counts values that
+        are not finite (leverage 1), ``rows_left_out`` the rows of zero weight.
+    plots_data : dict
+        Bounded-size summaries for the plots (:mod:`rowfold.summaries`): ``row_bins``,
+        ``sample`` and ``high_leverage``.
     """
 
     flag_above: float
     flagged: list[int]
     worst: list[dict[str, Any]]
-    histogram: dict[str, list[float]]
+    histogram: dict[str, Any]
+    plots_data: dict[str, Any]
 
 
 def standardized(residuals: np.ndarray, leverage: np.ndarray, sigma: np.ndarray) -> np.ndarray:
@@ -237,11 +247,17 @@ def screen_residuals(
     """Compute standardized residuals block by block from stored residuals and leverages.
 
     ``read(name, start, stop)`` reads rows of a stored array; ``write(start, rows)``
-    stores the standardized residuals. Memory holds one block at a time.
+    stores the standardized residuals. Memory holds one block at a time, and the summaries
+    for the plots have a fixed size (:mod:`rowfold.summaries`), whatever the rows.
     """
     flagged = np.zeros(plan.rhs_cols, dtype=int)
     edges = np.linspace(-HISTOGRAM_LIMIT, HISTOGRAM_LIMIT, 49)
     counts = np.zeros(edges.size - 1, dtype=int)
+    tails = {"below": 0, "above": 0, "not_finite": 0, "rows_left_out": 0}
+    largest = 0.0
+    bins = summaries.RowBins(plan.rows, plan.rhs_cols)
+    sample = summaries.Reservoir()
+    leverage_top = summaries.Extremes()
     worst: list[tuple[float, int, int, float, float]] = []
     for start, stop in plan.bounds:
         r = read("residuals", start, stop).reshape(stop - start, plan.rhs_cols)
@@ -250,8 +266,19 @@ def screen_residuals(
         write(start, z)
         size = np.abs(z)
         flagged += np.sum(size > flag_above, axis=0)
-        finite = np.real(z[np.isfinite(z)])
-        counts += np.histogram(np.clip(finite, edges[0], edges[-1]), bins=edges)[0]
+        used = summaries.informative(r, h)
+        tails["rows_left_out"] += int(np.count_nonzero(~used))
+        shown = np.where(used[:, None], np.real(z), np.nan)
+        finite = shown[np.isfinite(shown)]
+        tails["not_finite"] += int(np.count_nonzero(used)) * plan.rhs_cols - finite.size
+        tails["below"] += int(np.count_nonzero(finite < edges[0]))
+        tails["above"] += int(np.count_nonzero(finite > edges[-1]))
+        largest = max(largest, float(np.max(np.abs(finite), initial=0.0)))
+        counts += np.histogram(finite, bins=edges)[0]
+        bins.add(start, shown)
+        rows = np.arange(start, stop)[used]
+        sample.offer(rows, shown[used], h[used])
+        leverage_top.offer(rows, shown[used], h[used])
         top = np.argsort(np.nan_to_num(size, nan=-1.0), axis=None)[::-1][:WORST_ROWS]
         for flat in top:
             row, col = divmod(int(flat), plan.rhs_cols)
@@ -271,12 +298,25 @@ def screen_residuals(
             }
             for value, row, col, res, lev in worst
         ],
-        {"edges": [float(e) for e in edges], "counts": [int(c) for c in counts]},
+        {
+            "edges": [float(e) for e in edges],
+            "counts": [int(c) for c in counts],
+            **tails,
+            "largest": largest,
+        },
+        {
+            "row_bins": bins.as_dict(plan.rhs_1d),
+            "sample": sample.as_dict(plan.rhs_1d),
+            "high_leverage": leverage_top.as_list(plan.rhs_1d),
+        },
     )
 
 
 # Published loss-of-orthogonality bounds, as (formula, source); see CHECKS.md. "10 n u"
 # stands for a bound of order u, with a constant that is common practice, not published.
+# Where the constant of a published bound was recalled rather than read again at its
+# source, the source text says so.
+RECALLED = "constant recalled from the literature, not re-checked"
 BOUNDS: dict[str, tuple[str, str]] = {
     "tsqr": (
         "10 n u",
@@ -284,13 +324,12 @@ BOUNDS: dict[str, tuple[str, str]] = {
     ),
     "cholqr2": (
         "6 (m n u + n (n+1) u)",
-        "Yamamoto, Nakatsukasa, Yanagisawa, Fukaya, ETNA 44 (2015), for kappa below ~1e8 "
-        "(constant from memory)",
+        "Yamamoto, Nakatsukasa, Yanagisawa, Fukaya, ETNA 44 (2015), for kappa below ~1e8; "
+        + RECALLED,
     ),
     "scholqr3": (
         "6 (m n u + n (n+1) u)",
-        "O(u): Fukaya, Kannan, Nakatsukasa, Yamamoto, Yanagisawa, SISC 42(1) 2020 "
-        "(constant from memory)",
+        "O(u): Fukaya, Kannan, Nakatsukasa, Yamamoto, Yanagisawa, SISC 42(1) 2020; " + RECALLED,
     ),
     "rcholqr": ("10 n u", "O(u): Higgins, Szyld, Boman, Yamazaki 2023 (arXiv 2309.05868)"),
     "bcgs2": ("10 n u", "O(u): Barlow & Smoktunowicz, Numer. Math. 123 (2013)"),
@@ -300,7 +339,7 @@ BOUNDS: dict[str, tuple[str, str]] = {
     ),
     "bmgs": (
         "10 n u kappa",
-        "O(u kappa): Jalby & Philippe, SISC 12(5) 1991 (constant from memory)",
+        "O(u kappa): Jalby & Philippe, SISC 12(5) 1991; " + RECALLED,
     ),
 }
 
@@ -322,27 +361,80 @@ def published_bound(
 
 @dataclass(frozen=True)
 class GateResult:
-    """One gate: its limit, the measured value and whether it held."""
+    """One gate: its limit, the measured value and whether it held.
+
+    A gate whose figure was not measured is not evaluated: ``value`` and ``held`` are None,
+    ``evaluated`` is False and ``reason`` says why. It is never dropped, and it counts as a
+    gate that did not hold (exit status 3): nobody may read it as passed.
+    """
 
     limit: float
     value: float | None
-    held: bool
+    held: bool | None
+    evaluated: bool = True
+    reason: str | None = None
+
+    def as_dict(self) -> dict[str, Any]:
+        """The report's form of the gate."""
+        return {
+            "limit": self.limit,
+            "value": self.value,
+            "held": self.held,
+            "evaluated": self.evaluated,
+            "reason": self.reason,
+        }
 
 
-def check_gates(gates: GateSpec, figures: dict[str, Any]) -> dict[str, GateResult]:
-    """Compare report figures with the job's gates; a missing figure fails its gate."""
-    pairs = {
-        "orthogonality": (gates.orthogonality, figures.get("orthogonality_loss")),
-        "residual": (gates.residual, figures.get("factorization_residual")),
-        "gram": (gates.gram, figures.get("gram_residual")),
-    }
+GATE_FIGURES = {
+    "orthogonality": "orthogonality_loss",
+    "residual": "factorization_residual",
+    "gram": "gram_residual",
+}
+
+
+def check_gates(
+    gates: GateSpec, figures: dict[str, Any], unmeasured: dict[str, str] | None = None
+) -> dict[str, GateResult]:
+    """Compare report figures with the job's gates.
+
+    Parameters
+    ----------
+    gates : GateSpec
+        The job's limits; a gate without a limit is not set and not reported.
+    figures : dict
+        The measured figures (see :data:`GATE_FIGURES`); None where not measured.
+    unmeasured : dict, optional
+        Why a figure was not measured, by figure name (e.g. Q was not formed).
+
+    Returns
+    -------
+    dict
+        One :class:`GateResult` per gate set: held or failed when its figure was measured
+        (a non-finite value fails), not evaluated (held None) when it was not.
+    """
+    reasons = unmeasured or {}
     results: dict[str, GateResult] = {}
-    for name, (limit, value) in pairs.items():
+    for name, figure in GATE_FIGURES.items():
+        limit = getattr(gates, name)
         if limit is None:
             continue
-        held = value is not None and bool(np.isfinite(value)) and value <= limit
+        value = figures.get(figure)
+        if value is None:
+            reason = reasons.get(figure, f"{figure} was not measured in this run")
+            results[name] = GateResult(limit, None, None, evaluated=False, reason=reason)
+            continue
+        held = bool(np.isfinite(value)) and value <= limit
         results[name] = GateResult(limit=limit, value=value, held=held)
     return results
+
+
+def gates_status(gates: dict[str, dict[str, Any]]) -> str:
+    """``held`` when every gate held, else ``failed`` or ``not evaluated`` (failed first)."""
+    if any(g["held"] is False for g in gates.values()):
+        return "failed"
+    if any(g["held"] is None for g in gates.values()):
+        return "not evaluated"
+    return "held"
 
 
 def _clean(value: Any) -> Any:
@@ -377,8 +469,15 @@ def assemble_report(
     peak_memory: int,
     passes: int,
     extra: dict[str, Any],
+    unmeasured: dict[str, str] | None = None,
 ) -> dict[str, Any]:
-    """Assemble the report dictionary (the keys SPEC lists, and more)."""
+    """Assemble the report dictionary (the keys SPEC lists, and more).
+
+    The answer comes first (:data:`ANSWER_FIRST`: the parameters, the datum, the
+    refinement and the inputs, when ``extra`` holds them), then the quality figures.
+    ``unmeasured`` says why a figure was not measured (by figure name); a gate on such a
+    figure is reported as not evaluated, and the report's ``exit_status`` is then 3.
+    """
     sigma = metrics.singular_values(fact.R)
     norm_a = float(sigma[0]) if sigma.size else 0.0
     figures: dict[str, Any] = {
@@ -446,14 +545,18 @@ def assemble_report(
             f"A^H A {problem} in float64 at this scaling of A, so gram_residual is not "
             "measured; solve.scale_columns: true brings the columns to norm about 1"
         )
-    gates = check_gates(job.gates, figures)
-    report["gates"] = {
-        name: {"limit": g.limit, "value": g.value, "held": g.held} for name, g in gates.items()
-    }
+    reasons = _unmeasured_reasons(formed_q, figures["factorization_residual"], unmeasured)
+    gates = check_gates(job.gates, figures, reasons)
+    report["gates"] = {name: g.as_dict() for name, g in gates.items()}
+    report["gates_status"] = gates_status(report["gates"])
+    report["exit_status"] = EXIT_OK if report["gates_status"] == "held" else EXIT_GATE_FAILED
     warnings = report["warnings"] + list(extra.get("warnings", []))
+    warnings += [
+        f"gate {name} not evaluated: {g.reason}" for name, g in gates.items() if not g.evaluated
+    ]
     report.update(extra)
     report["warnings"] = warnings
-    cleaned: dict[str, Any] = _clean(report)
+    cleaned: dict[str, Any] = _clean(_answer_first(report))
     return cleaned
 
 
@@ -464,6 +567,40 @@ def _factorization_residual(sums: metrics.Sums) -> float | None:
         return None
     size = float(a_norm.value)
     return float(defect.value) / size if size > 0 else None
+
+
+# Report keys that come first: who and what, the verdict, then the answer.
+ANSWER_FIRST = (
+    "rowfold_version",
+    "name",
+    "job_file",
+    "exit_status",
+    "gates_status",
+    "parameters",
+    "datum",
+    "refinement",
+    "inputs",
+)
+
+
+def _answer_first(report: dict[str, Any]) -> dict[str, Any]:
+    """The same report with the keys of :data:`ANSWER_FIRST` in front, in that order."""
+    front = {key: report[key] for key in ANSWER_FIRST if key in report}
+    return {**front, **{k: v for k, v in report.items() if k not in front}}
+
+
+def _unmeasured_reasons(
+    formed_q: bool, factorization_residual: float | None, given: dict[str, str] | None
+) -> dict[str, str]:
+    """Why figures were not measured: the caller's reasons, else what this run knows."""
+    reasons: dict[str, str] = {}
+    if not formed_q:
+        reasons["orthogonality_loss"] = "Q was not formed in this run"
+        reasons["factorization_residual"] = "Q was not formed in this run"
+    elif factorization_residual is None:
+        reasons["factorization_residual"] = "||A||_F is 0, so the relative residual is undefined"
+    reasons.update(given or {})
+    return reasons
 
 
 def _rank_only(R: np.ndarray, job: Job) -> int:

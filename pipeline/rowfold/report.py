@@ -1,23 +1,40 @@
 """Formatting of the quality report: JSON text and a human-readable HTML page with plots.
 
-The figures themselves are assembled by :func:`rowfold.quality.assemble_report`.
+The figures themselves are assembled by :func:`rowfold.quality.assemble_report`. The page
+shows the answer first (the parameters with their standard errors, the datum, the
+refinement, the inputs), then the quality figures and gates, then the residual screening
+and the plots (:mod:`rowfold.plots`, drawn with matplotlib, imported only here and only
+when a page is rendered).
 """
 
 from __future__ import annotations
 
 import html
 import json
+import math
 from typing import Any
 
 import numpy as np
-
-from rowfold import svgplot
 
 CAUTION = (
     "rowfold computes factorizations and least-squares solutions; it does not judge whether a "
     "model suits its purpose. Results that feed engineering or land-survey decisions must be "
     "reviewed by a qualified professional, and local codes and licensed practice govern."
 )
+# Parameter tables longer than this scroll inside their own box.
+SCROLL_ROWS = 25
+STYLE = """body{font-family:sans-serif;max-width:62em;margin:2em auto;padding:0 1em;color:#222}
+h1{font-size:1.5em}h2{margin-top:1.6em;border-bottom:1px solid #ccc}
+table{border-collapse:collapse;margin:.4em 0}th,td{padding:.15em .7em;text-align:left}
+td.num{font-family:monospace;text-align:right;white-space:nowrap}
+td.mono{font-family:monospace;overflow-wrap:anywhere}
+tr:nth-child(even) td{background:#f6f6f6}
+.scroll{max-height:28em;overflow:auto;border:1px solid #ddd;display:inline-block}
+.scroll th{position:sticky;top:0;background:#fff}
+.verdict{padding:.5em 1em;font-weight:bold}.ok{background:#e7f4e7}.bad{background:#fbe3e3}
+svg.plot{width:100%;height:auto;max-width:54em;display:block}figure{margin:1em 0}
+.caution{border-left:4px solid #b60;padding:.5em 1em;background:#fff6ea}
+.note{color:#555;font-size:.92em}"""
 
 
 def to_json(report: dict[str, Any]) -> str:
@@ -25,142 +42,396 @@ def to_json(report: dict[str, Any]) -> str:
     return json.dumps(report, indent=2, sort_keys=False) + "\n"
 
 
-def _spectrum(report: dict[str, Any]) -> str:
-    sigma = np.asarray(report.get("r_singular_values") or [], dtype=float)
-    diag = np.abs(np.asarray(report.get("r_diagonal") or [], dtype=float))
-    series = [
-        svgplot.Series("singular values of R", sigma, line=True, marker="circle"),
-        svgplot.Series("|diag(R)|", diag, line=False, marker="square"),
-    ]
-    return svgplot.line_chart(series, title="Spectrum of R", x_label="index", log_y=True)
-
-
-def _timing(report: dict[str, Any]) -> str:
-    seconds = report.get("seconds") or {}
-    return svgplot.bar_chart(
-        list(seconds),
-        list(seconds.values()),
-        title="Time per stage",
-        value_label="seconds",
-        horizontal=True,
-        height=max(120, 60 + 24 * len(seconds)),
-    )
-
-
-def _histogram(report: dict[str, Any]) -> str | None:
-    hist = (report.get("residual_screening") or {}).get("histogram")
-    if not hist:
-        return None
-    limit = report["residual_screening"]["flag_above"]
-    return svgplot.histogram(
-        hist["edges"],
-        hist["counts"],
-        title="Standardized residuals",
-        x_label="standardized residual (outer bins hold everything beyond)",
-        log_y=True,
-        vlines=[-limit, limit],
-        vline_label=f"flag limit ±{limit:g}",
-    )
-
-
-def plots(report: dict[str, Any]) -> list[tuple[str, str]]:
-    """(title, inline SVG text) of the report's plots."""
-    out = [("Spectrum of R", _spectrum(report)), ("Time per stage", _timing(report))]
-    histogram = _histogram(report)
-    if histogram:
-        out.append(("Standardized residuals", histogram))
-    return out
-
-
-_ROWS = (
-    ("method", "method asked"),
-    ("method_used", "method used"),
-    ("rows", "rows (m)"),
-    ("cols", "columns (n)"),
-    ("blocks", "row blocks"),
-    ("passes_over_input", "passes over A"),
-    ("orthogonality_loss", "loss of orthogonality ||I - Q^H Q||_F"),
-    ("factorization_residual", "||A - QR||_F / ||A||_F"),
-    ("gram_residual", "||A^H A - R^H R||_F / ||A||_F^2"),
-    ("r_condition", "condition number of R"),
-    ("rank", "numerical rank"),
-    ("solution_residual_norm", "||b - A x||"),
-    ("residual_std", "residual standard deviation"),
-    ("normal_equations_residual", "||A^H r|| / (||A|| ||r||)"),
-    ("peak_memory_bytes", "peak memory (bytes)"),
-)
-
-
-def _fmt(value: Any) -> str:
-    if value is None:
-        return "&mdash;"
-    if isinstance(value, float):
-        return f"{value:.4g}"
-    if isinstance(value, list):
-        return ", ".join(_fmt(v) for v in value)
+def _esc(value: Any) -> str:
     return html.escape(str(value))
 
 
-def _num(value: Any) -> str:
+def _num(value: Any, digits: int = 4) -> str:
+    """A number for a table cell; per-rhs lists joined; null as a dash."""
+    if value is None:
+        return "&mdash;"
+    if isinstance(value, list):
+        return ", ".join(_num(v, digits) for v in value)
+    if isinstance(value, dict) and "re" in value:
+        return f"{value['re']:.{digits}g}{value['im']:+.{digits}g}j"
+    if isinstance(value, bool) or not isinstance(value, int | float):
+        return _esc(value)
+    return f"{value:.{digits}g}" if isinstance(value, float) else f"{value:,}"
+
+
+def _bytes(count: Any) -> str:
+    """Bytes in binary units, with the exact count beside."""
+    if not isinstance(count, int):
+        return "&mdash;"
+    size, unit = float(count), "bytes"
+    for name in ("KiB", "MiB", "GiB", "TiB"):
+        if size < 1024:
+            break
+        size, unit = size / 1024, name
+    return f"{size:.1f} {unit} ({count:,} bytes)" if unit != "bytes" else f"{count:,} bytes"
+
+
+def with_error(x: Any, se: Any) -> tuple[str, str]:
+    """x rounded to two significant digits of its standard error, and the error.
+
+    A zero or missing error (a fixed parameter) keeps x at 6 significant digits.
+    """
+    if isinstance(x, dict) or x is None:
+        return _num(x, 10), _num(se, 2)
+    if se is None or not math.isfinite(se) or se <= 0:
+        return f"{x:.6g}", "0" if se == 0 else "&mdash;"
+    decimals = 1 - math.floor(math.log10(se))
+    if decimals < 0 or abs(x) >= 1e15:
+        return f"{x:.6g}", f"{se:.2g}"
+    return f"{x:.{decimals}f}", f"{se:#.2g}".rstrip(".")
+
+
+# ------------------------------------------------------------------------------ sections
+
+
+def _verdict(report: dict[str, Any]) -> str:
+    gates = report.get("gates", {})
+    status = report.get("gates_status", "held")
+    if not gates:
+        return "<p class='verdict ok'>No quality gates set (exit status 0).</p>"
+    if status == "held":
+        return f"<p class='verdict ok'>Every quality gate held ({len(gates)}; exit status 0).</p>"
+    failed = [n for n, g in gates.items() if g["held"] is False]
+    unknown = [n for n, g in gates.items() if g["held"] is None]
+    parts = []
+    if failed:
+        parts.append(f"failed: {', '.join(failed)}")
+    if unknown:
+        parts.append(f"not evaluated: {', '.join(unknown)}")
+    return (
+        f"<p class='verdict bad'>Quality gates {_esc('; '.join(parts))} (exit status 3). "
+        "See Gates below.</p>"
+    )
+
+
+def _answer(report: dict[str, Any]) -> str:
+    table = report.get("parameters")
+    head = "<h2 id='answer'>Answer</h2>"
+    if not table:
+        return head + (
+            "<p>No right-hand side (<code>input.rhs</code>) was given, so there is no "
+            "solution x; the result is the factorization (R"
+            f"{', and Q' if report.get('orthogonality_loss') is not None else ''}).</p>"
+            + _datum(report)
+        )
+    rhs = report.get("rhs_cols", 1)
+    weighted = "weights" in (report.get("inputs") or {})
+    sigma = "of unit weight (units of b times sqrt(w))" if weighted else "(units of b)"
+    summary = (
+        f"<p>{len(table)} parameters from {report.get('rows', 0):,} rows"
+        f"{f' and {rhs} right-hand sides' if rhs > 1 else ''}; numerical rank "
+        f"{report.get('rank')} of {report.get('cols')} estimated columns; residual standard "
+        f"deviation {sigma} {_num(report.get('residual_std'))} with "
+        f"{_num(report.get('degrees_of_freedom'))} degrees of freedom.</p>"
+    )
+    return head + summary + _datum(report) + _parameter_table(table, rhs)
+
+
+def _datum(report: dict[str, Any]) -> str:
+    datum = report.get("datum") or {}
+    if not datum:
+        return ""
+    return f"<p><b>Datum.</b> {_esc(datum.get('note', ''))}.</p>"
+
+
+def _parameter_table(table: list[dict[str, Any]], rhs: int) -> str:
+    per = [f" (rhs {k})" for k in range(rhs)] if rhs > 1 else [""]
+    head = (
+        "<tr><th>column</th><th>name</th>"
+        + "".join(f"<th>x{p}</th><th>standard error{p}</th>" for p in per)
+        + "</tr>"
+    )
+    rows = []
+    for entry in table:
+        xs = entry["x"] if rhs > 1 else [entry["x"]]
+        ses = entry["stderr"] if rhs > 1 else [entry["stderr"]]
+        cells = []
+        for x, se in zip(xs, ses, strict=True):
+            x_text, se_text = with_error(x, se)
+            if entry["fixed"]:
+                se_text = "held fixed (datum)"
+            cells.append(f"<td class='num'>{x_text}</td><td class='num'>{se_text}</td>")
+        rows.append(
+            f"<tr><td class='num'>{entry['column']}</td><td>{_esc(entry['name'])}</td>"
+            f"{''.join(cells)}</tr>"
+        )
+    body = f"<table class='parameters'>{head}{''.join(rows)}</table>"
+    if len(table) > SCROLL_ROWS:
+        body = f"<div class='scroll'>{body}</div>"
+    return (
+        body + "<p class='note'>x is rounded to two significant digits of its standard error; "
+        "the JSON report and the result store hold every digit.</p>"
+    )
+
+
+def _refinement(report: dict[str, Any]) -> str:
+    head = "<h2 id='refinement'>Refinement</h2>"
+    info = report.get("refinement")
+    if info:
+        corrections = ", ".join(f"{v:.2g}" for v in info.get("corrections", []))
+        return head + (
+            f"<p>Augmented-system iterative refinement made {info.get('iterations')} "
+            f"corrections in {info.get('passes')} passes over A; the relative size of each "
+            f"correction: {corrections}; the last: {_num(info.get('last_correction'), 3)}.</p>"
+        )
+    skipped = [w for w in report.get("warnings", []) if "refine" in w]
+    if skipped:
+        return head + "".join(f"<p>{_esc(w)}.</p>" for w in skipped)
+    return head + "<p>Not asked for (<code>solve.refine: false</code>).</p>"
+
+
+_INPUT_ROLES = (
+    ("matrix", "A (input.matrix)"),
+    ("rhs", "b (input.rhs)"),
+    ("weights", "w (input.weights)"),
+)
+
+
+def _inputs(report: dict[str, Any]) -> str:
+    records = report.get("inputs") or {}
+    rows = []
+    for key, role in _INPUT_ROLES:
+        rec = records.get(key)
+        if not rec:
+            continue
+        shape = " x ".join(str(v) for v in rec.get("shape", []))
+        rows.append(
+            f"<tr><td>{_esc(role)}</td><td class='mono'>{_esc(rec.get('path'))}</td>"
+            f"<td class='mono'>{_esc(rec.get('dataset'))}</td><td class='num'>{shape}</td>"
+            f"<td>{_esc(rec.get('format'))}</td>"
+            f"<td class='mono' title='{_esc(rec.get('content'))}'>"
+            f"{_esc(str(rec.get('content', ''))[:16])}&hellip;</td></tr>"
+        )
+    table = (
+        "<table><tr><th>role</th><th>file</th><th>dataset</th><th>shape</th><th>format</th>"
+        f"<th>content digest ({_esc(_first_hash(records))})</th></tr>{''.join(rows)}</table>"
+    )
+    return (
+        f"<h2 id='inputs'>Inputs</h2>{table}"
+        f"<p>Job file <code>{_esc(report.get('job_file'))}</code>; result store "
+        f"<code>{_esc(report.get('output'))}</code>.</p>"
+    )
+
+
+def _first_hash(records: dict[str, Any]) -> str:
+    return next((str(r.get("hash")) for r in records.values() if r.get("hash")), "digest")
+
+
+_FIGURES = (
+    ("orthogonality_loss", "loss of orthogonality ||I - Q^H Q||_F"),
+    ("factorization_residual", "||A - QR||_F / ||A||_F"),
+    ("gram_residual", "||A^H A - R^H R||_F / ||A||_F^2"),
+    ("normal_equations_residual", "||A^H r|| / (||A|| ||r||)"),
+    ("r_condition", "condition number of R"),
+    ("rank", "numerical rank"),
+    ("rank_tolerance", "rank tolerance (relative)"),
+    ("solution_residual_norm", "||b - A x|| (weighted)"),
+    ("residual_std", "residual standard deviation"),
+    ("degrees_of_freedom", "degrees of freedom"),
+)
+
+
+def _quality(report: dict[str, Any]) -> str:
+    rows = "".join(
+        f"<tr><th>{_esc(label)}</th><td class='num'>{_num(report.get(key))}</td></tr>"
+        for key, label in _FIGURES
+        if key in report
+    )
+    warnings = "".join(f"<li>{_esc(w)}</li>" for w in report.get("warnings", []))
+    return (
+        f"<h2 id='quality'>Quality</h2><table>{rows}</table><p>{_esc(_bound_text(report))}</p>"
+        f"<h3>Gates</h3>{_gates(report)}"
+        f"{f'<h3>Warnings</h3><ul>{warnings}</ul>' if warnings else ''}"
+    )
+
+
+def _bound_text(report: dict[str, Any]) -> str:
+    bound = report.get("orthogonality_bound") or {}
+    if not bound:
+        return ""
+    measured = bound.get("measured")
+    text = (
+        f"Published bound on the loss of orthogonality for {bound.get('method')}: "
+        f"{bound.get('formula')} = {_plain(bound.get('value'))} at the measured condition "
+        f"number ({bound.get('source')})"
+    )
+    if "10 n" in str(bound.get("formula")):
+        text += "; the constant 10 n is common practice, not published"
+    if measured is None:
+        return text + ". Q was not formed, so the loss itself was not measured."
+    return text + f". Measured: {_plain(measured)}."
+
+
+def _plain(value: Any) -> str:
     return "n/a" if value is None else f"{value:.3g}"
+
+
+def _gates(report: dict[str, Any]) -> str:
+    gates = report.get("gates", {})
+    if not gates:
+        return "<p>No gates set (<code>gates:</code> in the job).</p>"
+    rows = []
+    for name, gate in gates.items():
+        if gate["held"] is None:
+            result = f"<b>NOT EVALUATED</b>: {_esc(gate.get('reason') or '')}"
+        else:
+            result = "held" if gate["held"] else "<b>FAILED</b>"
+        rows.append(
+            f"<tr><th>{_esc(name)}</th><td class='num'>{_num(gate['value'])}</td>"
+            f"<td class='num'>&le; {_num(gate['limit'])}</td><td>{result}</td></tr>"
+        )
+    return (
+        "<table><tr><th>gate</th><th>measured</th><th>limit</th><th>result</th></tr>"
+        f"{''.join(rows)}</table><p class='note'>A gate that held gives exit status 0; one "
+        "that failed or could not be evaluated gives 3.</p>"
+    )
+
+
+def _screening(report: dict[str, Any]) -> str:
+    screening = report.get("residual_screening")
+    head = "<h2 id='screening'>Residual screening</h2>"
+    if not screening:
+        return head + (
+            "<p>Not asked for (<code>solve.residuals: true</code> writes residuals, leverages "
+            "and standardized residuals and draws their plots here).</p>"
+        )
+    worst = "".join(
+        f"<tr><td class='num'>{w['row']:,}</td><td class='num'>{w['rhs']}</td>"
+        f"<td class='num'>{_num(w['residual'])}</td><td class='num'>{_num(w['leverage'])}</td>"
+        f"<td class='num'>{_num(w['standardized'])}</td></tr>"
+        for w in screening.get("worst", [])
+    )
+    sample = (report.get("plots_data") or {}).get("sample") or {}
+    return head + (
+        f"<p>{_num(screening.get('flagged'))} standardized residuals exceed "
+        f"{_num(screening.get('flag_above'))} in absolute value. The rows with the largest "
+        "(row numbers count from 0):</p><div class='scroll'><table><tr><th>row</th>"
+        "<th>rhs</th><th>residual (units of b, weighted)</th><th>leverage</th>"
+        f"<th>|standardized|</th></tr>{worst}</table></div>"
+        "<p class='note'>The plots below are drawn from bounded summaries made in the "
+        f"screening pass: per-bin statistics over rows, a uniform sample of "
+        f"{sample.get('size', 0)} rows (seed {sample.get('seed')}), the rows above and the "
+        "rows of highest leverage.</p>"
+    )
+
+
+def _run(report: dict[str, Any]) -> str:
+    details = report.get("method_details") or {}
+    prov = report.get("provenance") or {}
+    facts = [
+        ("method asked / used", _esc(f"{report.get('method')} / {report.get('method_used')}")),
+        ("method details", ", ".join(f"{_esc(k)} {_num(v)}" for k, v in details.items())),
+        ("rows x columns", _esc(f"{report.get('rows', 0):,} x {report.get('cols')}")),
+        ("row blocks", _esc(f"{report.get('blocks')} of {report.get('rows_per_block', 0):,} rows")),
+        ("passes over A", _esc(report.get("passes_over_input"))),
+        ("peak memory (client and workers)", _bytes(report.get("peak_memory_bytes"))),
+        ("started / finished", _esc(f"{prov.get('started')} / {prov.get('finished')}")),
+        ("host", _esc(prov.get("host"))),
+    ]
+    rows = "".join(f"<tr><th>{_esc(k)}</th><td>{v}</td></tr>" for k, v in facts)
+    seconds = report.get("seconds") or {}
+    stages = "".join(
+        f"<tr><th>{_esc(name)}</th><td class='num'>{value:.3f}</td></tr>"
+        for name, value in seconds.items()
+    )
+    return (
+        f"<h2 id='run'>Run</h2><table>{rows}</table><h3>Time per stage</h3>"
+        f"<table class='stages'><tr><th>stage</th><th>seconds</th></tr>{stages}</table>"
+        "<p class='note'>Drawing this page is timed as <code>seconds.report</code> in the "
+        "JSON report.</p>"
+    )
+
+
+# ------------------------------------------------------------------------------ plots
+
+
+def _unit_roundoff(report: dict[str, Any]) -> float:
+    kind = str(report.get("dtype", "<f8"))
+    single = kind.endswith(("f4", "c8"))
+    return float(np.finfo(np.float32 if single else np.float64).eps) / 2
+
+
+def plots(report: dict[str, Any]) -> dict[str, Any]:
+    """The report's plots by section: ``answer``, ``refinement``, ``screening`` and
+    ``conditioning`` (each a :class:`rowfold.plots.Plot`; absent when there is nothing to
+    draw)."""
+    from rowfold import plots as draw
+
+    out: dict[str, Any] = {}
+    with draw.drawing() as canvas:
+        answer = draw.parameters(canvas, report.get("parameters") or [], report.get("rhs_cols", 1))
+        if answer is not None:
+            out["answer"] = answer
+        corrections = (report.get("refinement") or {}).get("corrections")
+        if corrections:
+            out["refinement"] = draw.refinement(canvas, corrections, _unit_roundoff(report))
+        residuals = _residual_data(report)
+        if residuals is not None:
+            out["screening"] = draw.residuals(canvas, residuals)
+        out["conditioning"] = draw.spectrum(
+            canvas, report.get("r_singular_values") or [], report.get("r_diagonal") or []
+        )
+    return out
+
+
+def _residual_data(report: dict[str, Any]) -> Any:
+    from rowfold.plots import Residuals
+
+    screening = report.get("residual_screening")
+    summaries = report.get("plots_data")
+    if not screening or not summaries:
+        return None
+    return Residuals(
+        flag_above=float(screening["flag_above"]),
+        histogram=screening["histogram"],
+        worst=screening["worst"],
+        row_bins=summaries["row_bins"],
+        sample=summaries["sample"],
+        high_leverage=summaries["high_leverage"],
+        rows=int(report.get("rows", 0)),
+        cols=int(report.get("cols", 0)),
+    )
+
+
+def _figure(drawn: dict[str, Any], section: str) -> str:
+    plot = drawn.get(section)
+    if plot is None:
+        return ""
+    notes = "".join(
+        f"<p class='note'>{_esc(note)}</p>" for axes in plot.axes for note in axes.notes
+    )
+    return f"<figure><figcaption><b>{_esc(plot.title)}</b></figcaption>{plot.svg}</figure>{notes}"
 
 
 def render_html(report: dict[str, Any]) -> str:
     """Render the report as a self-contained HTML page (plots inlined as SVG)."""
-    rows = "\n".join(
-        f"<tr><th>{html.escape(label)}</th><td>{_fmt(report.get(key))}</td></tr>"
-        for key, label in _ROWS
+    drawn = plots(report)
+    title = _esc(f"rowfold report: {report.get('name', '')}")
+    body = "\n".join(
+        [
+            _verdict(report),
+            _answer(report) + _figure(drawn, "answer"),
+            _refinement(report) + _figure(drawn, "refinement"),
+            _inputs(report),
+            _quality(report),
+            _screening(report) + _figure(drawn, "screening"),
+            "<h2 id='conditioning'>Conditioning</h2>" + _figure(drawn, "conditioning"),
+            _run(report),
+        ]
     )
-    gates = (
-        "\n".join(
-            f"<tr><th>{html.escape(name)}</th><td>{_fmt(g['value'])} &le; {_fmt(g['limit'])}</td>"
-            f"<td>{'held' if g['held'] else 'FAILED'}</td></tr>"
-            for name, g in report.get("gates", {}).items()
-        )
-        or "<tr><td colspan='3'>no gates set</td></tr>"
-    )
-    stages = ", ".join(f"{k} {v:.2f} s" for k, v in report.get("seconds", {}).items())
-    warnings = "".join(f"<li>{html.escape(w)}</li>" for w in report.get("warnings", []))
-    bound = report.get("orthogonality_bound") or {}
-    bound_text = (
-        f"Published bound for {bound.get('method')}: {bound.get('formula')} = "
-        f"{_num(bound.get('value'))} at the measured condition number "
-        f"({bound.get('source')}); measured loss of orthogonality {_num(bound.get('measured'))}."
-        if bound
-        else ""
-    )
-    screening = report.get("residual_screening") or {}
-    worst = "".join(
-        f"<tr><td>{w['row']}</td><td>{w['rhs']}</td><td>{_num(w['residual'])}</td>"
-        f"<td>{_num(w['leverage'])}</td><td>{_num(w['standardized'])}</td></tr>"
-        for w in screening.get("worst", [])
-    )
-    screening_html = (
-        f"<h2>Residual screening</h2><p>{html.escape(str(screening.get('flagged')))} "
-        f"standardized residuals exceed {_num(screening.get('flag_above'))}.</p>"
-        "<table><tr><th>row</th><th>rhs</th><th>residual</th><th>leverage</th>"
-        f"<th>standardized</th></tr>{worst}</table>"
-        if screening
-        else ""
-    )
-    images = "\n".join(f"<h2>{html.escape(title)}</h2>\n{svg}" for title, svg in plots(report))
-    title = html.escape(f"rowfold report: {report.get('name', '')}")
     return f"""<!DOCTYPE html>
 <html lang="en"><head><meta charset="utf-8"><title>{title}</title>
-<style>body{{font-family:sans-serif;max-width:60em;margin:2em auto}}
-th{{text-align:left;padding-right:1em}}td{{font-family:monospace}}
-.caution{{border-left:4px solid #b60;padding:.5em 1em;background:#fff6ea}}</style>
+<style>{STYLE}</style>
 </head><body>
 <h1>{title}</h1>
-<p>rowfold {html.escape(str(report.get("rowfold_version")))}; output
-<code>{html.escape(str(report.get("output")))}</code></p>
-<h2>Quality</h2><table>{rows}</table>
-<p>{html.escape(bound_text)}</p>
-<h2>Gates</h2><table>{gates}</table>
-{f"<h2>Warnings</h2><ul>{warnings}</ul>" if warnings else ""}
-{screening_html}
-<p>Time per stage: {html.escape(stages)}</p>
-{images}
-<p class="caution">{html.escape(CAUTION)}</p>
+<p>rowfold {_esc(report.get("rowfold_version"))}; job <code>{_esc(report.get("name"))}</code>;
+result <code>{_esc(report.get("output"))}</code></p>
+{body}
+<p class="caution">{_esc(report.get("caution") or CAUTION)}</p>
 </body></html>
 """

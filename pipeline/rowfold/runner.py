@@ -41,7 +41,15 @@ from rowfold.provenance import provenance
 from rowfold.refine import refine
 from rowfold.report import CAUTION, render_html, to_json
 from rowfold.solve import Solution, Statistics, solve, statistics
-from rowfold.spec import METHOD_NAMES, ClusterSpec, Job, check_fits_input, load_job
+from rowfold.spec import (
+    METHOD_NAMES,
+    ClusterSpec,
+    Job,
+    check_fits_input,
+    check_names,
+    check_parameter_names,
+    load_job,
+)
 from rowfold.storage.checkpoints import block_stamp, close_checkpoints, open_checkpoints
 from rowfold.storage.checkpoints import job_digest as job_digest_of
 
@@ -57,6 +65,8 @@ __all__ = [
 ]
 
 STALE_Q_TEXT = "not formed by update; run `rowfold run` to form Q again"
+# Why update leaves the Q figures unmeasured (the reason its gates on them give).
+UPDATE_NO_Q = "Q not formed by update, so this figure was not measured; run `rowfold run`"
 
 
 @dataclass
@@ -66,7 +76,7 @@ class RunOutcome:
     Attributes
     ----------
     status : int
-        0 when every gate held, 3 when one failed.
+        0 when every gate held, 3 when one failed or could not be evaluated.
     report : dict
         The report as written to JSON.
     output : Path
@@ -114,9 +124,36 @@ def plan_job(job: Job) -> BlockPlan:
     return plan
 
 
+def parameter_names(job: Job, plan: BlockPlan) -> tuple[str, ...]:
+    """The name of every input column: from ``input.parameter_names`` (a list, or a 1-D
+    dataset of text in the input file), else ``x0 .. x{n-1}``.
+
+    Raises
+    ------
+    JobError, InputError
+        When the names are not one distinct non-empty text per input column, or the
+        dataset cannot be read (exit 2, before anything is computed).
+    """
+    given = job.input.parameter_names
+    if given is None:
+        return tuple(f"x{j}" for j in range(plan.input_cols))
+    if isinstance(given, str):
+        ref = storage.ArrayRef(str(job.input.path), given, job.input.missing_chunks)
+        found = storage.read_names(ref)
+        try:
+            names = check_names(found)
+        except (TypeError, ValueError) as exc:
+            raise InputError(f"{ref.describe()}: parameter names: {exc}") from None
+        check_parameter_names(job, names, plan.input_cols, f"dataset {ref.describe()}")
+        return names
+    check_parameter_names(job, given, plan.input_cols, "the list")
+    return given
+
+
 def check_job(job: Job) -> dict[str, Any]:
     """Validate a job's inputs and output path without computing; return a summary."""
     plan = plan_job(job)
+    parameter_names(job, plan)
     storage.check_output_path(job.output.path, job.output.overwrite)
     return {
         "job": job.name,
@@ -167,9 +204,10 @@ def run_job(
     started = time.time()
     with clock.stage("plan"):
         plan = plan_job(job)
+        names = parameter_names(job, plan)
         storage.check_output_path(job.output.path, job.output.overwrite)
     try:
-        outcome = _run_with_engine(job, plan, progress, inline, resume, clock, started)
+        outcome = _run_with_engine(job, plan, names, progress, inline, resume, clock, started)
     except RowfoldError as exc:
         if exc.exit_status == EXIT_INVALID:  # a bad input: no checkpoint is worth resuming
             close_checkpoints(job.output.path)
@@ -181,6 +219,7 @@ def run_job(
 def _run_with_engine(
     job: Job,
     plan: BlockPlan,
+    names: tuple[str, ...],
     progress: Progress,
     inline: bool,
     resume: bool,
@@ -197,7 +236,7 @@ def _run_with_engine(
             inputs = _fingerprints(job, plan, engine)
         checkpoints = _checkpoints(job, plan, inputs, resume)
         ctx = Context(engine, wants_q(job), workdir, checkpoints)
-        return _run_on(job, plan, ctx, inputs, clock, started)
+        return _run_on(job, plan, names, ctx, inputs, clock, started)
 
 
 def _checkpoints(job: Job, plan: BlockPlan, inputs: dict[str, Any], resume: bool) -> Path | None:
@@ -263,6 +302,7 @@ def _threaded_engine(spec: ClusterSpec, progress: Progress) -> Iterator[Threaded
 def _run_on(
     job: Job,
     plan: BlockPlan,
+    names: tuple[str, ...],
     ctx: Context,
     inputs: dict[str, Any],
     clock: _Clock,
@@ -301,9 +341,10 @@ def _run_on(
             stats = statistics(solution, check.sums["res2"], used, norms)
         if stats is not None and job.solve.residuals:
             with clock.stage("screen"):
-                extra["residual_screening"] = _screen(writer, plan, stats, job)
+                extra["residual_screening"], extra["plots_data"] = _screen(writer, plan, stats, job)
         if scale is not None:
             extra["column_scaling"] = _scaling_figures(fact.R, scale)
+        extra.update(_answer(plan, solution, stats, scale, names))
         report = quality.assemble_report(
             job=job,
             plan=plan,
@@ -342,11 +383,14 @@ def _commit(
     _write_store(writer, job, plan, fact, solution, stats, report, scale)
     _write_state(writer, plan, fact, state_sums, scale)
     json_path, html_path = storage.report_paths(job.output.path)
+    drawing = time.perf_counter()
+    page = render_html(report)
+    report["seconds"]["report"] = round(time.perf_counter() - drawing, 4)
     writer.add_file(json_path, to_json(report))
-    writer.add_file(html_path, render_html(report))
+    writer.add_file(html_path, page)
     writer.commit()
-    failed = any(not gate["held"] for gate in report["gates"].values())
-    return RunOutcome(EXIT_GATE_FAILED if failed else EXIT_OK, report, job.output.path)
+    held = report["exit_status"] == EXIT_OK
+    return RunOutcome(EXIT_OK if held else EXIT_GATE_FAILED, report, job.output.path)
 
 
 def comparison_table(records: list[dict[str, Any]]) -> str:
@@ -366,13 +410,14 @@ def compare_job(
     from rowfold import compare
 
     plan = plan_job(job)
+    names = parameter_names(job, plan)
     with _engine(job, progress or Progress(), inline) as engine:
         inputs = _fingerprints(job, plan, engine)
 
         def run(method_job: Job) -> RunOutcome:
             with storage.scratch_folder(method_job.output.path) as workdir:
                 ctx = Context(engine, wants_q(method_job), workdir)
-                return _run_on(method_job, plan, ctx, inputs, _Clock(), time.time())
+                return _run_on(method_job, plan, names, ctx, inputs, _Clock(), time.time())
 
         rows = [compare.run_row(job, method, run) for method in methods]
     records = compare.table(rows)
@@ -400,13 +445,13 @@ def update_job(job: Job, progress: Progress | None = None, inline: bool = False)
     state, attrs = storage.read_state(out)
     update.check_answer_keys(job, attrs, out)
     plan = plan_job(job)
+    names = parameter_names(job, plan)
     rows_done = int(attrs.get("rows_done", -1))
     if "R" not in state or state["R"].shape[0] != plan.cols or not 0 <= rows_done <= plan.rows:
         raise InputError(
             f"{out}: the earlier result does not match the input ({plan.rows} x {plan.cols}); "
             "run `rowfold run` instead of update"
         )
-    job = replace(job, gates=replace(job.gates, orthogonality=None, residual=None))
     with ExitStack() as stack:
         engine = stack.enter_context(_engine(job, progress or Progress(), inline))
         with clock.stage("prefix_check"):
@@ -420,7 +465,7 @@ def update_job(job: Job, progress: Progress | None = None, inline: bool = False)
         with clock.stage("fingerprint"):
             added = _fingerprints(job, replace(plan, first_row=rows_done), engine)
         inputs = storage.extend_records(check.records, added)
-        return _commit_update(job, plan, folded, engine, clock, started, check, inputs)
+        return _commit_update(job, plan, names, folded, engine, clock, started, check, inputs)
 
 
 class NoNewRowsError(RowfoldError):
@@ -432,6 +477,7 @@ class NoNewRowsError(RowfoldError):
 def _commit_update(
     job: Job,
     plan: BlockPlan,
+    names: tuple[str, ...],
     folded: Any,
     engine: Engine,
     clock: _Clock,
@@ -455,7 +501,10 @@ def _commit_update(
         "inputs": storage.public_record(inputs),
         "provenance": provenance(started, time.time()),
         "caution": CAUTION,
+        **_answer(plan, solution, stats, folded.column_scale, names),
     }
+    if plan.fixed_columns:
+        extra["fixed_columns"] = _fixed_note(plan)
     report = quality.assemble_report(
         job=job,
         plan=plan,
@@ -468,6 +517,7 @@ def _commit_update(
         peak_memory=engine.peak_memory_bytes(),
         passes=1,
         extra=extra,
+        unmeasured={"orthogonality_loss": UPDATE_NO_Q, "factorization_residual": UPDATE_NO_Q},
     )
     state_sums = {**fact.sums, "rows_used": folded.rows_used, "input_digests": inputs}
     if folded.residual_factor is not None:
@@ -545,8 +595,9 @@ def _row_sink(
 
 def _screen(
     writer: storage.ResultWriter, plan: BlockPlan, stats: Statistics, job: Job
-) -> dict[str, Any]:
-    """Standardized residuals into the store, and the screening summary for the report."""
+) -> tuple[dict[str, Any], dict[str, Any]]:
+    """Standardized residuals into the store; the report's screening summary and the
+    bounded-size summaries its plots are drawn from."""
     chunk = plan.per_block
     writer.create("standardized_residuals", (plan.rows, plan.rhs_cols), np.float64, chunk)
 
@@ -556,12 +607,13 @@ def _screen(
     screening = quality.screen_residuals(
         writer.read_rows, write, plan, stats.residual_std, job.solve.flag_above
     )
-    return {
+    summary = {
         "flag_above": screening.flag_above,
         "flagged": screening.flagged[0] if plan.rhs_1d else screening.flagged,
         "worst": screening.worst,
         "histogram": screening.histogram,
     }
+    return summary, screening.plots_data
 
 
 def _scaling_figures(R_scaled: np.ndarray, scale: np.ndarray) -> dict[str, Any]:
@@ -618,12 +670,12 @@ def _write_store(
     Fixed columns (``input.fixed_columns``) come back as zeros: in x, x_stderr and qhb,
     and as zero rows and columns of R and x_covariance.
     """
-    real = np.zeros(0, dtype=fact.R.dtype).real.dtype
-    s = np.ones(plan.cols, dtype=real) if scale is None else scale.astype(real)
+    s = _multipliers(plan, fact.R.dtype, scale)
     writer.put("R", expand_columns(plan, fact.R / s[None, :], (0, 1)))
     if solution is not None and stats is not None and fact.qhb is not None:
-        writer.put("x", _shaped(plan, expand_columns(plan, solution.x * s[:, None])))
-        writer.put("x_stderr", _shaped(plan, expand_columns(plan, stats.x_stderr * s[:, None])))
+        x, stderr = _unscaled(plan, solution, stats, scale)
+        writer.put("x", _shaped(plan, x))
+        writer.put("x_stderr", _shaped(plan, stderr))
         writer.put("qhb", _shaped(plan, expand_columns(plan, fact.qhb)))
         if job.solve.covariance:
             covariance = _covariance(plan, solution, stats, s)
@@ -640,6 +692,77 @@ def _write_store(
             "provenance": report["provenance"],
         }
     )
+
+
+def _multipliers(plan: BlockPlan, dtype: np.dtype, scale: np.ndarray | None) -> np.ndarray:
+    """The column multipliers of an equilibration (ones without one), in the real dtype."""
+    real = np.zeros(0, dtype=dtype).real.dtype
+    return np.ones(plan.cols, dtype=real) if scale is None else scale.astype(real)
+
+
+def _unscaled(
+    plan: BlockPlan, solution: Solution, stats: Statistics, scale: np.ndarray | None
+) -> tuple[np.ndarray, np.ndarray]:
+    """x and its standard errors (n x k) in the input's columns: unscaled, and 0 for
+    fixed columns."""
+    s = _multipliers(plan, solution.x.dtype, scale)
+    x = expand_columns(plan, solution.x * s[:, None])
+    return x, expand_columns(plan, stats.x_stderr * s[:, None])
+
+
+def _answer(
+    plan: BlockPlan,
+    solution: Solution | None,
+    stats: Statistics | None,
+    scale: np.ndarray | None,
+    names: tuple[str, ...],
+) -> dict[str, Any]:
+    """The report's answer: ``parameters`` (name, column, x, stderr, fixed; per-rhs values
+    as elsewhere) and ``datum`` (what fixes the solution)."""
+    datum = _datum(plan, solution, names)
+    if solution is None or stats is None:
+        return {"parameters": None, "datum": datum}
+    x, stderr = _unscaled(plan, solution, stats, scale)
+    fixed = set(plan.fixed_columns)
+
+    def value(v: Any) -> Any:
+        v = complex(v) if np.iscomplexobj(v) else float(v)
+        return {"re": v.real, "im": v.imag} if isinstance(v, complex) else v
+
+    def per_rhs(row: np.ndarray) -> Any:
+        return value(row[0]) if plan.rhs_1d else [value(v) for v in row]
+
+    parameters = [
+        {
+            "name": names[j],
+            "column": j,
+            "x": per_rhs(x[j]),
+            "stderr": per_rhs(stderr[j]),
+            "fixed": j in fixed,
+        }
+        for j in range(plan.input_cols)
+    ]
+    return {"parameters": parameters, "datum": datum}
+
+
+def _datum(plan: BlockPlan, solution: Solution | None, names: tuple[str, ...]) -> dict[str, Any]:
+    """What the solution is relative to: the fixed columns, or the minimum norm."""
+    fixed = list(plan.fixed_columns)
+    held = [names[j] for j in fixed]
+    if fixed:
+        note = (
+            f"{', '.join(held)} held fixed at 0 (input.fixed_columns); every other "
+            "parameter and its standard error is relative to that datum"
+        )
+    elif solution is not None and solution.rank < plan.cols:
+        note = (
+            "no parameter is held fixed and the problem is rank deficient: x is the "
+            "minimum-norm solution, so the datum is the one that makes ||x|| least; "
+            "differences that the data determine are meaningful, single values are not"
+        )
+    else:
+        note = "no parameter is held fixed; the data determine every parameter (full rank)"
+    return {"fixed_columns": fixed, "names": held, "value": 0.0 if fixed else None, "note": note}
 
 
 def _fixed_note(plan: BlockPlan) -> dict[str, Any]:

@@ -72,6 +72,9 @@ class InputSpec:
         ``"error"`` (default): a chunk absent from a Zarr store, or never written in an
         HDF5 file, stops the run naming it; ``"fill_value"``: read it as the array's fill
         value (for writers that leave out chunks equal to the fill value).
+    parameter_names : tuple of str, str or None
+        A name per input column (for the report), or the name of a 1-D dataset of text in
+        the input file that holds them; None names them ``x0 .. x{n-1}``.
     """
 
     path: Path
@@ -81,6 +84,7 @@ class InputSpec:
     rows_per_block: int | None = None
     fixed_columns: tuple[int, ...] = ()
     missing_chunks: str = "error"
+    parameter_names: tuple[str, ...] | str | None = None
 
 
 @dataclass(frozen=True, slots=True)
@@ -437,7 +441,9 @@ class _Section:
         try:
             return parse(value)
         except (TypeError, ValueError) as exc:
-            raise self.doc.fail((*self.keypath, key), f"{exc}, found {value!r}") from None
+            found = repr(value)
+            found = found if len(found) <= 80 else found[:76] + " ..."
+            raise self.doc.fail((*self.keypath, key), f"{exc}, found {found}") from None
 
     def require(self, key: str, parse: Callable[[Any], Any]) -> Any:
         """Read a key that must be present."""
@@ -577,6 +583,7 @@ INPUT_KEYS = (
     "rows_per_block",
     "fixed_columns",
     "missing_chunks",
+    "parameter_names",
 )
 
 
@@ -590,6 +597,7 @@ def _parse_input(doc: _Doc, base: Path) -> InputSpec:
         rows_per_block=section.get("rows_per_block", _auto_or_count),
         fixed_columns=section.get("fixed_columns", _column_list, ()),
         missing_chunks=section.get("missing_chunks", _one_of(MISSING_CHUNKS), "error"),
+        parameter_names=section.get("parameter_names", _names_or_dataset),
     )
     link = _broken_link(base / Path(str(section.raw["path"])).expanduser())
     if link is not None:
@@ -610,6 +618,53 @@ def _broken_link(path: Path) -> tuple[str, str] | None:
         if os.path.islink(part) and not os.path.exists(part):
             return str(part), os.readlink(part)
     return None
+
+
+def _names_or_dataset(value: Any) -> tuple[str, ...] | str:
+    """A list of distinct non-empty names, or the name of a dataset holding them."""
+    if isinstance(value, str):
+        return _text(value)
+    if not isinstance(value, list) or not value:
+        raise TypeError("expected a list of names (one per column) or a dataset name")
+    return check_names(value)
+
+
+def check_names(names: list[Any]) -> tuple[str, ...]:
+    """Parameter names as a tuple: each non-empty text, each given once.
+
+    Raises
+    ------
+    TypeError, ValueError
+        Naming the first offending entry (by position, counting from 0).
+    """
+    for position, name in enumerate(names):
+        if not isinstance(name, str) or not name.strip():
+            raise TypeError(f"expected non-empty text for every name; entry {position} is not")
+    seen: dict[str, int] = {}
+    for position, name in enumerate(names):
+        if name in seen:
+            raise ValueError(
+                f"expected each name once; {name!r} is entries {seen[name]} and {position}"
+            )
+        seen[name] = position
+    return tuple(names)
+
+
+def check_parameter_names(job: Job, names: tuple[str, ...], cols: int, where: str) -> None:
+    """Refuse a list of parameter names whose length is not the input's column count.
+
+    Raises
+    ------
+    JobError
+        Naming ``input.parameter_names``, its line, ``where`` the names came from, and
+        both counts.
+    """
+    if len(names) != cols:
+        raise job.fail(
+            "input.parameter_names",
+            f"{where} gives {len(names)} names for the {cols} columns of input.matrix; "
+            "give one name per column (fixed columns included)",
+        )
 
 
 def _column_list(value: Any) -> tuple[int, ...]:

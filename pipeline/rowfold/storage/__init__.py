@@ -29,6 +29,7 @@ from rowfold.storage.inputs import (
     ArrayRef,
     close_open_inputs,
     describe_array,
+    read_names,
     read_rows,
     write_arrays,
 )
@@ -64,6 +65,7 @@ __all__ = [
     "layout_change",
     "public_record",
     "read_csr_rows",
+    "read_names",
     "read_result",
     "read_rows",
     "read_state",

@@ -29,6 +29,7 @@ from rowfold.storage.inputs import (
     _HDF5_LOCK,
     HDF5_SUFFIXES,
     KEEP_EVERY_CHUNK,
+    TEXT,
     ArrayInfo,
     ArrayRef,
     _kept,
@@ -424,6 +425,9 @@ def _write_hdf5(
         created = handle.create_group(group)
         created.attrs["shape"] = shape
         for name, array in {**arrays, **extra}.items():
+            if array.dtype.kind in "UO":  # text, e.g. parameter names
+                handle.create_dataset(name, data=array.astype(object), dtype=TEXT)
+                continue
             handle.create_dataset(
                 name, data=array, chunks=_chunk(array), maxshape=(None, *array.shape[1:])
             )
@@ -448,7 +452,7 @@ def _write_zarr(
         out = root.create_array(
             name,
             shape=array.shape,
-            dtype=array.dtype,
+            dtype=str if array.dtype.kind in "UO" else array.dtype,
             chunks=_chunk(array),
             config=KEEP_EVERY_CHUNK,
         )

@@ -39,6 +39,8 @@ _OPEN_INPUTS: dict[str, tuple[tuple[int, ...], Any, dict[str, Any]]] = {}
 # Zarr arrays rowfold writes store every chunk, also one equal to the fill value (zarr
 # leaves those out by default), so that they pass the missing-chunk check when read.
 KEEP_EVERY_CHUNK: ArrayConfigParams = {"write_empty_chunks": True}
+# Variable-length UTF-8 text in HDF5 (parameter names).
+TEXT = h5py.string_dtype("utf-8")
 
 
 @dataclass(frozen=True, slots=True)
@@ -270,6 +272,47 @@ def read_rows(ref: ArrayRef, start: int, stop: int, purpose: str = "data") -> np
         ) from None
 
 
+def read_names(ref: ArrayRef) -> list[str]:
+    """Read a 1-D array of text (parameter names): HDF5 strings or bytes, Zarr strings.
+
+    Raises
+    ------
+    InputMissingError
+        When the file or the dataset does not exist.
+    InputError
+        When it is not a 1-D array of text (bytes must be UTF-8).
+    """
+    info = describe_array(ref)
+    if len(info.shape) != 1:
+        raise InputError(
+            f"{ref.describe()}: parameter names must be a 1-D array of text, found shape "
+            f"{list(info.shape)}"
+        )
+    try:
+        if ref.is_hdf5:
+            with _HDF5_LOCK, h5py.File(ref.path, "r") as handle:
+                values = handle[ref.name][...]
+        else:
+            values = np.asarray(_open_zarr(ref.path)[ref.name][...])
+    except Exception as exc:
+        raise InputError(
+            f"{ref.describe()}: cannot read the parameter names ({exc.__class__.__name__}: {exc})"
+        ) from None
+    names: list[str] = []
+    for value in values.tolist():
+        if isinstance(value, bytes):
+            try:
+                value = value.decode("utf-8")
+            except UnicodeDecodeError:
+                raise InputError(f"{ref.describe()}: parameter names are not UTF-8 text") from None
+        if not isinstance(value, str):
+            raise InputError(
+                f"{ref.describe()}: parameter names must be text, found {values.dtype}"
+            )
+        names.append(value)
+    return names
+
+
 def open_dataset(path: str, name: str) -> Any:
     """A dataset of a kept HDF5 input, looked up once per handle (the caller holds the lock)."""
     _, handle, datasets = _kept(path)
@@ -335,6 +378,9 @@ def write_arrays(path: str | Path, arrays: dict[str, np.ndarray], chunk_rows: in
         forget_input(target)
         with _HDF5_LOCK, h5py.File(target, "w") as handle:
             for name, array in arrays.items():
+                if array.dtype.kind in "UO":  # text, e.g. parameter names
+                    handle.create_dataset(name, data=array.astype(object), dtype=TEXT)
+                    continue
                 if array.ndim == 0 or not all(array.shape[1:]):
                     handle.create_dataset(name, data=array)
                     continue
@@ -350,7 +396,7 @@ def write_arrays(path: str | Path, arrays: dict[str, np.ndarray], chunk_rows: in
         created = group.create_array(
             name,
             shape=array.shape,
-            dtype=array.dtype,
+            dtype=str if array.dtype.kind in "UO" else array.dtype,
             chunks=(chunk_rows, *array.shape[1:]),
             config=KEEP_EVERY_CHUNK,
         )
