@@ -44,7 +44,7 @@ def scale(a: np.ndarray) -> float:
     return max(1.0, float(np.linalg.norm(a)) ** 2)
 
 
-@settings(max_examples=60, deadline=None)
+@settings(max_examples=60)
 @given(blocks())
 def test_householder_r_is_a_cholesky_factor_of_the_gram(a: np.ndarray) -> None:
     R, _ = householder_r(a)
@@ -54,7 +54,7 @@ def test_householder_r_is_a_cholesky_factor_of_the_gram(a: np.ndarray) -> None:
     assert np.linalg.norm(R.conj().T @ R - gram) <= 50 * n * U * scale(a)
 
 
-@settings(max_examples=60, deadline=None)
+@settings(max_examples=60)
 @given(blocks())
 def test_householder_q_pairs_with_r(a: np.ndarray) -> None:
     R, _ = householder_r(a)
@@ -63,7 +63,7 @@ def test_householder_q_pairs_with_r(a: np.ndarray) -> None:
     assert np.linalg.norm(Q @ R - a) <= 50 * a.shape[1] * U * max(1.0, float(np.linalg.norm(a)))
 
 
-@settings(max_examples=60, deadline=None)
+@settings(max_examples=60)
 @given(blocks(), st.integers(1, 5))
 def test_stacked_partition_gives_the_unique_r(a: np.ndarray, parts: int) -> None:
     n = a.shape[1]
@@ -79,7 +79,7 @@ def test_stacked_partition_gives_the_unique_r(a: np.ndarray, parts: int) -> None
         assert np.linalg.norm(left - right) <= 100 * n * cond * U * max(1.0, np.linalg.norm(a))
 
 
-@settings(max_examples=60, deadline=None)
+@settings(max_examples=60)
 @given(blocks())
 def test_gram_and_triangular_solve_match_numpy(a: np.ndarray) -> None:
     n = a.shape[1]
