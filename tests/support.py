@@ -12,7 +12,9 @@ import yaml
 from rowfold import runner, storage
 from rowfold.storage import write_arrays
 
-U = 2.0**-53  # unit roundoff of float64 (CHECKS.md: u = 2^-53)
+import bounds
+
+U = bounds.unit_roundoff()  # float64's u = 2^-53 (CHECKS.md); bounds.py holds the bounds
 
 
 def prescribed(
