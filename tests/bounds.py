@@ -112,6 +112,23 @@ def cholqr2(m: int, n: int, dtype: Any = np.float64) -> float:
     return SAFETY * cholqr2_published(m, n, dtype)
 
 
+def cholqr2_columnwise(m: int, n: int, dtype: Any = np.float64) -> float:
+    """Columnwise relative backward error of CholeskyQR2 (and of its least-squares solve):
+    max_j ||da_j|| / ||a_j|| with A + dA = QR, for A D^-1 (D = column norms) well inside
+    CholeskyQR2's range: 2 sqrt(n) times :func:`cholqr2`.
+
+    Source: scaling a column by a power of two scales every rounded operation of the Gram
+    product, the Cholesky factorization and the triangular solves exactly, so CholeskyQR2 of
+    A gives the same Q as CholeskyQR2 of A P^-1 (P = D with each entry rounded to the nearest
+    power of two on a log scale, so within a factor sqrt(2) of D). Applying :func:`cholqr2`'s
+    normwise residual bound to A P^-1 (Frobenius norm at most sqrt(2 n)) and scaling back by
+    P (at most sqrt(2) D) bounds each column's error relative to its own norm. Our
+    derivation, from the exactness of power-of-two scaling in IEEE 754; the solve
+    ``R x = Q^H b`` adds a backward-stable triangular solve, covered by SAFETY.
+    """
+    return 2 * math.sqrt(n) * cholqr2(m, n, dtype)
+
+
 def mgs(n: int, kappa: float, dtype: Any = np.float64) -> float:
     """||I - Q^H Q|| of (block) modified Gram-Schmidt: c u kappa, for c u kappa < 1.
 
@@ -239,23 +256,31 @@ class LstsqErrors:
     inverse_diagonal : ndarray (n,)
         Bound on the relative error of sqrt(C_jj), C = (A^H A)^-1 (the standard error of
         x_j is sigma sqrt(C_jj)).
+    root_diagonal : ndarray (n,)
+        sqrt(C_jj) itself (not a bound: the scale of an exact fit's standard errors).
     """
 
     coefficients: np.ndarray
     residual_norm: float
     inverse_diagonal: np.ndarray
+    root_diagonal: np.ndarray
 
 
 def lstsq_columnwise(
-    A: np.ndarray, b: np.ndarray, x: np.ndarray, dtype: Any = np.float64
+    A: np.ndarray,
+    b: np.ndarray,
+    x: np.ndarray,
+    eta: float | None = None,
+    dtype: Any = np.float64,
 ) -> LstsqErrors:
     """Componentwise first-order error bounds of min ||A x - b|| (solution x, residual
     r = b - A x) solved by Householder QR (or TSQR), from A's own singular values and vectors.
 
     Householder QR least squares is columnwise backward stable: the computed x solves the
     problem for A + dA, b + db with ||da_j|| <= eta ||a_j||, ||db|| <= eta ||b|| (Higham
-    2002, Thm 20.3, with eta = gamma~_{mn}; here ``eta = SAFETY n u``, common practice as in
-    :func:`stable_qr`). Rounding the data to binary and forming ``b - A x`` are errors of the
+    2002, Thm 20.3, with eta = gamma~_{mn}; by default ``eta = SAFETY n u``, common practice
+    as in :func:`stable_qr`; a method with a larger columnwise backward error passes its
+    own ``eta``). Rounding the data to binary and forming ``b - A x`` are errors of the
     same columnwise kind and size. To first order (Higham 2002, sec. 20.1; Björck, Numerical
     Methods for Least Squares Problems, 1996, sec. 1.4),
 
@@ -273,7 +298,8 @@ def lstsq_columnwise(
     A, b, x = (np.asarray(v, dtype=np.float64) for v in (A, b, x))
     r = b - A @ x
     n = A.shape[1]
-    eta = SAFETY * n * unit_roundoff(dtype)
+    if eta is None:
+        eta = SAFETY * n * unit_roundoff(dtype)
     d = np.linalg.norm(A, axis=0)
     u_, s, vh = np.linalg.svd(A / d, full_matrices=False)
     pinv = (vh.conj().T / s) @ u_.conj().T / d[:, None]
@@ -285,6 +311,7 @@ def lstsq_columnwise(
         coefficients=eta * (rows * data + np.abs(inverse) @ d * r_norm),
         residual_norm=eta * (data + math.sqrt(n) * r_norm / s[-1]),
         inverse_diagonal=eta * (np.abs(inverse) @ d) / rows,
+        root_diagonal=rows,
     )
 
 

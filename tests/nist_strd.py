@@ -19,6 +19,8 @@ from pathlib import Path
 import numpy as np
 from numpy.typing import NDArray
 
+import bounds
+
 DATA_DIR = Path(__file__).parent / "data" / "nist-strd"
 """Folder holding the ``.dat`` files."""
 
@@ -254,3 +256,63 @@ def worst_lre(computed: NDArray[np.float64], certified: NDArray[np.float64]) -> 
     if a.shape != b.shape:
         raise ValueError(f"shape mismatch: computed {a.shape}, certified {b.shape}")
     return min(lre(x, c) for x, c in zip(a, b, strict=True))
+
+
+@dataclass(frozen=True, slots=True, eq=False)
+class Floors:
+    """Least LRE a backward-stable solver must score on one dataset (see :func:`floors`)."""
+
+    coefficients: NDArray[np.float64]
+    """Per certified estimate."""
+    stderr: NDArray[np.float64]
+    """Per certified standard deviation of an estimate."""
+    residual_sd: float
+    """For the residual standard deviation."""
+
+
+def floors(case: NistCase, eta: float | None = None) -> Floors:
+    """LRE floors of ``case`` from perturbation theory, not from observed runs.
+
+    A least-squares solver whose backward error is columnwise, as Householder QR's is
+    (Higham 2002, Thm 20.3), is within :func:`bounds.lstsq_columnwise` of the exact answer,
+    computed here from the design matrix's own singular values (numpy SVD of the
+    column-equilibrated matrix) and u. TSQR is Householder QR of the row blocks and then of
+    stacked R factors whose column norms are those of A, so its backward error is columnwise
+    too (the levels of the tree add up; Demmel, Grigori, Hoemmen, Langou, SISC 34(1) 2012, for
+    the normwise form). ``eta`` is the solver's columnwise relative backward error (default:
+    that of :func:`bounds.lstsq_columnwise`). Each bound becomes an LRE floor by
+    :func:`bounds.lre_floor`, which also allows for the certified values' 15 digits and caps
+    the floor at 15 (McCullough 1998). Where the certified value is 0 (the exact fits
+    Wampler1/2: residual SD and standard deviations) the LRE is -log10|x|, so the floor is
+    the absolute bound: the computed residual is then rounding noise of size at most the
+    residual bound.
+    """
+    errors = bounds.lstsq_columnwise(case.X, case.y, case.certified_estimates, eta)
+    coefficients = np.array(
+        [
+            bounds.lre_floor(float(e / abs(c)))
+            for e, c in zip(errors.coefficients, case.certified_estimates, strict=True)
+        ]
+    )
+    dof = case.n_obs - case.n_params
+    if case.certified_residual_sd == 0.0:
+        sd = errors.residual_norm / math.sqrt(dof)
+        stderr = sd * errors.root_diagonal * (1 + errors.inverse_diagonal)
+        return Floors(
+            coefficients, np.array([bounds.lre_floor(v) for v in stderr]), bounds.lre_floor(sd)
+        )
+    sd_relative = errors.residual_norm / (case.certified_residual_sd * math.sqrt(dof))
+    stderr = np.array([bounds.lre_floor(sd_relative + v) for v in errors.inverse_diagonal])
+    return Floors(coefficients, stderr, bounds.lre_floor(sd_relative))
+
+
+def condition(case: NistCase) -> float:
+    """2-norm condition number of the raw design matrix (numpy SVD)."""
+    s = np.linalg.svd(case.X, compute_uv=False)
+    return float(s[0] / s[-1])
+
+
+def equilibrated_condition(case: NistCase) -> float:
+    """2-norm condition number of the design matrix with unit-norm columns (numpy SVD)."""
+    s = np.linalg.svd(case.X / np.linalg.norm(case.X, axis=0), compute_uv=False)
+    return float(s[0] / s[-1])
