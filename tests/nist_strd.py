@@ -14,6 +14,7 @@ from __future__ import annotations
 import math
 import re
 from dataclasses import dataclass
+from fractions import Fraction
 from pathlib import Path
 
 import numpy as np
@@ -316,3 +317,55 @@ def equilibrated_condition(case: NistCase) -> float:
     """2-norm condition number of the design matrix with unit-norm columns (numpy SVD)."""
     s = np.linalg.svd(case.X / np.linalg.norm(case.X, axis=0), compute_uv=False)
     return float(s[0] / s[-1])
+
+
+def _relative_rounding(exact: list[Fraction], stored: NDArray[np.float64]) -> float:
+    """||stored - exact|| / ||exact|| in rational arithmetic (0 for an all-zero column)."""
+    error = sum((Fraction(float(s)) - e) ** 2 for e, s in zip(exact, stored, strict=True))
+    size = sum(e**2 for e in exact)
+    return math.sqrt(error / size) if size else 0.0
+
+
+def representation_error(case: NistCase) -> float:
+    """Largest columnwise relative error of the binary data against the file's decimals.
+
+    max over y and the columns a_j of ``||fl(a_j) - a_j|| / ||a_j||``, where a_j is built
+    exactly (rational arithmetic, powers of the decimal x for the polynomial models) and
+    fl(a_j) is :func:`load_dataset`'s float64 column. This is the columnwise backward error
+    that storing the problem in binary has already made before any solver runs, so no solver,
+    refined or not, can be held closer to the certified values than it allows.
+    """
+    text = dataset_path(case.name).read_text(encoding="ascii")
+    first, last = _line_ranges(text)["Data"]
+    rows = [[Fraction(tok) for tok in line.split()] for line in text.splitlines()[first - 1 : last]]
+    y = [row[0] for row in rows]
+    predictors = [row[1:] for row in rows]
+    errors = [_relative_rounding(y, case.y)]
+    for j, k in enumerate(case.params):
+        if len(predictors[0]) == 1:
+            exact = [p[0] ** k for p in predictors]
+        else:
+            exact = [Fraction(1) if k == 0 else p[k - 1] for p in predictors]
+        errors.append(_relative_rounding(exact, case.X[:, j]))
+    return max(errors)
+
+
+def refined_floors(case: NistCase, residual_roundoff: float) -> NDArray[np.float64]:
+    """Coefficient LRE floors after augmented-system iterative refinement whose residuals
+    are computed with unit roundoff ``residual_roundoff`` (numpy.longdouble's in rowfold).
+
+    Refinement with residuals in a precision u_r converges, while the solver's own forward
+    error is below 1 (every :func:`floors` entry above 0), to a limiting accuracy set by the
+    errors of the residual computation: a columnwise backward error of (n + 1) u_r (the
+    residual b - r - A x and A^H r of n + 1 terms each; Björck, BIT 7 (1967); Higham 2002,
+    sec. 20.5, from memory), taken with SAFETY as in :func:`bounds.lstsq_columnwise`. To it
+    add the binary data's own error (:func:`representation_error`, exact, no safety factor)
+    and the final rounding of x to float64 (SAFETY u relative, common practice).
+    """
+    n = case.n_params
+    c, b, x = case.X, case.y, case.certified_estimates
+    limiting = bounds.lstsq_columnwise(c, b, x, bounds.SAFETY * (n + 1) * residual_roundoff)
+    data = bounds.lstsq_columnwise(c, b, x, representation_error(case))
+    relative = (limiting.coefficients + data.coefficients) / np.abs(x)
+    final = bounds.SAFETY * bounds.unit_roundoff()
+    return np.array([bounds.lre_floor(float(v + final)) for v in relative])
