@@ -393,7 +393,7 @@ def test_fixed_columns_solve_equals_lstsq_without_them(
     assert_lstsq_close(A.toarray()[:, keep], b, x, x_ref)
     full = expand_columns(plan, x)
     assert full.shape == (12,) and full[0] == 0 and full[7] == 0
-    assert np.array_equal(full[keep], x)
+    assert np.array_equal(full[keep], x)  # a copy into place, no arithmetic
 
 
 def test_sparse_and_dense_blocks_agree_with_fixed_columns_and_weights(tmp_path: Path) -> None:
