@@ -12,6 +12,8 @@ u: 2^-53 for float64 and complex128, 2^-24 for float32 and complex64 (CHECKS.md)
 
 from __future__ import annotations
 
+import math
+from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
@@ -23,6 +25,40 @@ SAFETY = 10.0
 def unit_roundoff(dtype: Any = np.float64) -> float:
     """u of a dtype's real part (half its machine epsilon)."""
     return float(np.finfo(np.dtype(dtype)).eps) / 2
+
+
+def gamma(k: int, dtype: Any = np.float64) -> float:
+    """gamma_k = k u / (1 - k u), the constant of k rounded operations.
+
+    Source: Higham, Accuracy and Stability of Numerical Algorithms, 2nd ed. 2002, Lemma 3.1.
+    """
+    ku = k * unit_roundoff(dtype)
+    return ku / (1 - ku)
+
+
+def elementwise(operations: int, dtype: Any = np.float64) -> float:
+    """Relative difference of two evaluations of one scalar formula of ``operations``
+    correctly rounded operations (+ - * / sqrt), in any order: 2 gamma_operations.
+
+    Source: the standard model fl(x op y) = (x op y)(1 + d), |d| <= u, that IEEE 754
+    guarantees on every CPU (Higham 2002, sec. 2.2), with Lemma 3.1 for the product of the
+    (1 + d) factors. Rigorous; no safety factor.
+    """
+    return 2 * gamma(operations, dtype)
+
+
+def inner_products(length: int, dtype: Any = np.float64) -> float:
+    """||fl(X^H Y) - X^H Y||_F / (||X||_F ||Y||_F) for inner products of ``length`` terms,
+    summed in any order (any BLAS kernel, any number of threads, with or without FMA).
+
+    Source: Higham 2002, sec. 3.1, eq. (3.5) and sec. 3.5, eq. (3.13):
+    |fl(X^H Y) - X^H Y| <= gamma_length |X|^H |Y|, with gamma_{length+2} for complex data
+    (sec. 3.6; from memory), and || |X|^H |Y| ||_F <= ||X||_F ||Y||_F (Cauchy-Schwarz).
+    Rigorous worst case; no safety factor. Two computations of the same product differ by
+    at most twice this.
+    """
+    complex_ = np.dtype(dtype).kind == "c"
+    return gamma(max(length, 1) + (2 if complex_ else 0), dtype)
 
 
 def stable_qr(n: int, dtype: Any = np.float64) -> float:
@@ -38,15 +74,59 @@ def stable_qr(n: int, dtype: Any = np.float64) -> float:
     return SAFETY * n * unit_roundoff(dtype)
 
 
-def cholqr2(m: int, n: int, dtype: Any = np.float64) -> float:
-    """||I - Q^H Q||_F of CholeskyQR2 for kappa below about u^-1/2:
-    6 (m n u + n (n+1) u).
+def gram_residual(m: int, n: int, dtype: Any = np.float64) -> float:
+    """||R^H R - A^H A||_F / ||A||_F^2, both products formed in floating point, for the R of a
+    backward-stable QR of an m x n matrix A (the report's ``gram_residual``).
+
+    Source: R is the exact R factor of A + dA with ||dA||_F <= e ||A||_F, e = stable_qr(n)
+    (Higham 2002, Thm 19.4), so R^H R - A^H A = dA^H A + A^H dA + dA^H dA; forming A^H A and
+    R^H R adds inner_products(m) and inner_products(n) (||R||_F <= (1 + e) ||A||_F). The
+    bound also holds column-scaled, ||D^-1 (R^H R - A^H A) D^-1||_F <= this ||A D^-1||_F^2,
+    because Householder QR's backward error is columnwise (Higham 2002, Thm 19.4).
+    """
+    e = stable_qr(n, dtype)
+    products = inner_products(m, dtype) + inner_products(n, dtype) * (1 + e) ** 2
+    return 2 * e + e * e + products
+
+
+def cholqr2_published(m: int, n: int, dtype: Any = np.float64) -> float:
+    """The published form of CholeskyQR2's bound, 6 (m n u + n (n+1) u), without a margin:
+    what rowfold's report states as ``orthogonality_bound`` (a formula to compare with, not
+    a tolerance).
 
     Source: Yamamoto, Nakatsukasa, Yanagisawa, Fukaya, ETNA 44 (2015); the constant 6 is
-    from memory (CHECKS.md), so it is multiplied by SAFETY.
+    from memory (CHECKS.md).
     """
     u = unit_roundoff(dtype)
-    return SAFETY * 6 * (m * n * u + n * (n + 1) * u)
+    return 6 * (m * n * u + n * (n + 1) * u)
+
+
+def cholqr2(m: int, n: int, dtype: Any = np.float64) -> float:
+    """||I - Q^H Q||_F and ||A - QR||_F / ||A||_F of CholeskyQR2 for kappa below about
+    u^-1/2 (and of shifted CholeskyQR3 within its range): 6 (m n u + n (n+1) u).
+
+    Source: Yamamoto, Nakatsukasa, Yanagisawa, Fukaya, ETNA 44 (2015); Fukaya, Kannan,
+    Nakatsukasa, Yamamoto, Yanagisawa, SISC 42(1) 2020 for sCholQR3. The constant 6 is from
+    memory (CHECKS.md), so it is multiplied by SAFETY.
+    """
+    return SAFETY * cholqr2_published(m, n, dtype)
+
+
+def cholqr2_columnwise(m: int, n: int, dtype: Any = np.float64) -> float:
+    """Columnwise relative backward error of CholeskyQR2 (and of its least-squares solve):
+    max_j ||da_j|| / ||a_j|| with A + dA = QR, for A D^-1 (D = column norms) well inside
+    CholeskyQR2's range: 2 sqrt(n) times :func:`cholqr2`.
+
+    Source: scaling a column by a power of two scales every rounded operation of the Gram
+    product, the Cholesky factorization and the triangular solves exactly, so CholeskyQR2 of
+    A gives the same Q as CholeskyQR2 of A P^-1 (P = D with each entry rounded to the nearest
+    power of two on a log scale, so within a factor sqrt(2) of D). Applying :func:`cholqr2`'s
+    normwise residual bound to A P^-1 (Frobenius norm at most sqrt(2 n)) and scaling back by
+    P (at most sqrt(2) D) bounds each column's error relative to its own norm. Our
+    derivation, from the exactness of power-of-two scaling in IEEE 754; the solve
+    ``R x = Q^H b`` adds a backward-stable triangular solve, covered by SAFETY.
+    """
+    return 2 * math.sqrt(n) * cholqr2(m, n, dtype)
 
 
 def mgs(n: int, kappa: float, dtype: Any = np.float64) -> float:
@@ -98,6 +178,156 @@ def residual_vector(n: int, kappa: float, dtype: Any = np.float64) -> float:
     return 2 * SAFETY * eta * (1 + 2 * max(1.0, kappa))
 
 
+def residual_std(n: int, kappa: float, rhs_over_residual: float, dtype: Any = np.float64) -> float:
+    """|s1 - s2| / s2 between the residual norms (or residual SDs) of two backward-stable
+    least-squares solutions, where ``rhs_over_residual`` is ||b|| / ||r||.
+
+    Source: | ||r1|| - ||r2|| | <= ||r1 - r2|| (triangle inequality) with
+    :func:`residual_vector` for ||r1 - r2|| / ||b||.
+    """
+    return residual_vector(n, kappa, dtype) * rhs_over_residual
+
+
+def standard_errors(
+    n: int, kappa: float, rhs_over_residual: float, dtype: Any = np.float64
+) -> float:
+    """Largest relative difference, entry by entry, between the standard errors
+    ``s_j = sigma sqrt(C_jj)``, ``C = (A^H A)^-1``, of two backward-stable solutions.
+
+    Source: first-order perturbation of the inverse, dC = -C dG C (Golub & Van Loan, Matrix
+    Computations, 4th ed., sec. 2.3.4), with dG = A^H dA + dA^H A: since C e_j = A^+ (A^+)^H
+    e_j, |dC_jj| <= 2 ||(A^+)^H e_j|| ||dA|| ||C e_j|| <= 2 kappa (||dA|| / ||A||) C_jj, so
+    each s_j moves by at most kappa eta relatively (eta = SAFETY n u per solver, as in
+    :func:`lstsq_solution`), plus the relative change of sigma (:func:`residual_std`).
+    """
+    eta = SAFETY * n * unit_roundoff(dtype)
+    return residual_std(n, kappa, rhs_over_residual, dtype) + 2 * eta * max(1.0, kappa)
+
+
+def inverse_gram(n: int, kappa: float, dtype: Any = np.float64) -> float:
+    """||C1 - C2||_2 / ||C2||_2 between two backward-stable computations of
+    C = (A^H A)^-1 (for example R^-1 R^-H, and V S^-2 V^H from an SVD of A).
+
+    Source: perturbation of the inverse, ||dC|| / ||C|| <= kappa(G) ||dG|| / ||G|| to first
+    order (Golub & Van Loan, 4th ed., sec. 2.3.4), with kappa(A^H A) = kappa^2 and
+    ||dG|| <= 2 eta ||A||^2 per computation (eta = SAFETY n u, common practice).
+    """
+    eta = SAFETY * n * unit_roundoff(dtype)
+    return 2 * 2 * eta * max(1.0, kappa) ** 2
+
+
+def projector(n: int, kappa: float, dtype: Any = np.float64) -> float:
+    """max_i |h1_i - h2_i| between two backward-stable computations of the leverages
+    h_i = (A A^+)_ii = ||e_i^H Q||^2 (the diagonal of the orthogonal projector onto range(A)).
+
+    Source: ||dP||_2 <= kappa ||dA|| / ||A|| to first order for rank-preserving
+    perturbations (Stewart, SIAM Rev. 19(4), 1977; from memory), |dh_i| <= ||dP||_2, and
+    forming ||q_i||^2 from a Q with loss of orthogonality :func:`stable_qr` adds that much.
+    eta = SAFETY n u per computation (common practice).
+    """
+    eta = SAFETY * n * unit_roundoff(dtype)
+    return 2 * (eta * max(1.0, kappa) + stable_qr(n, dtype))
+
+
+def triangular_solve(n: int, kappa: float, dtype: Any = np.float64) -> float:
+    """||X1 - X2||_F / ||X2||_F between two computations of X = B T^-1 (or T^-1 B) with an
+    n x n triangular T of condition ``kappa``: by substitution, or with an explicit inverse.
+
+    Source: substitution is backward stable, (T + dT) x = b with |dT| <= gamma_n |T|
+    (Higham 2002, Thm 8.5), and so is a computed triangular inverse up to a small multiple
+    (Higham 2002, sec. 14.2); a backward error e gives a forward error kappa e / (1 - kappa e)
+    (Higham 2002, Thm 7.2). The multiple n of gamma_n in the componentwise-to-normwise step
+    and SAFETY are common practice.
+    """
+    e = SAFETY * n * gamma(n, dtype) * max(1.0, kappa)
+    return 2 * e / (1 - e) if e < 1 else np.inf
+
+
+@dataclass(frozen=True)
+class LstsqErrors:
+    """First-order error bounds of one least-squares solve with a columnwise backward error.
+
+    Attributes
+    ----------
+    coefficients : ndarray (n,)
+        Bound on |x_hat_i - x_i| for each coefficient.
+    residual_norm : float
+        Bound on | ||r_hat|| - ||r|| |.
+    inverse_diagonal : ndarray (n,)
+        Bound on the relative error of sqrt(C_jj), C = (A^H A)^-1 (the standard error of
+        x_j is sigma sqrt(C_jj)).
+    root_diagonal : ndarray (n,)
+        sqrt(C_jj) itself (not a bound: the scale of an exact fit's standard errors).
+    """
+
+    coefficients: np.ndarray
+    residual_norm: float
+    inverse_diagonal: np.ndarray
+    root_diagonal: np.ndarray
+
+
+def lstsq_columnwise(
+    A: np.ndarray,
+    b: np.ndarray,
+    x: np.ndarray,
+    eta: float | None = None,
+    dtype: Any = np.float64,
+) -> LstsqErrors:
+    """Componentwise first-order error bounds of min ||A x - b|| (solution x, residual
+    r = b - A x) solved by Householder QR (or TSQR), from A's own singular values and vectors.
+
+    Householder QR least squares is columnwise backward stable: the computed x solves the
+    problem for A + dA, b + db with ||da_j|| <= eta ||a_j||, ||db|| <= eta ||b|| (Higham
+    2002, Thm 20.3, with eta = gamma~_{mn}; by default ``eta = SAFETY n u``, common practice
+    as in :func:`stable_qr`; a method with a larger columnwise backward error passes its
+    own ``eta``). Rounding the data to binary and forming ``b - A x`` are errors of the
+    same columnwise kind and size. To first order (Higham 2002, sec. 20.1; Björck, Numerical
+    Methods for Least Squares Problems, 1996, sec. 1.4),
+
+    - dx = A^+ (db - dA x) + C dA^H r, so |dx_i| <= eta (||e_i^H A^+|| (||b|| + sum_j |x_j|
+      ||a_j||) + sum_j |C_ij| ||a_j|| ||r||);
+    - dr = (I - A A^+)(db - dA x) - (A^+)^H dA^H r, so ||dr|| <= eta (||b|| + sum_j |x_j|
+      ||a_j|| + sqrt(n) ||r|| / sigma_min(A D^-1));
+    - dC = -C dG C (see :func:`standard_errors`), so sqrt(C_jj) moves by at most
+      eta (|C| d)_j / ||e_j^H A^+|| relatively.
+
+    A^+ and C = (A^H A)^-1 are computed with numpy's SVD of the column-equilibrated
+    A D^-1 (D = column norms), which is accurate where A itself is not (NIST's Filip has
+    condition 1.8e15 raw and 5e9 equilibrated; van der Sluis 1969).
+    """
+    A, b, x = (np.asarray(v, dtype=np.float64) for v in (A, b, x))
+    r = b - A @ x
+    n = A.shape[1]
+    if eta is None:
+        eta = SAFETY * n * unit_roundoff(dtype)
+    d = np.linalg.norm(A, axis=0)
+    u_, s, vh = np.linalg.svd(A / d, full_matrices=False)
+    pinv = (vh.conj().T / s) @ u_.conj().T / d[:, None]
+    inverse = (vh.conj().T / s**2) @ vh / np.outer(d, d)
+    rows = np.linalg.norm(pinv, axis=1)
+    data = float(np.linalg.norm(b)) + float(np.sum(np.abs(x) * d))
+    r_norm = float(np.linalg.norm(r))
+    return LstsqErrors(
+        coefficients=eta * (rows * data + np.abs(inverse) @ d * r_norm),
+        residual_norm=eta * (data + math.sqrt(n) * r_norm / s[-1]),
+        inverse_diagonal=eta * (np.abs(inverse) @ d) / rows,
+        root_diagonal=rows,
+    )
+
+
+# A certified value printed to 15 significant digits is off by at most half a unit in the
+# 15th digit, 5e-15 of its size (NIST StRD certified values; McCullough, The American
+# Statistician 52(4), 1998, caps the LRE at 15 for that reason).
+CERTIFIED_ROUNDING = 5e-15
+
+
+def lre_floor(relative_bound: float) -> float:
+    """The least log relative error (correct digits) a value within ``relative_bound`` of
+    the exact answer scores against a 15-digit certified value: -log10(bound + 5e-15),
+    capped at 15 (McCullough 1998). For a certified 0, pass the absolute bound."""
+    return min(15.0, -math.log10(relative_bound + CERTIFIED_ROUNDING))
+
+
 def relative_error(measured: np.ndarray, reference: np.ndarray) -> float:
     """||measured - reference||_F / ||reference||_F (the absolute norm when the reference
     is zero)."""
@@ -107,7 +337,7 @@ def relative_error(measured: np.ndarray, reference: np.ndarray) -> float:
     return diff / scale if scale > 0 else diff
 
 
-def projector(n: int, kappa: float, dtype: Any = np.float64) -> float:
+def subspace_projector(n: int, kappa: float, dtype: Any = np.float64) -> float:
     """||P1 - P2||_2 between the orthogonal projectors onto the rank-r column space of A
     computed by two backward-stable methods, with kappa = sigma_1 / sigma_r the condition of
     the rank-r part (its gap to sigma_{r+1} = 0 is sigma_r).
@@ -132,7 +362,7 @@ def pseudo_inverse(n: int, kappa: float, dtype: Any = np.float64) -> float:
     return 2 * 3 * SAFETY * n * unit_roundoff(dtype) * max(1.0, kappa)
 
 
-def inner_products(m: int, n: int, dtype: Any = np.float64) -> float:
+def gram_rounding(m: int, n: int, dtype: Any = np.float64) -> float:
     """||fl(Q^H Q) - Q^H Q||_F for an m x n Q with columns of norm about 1, the products
     accumulated in ``dtype``: each entry errs by at most gamma_m |q_i|^T |q_j| <= gamma_m,
     gamma_m = m u / (1 - m u), so the Frobenius norm by at most n gamma_m.

@@ -6,6 +6,13 @@ a different kernel sums in a different order and so rounds differently. When
 ``ROWFOLD_EXPECT_BLAS_ARCH`` is set, the session refuses to start unless every OpenBLAS
 library loaded reports that architecture (threadpoolctl), so the second run provably ran
 on the kernel it names.
+
+Hypothesis runs under the ``ci`` profile unless ``ROWFOLD_HYPOTHESIS_PROFILE`` names another:
+``ci`` is derandomized (the same examples on every run and machine, no example database)
+with no deadline (CI machines are slow and shared) and prints the reproduction blob of a
+failure; ``explore`` draws fresh random examples each run (and prints the blob of a failure, to
+replay it with ``@reproduce_failure``) for looking for new failures locally, e.g.
+``ROWFOLD_HYPOTHESIS_PROFILE=explore python -m pytest tests/test_kernels.py``.
 """
 
 from __future__ import annotations
@@ -14,6 +21,11 @@ import os
 from pathlib import Path
 
 import pytest
+from hypothesis import settings
+
+settings.register_profile("ci", derandomize=True, database=None, deadline=None, print_blob=True)
+settings.register_profile("explore", derandomize=False, deadline=None, print_blob=True)
+settings.load_profile(os.environ.get("ROWFOLD_HYPOTHESIS_PROFILE", "ci"))
 
 NUMERICAL_MODULES = {
     "test_factorization.py",

@@ -14,10 +14,13 @@ from __future__ import annotations
 import math
 import re
 from dataclasses import dataclass
+from fractions import Fraction
 from pathlib import Path
 
 import numpy as np
 from numpy.typing import NDArray
+
+import bounds
 
 DATA_DIR = Path(__file__).parent / "data" / "nist-strd"
 """Folder holding the ``.dat`` files."""
@@ -254,3 +257,115 @@ def worst_lre(computed: NDArray[np.float64], certified: NDArray[np.float64]) -> 
     if a.shape != b.shape:
         raise ValueError(f"shape mismatch: computed {a.shape}, certified {b.shape}")
     return min(lre(x, c) for x, c in zip(a, b, strict=True))
+
+
+@dataclass(frozen=True, slots=True, eq=False)
+class Floors:
+    """Least LRE a backward-stable solver must score on one dataset (see :func:`floors`)."""
+
+    coefficients: NDArray[np.float64]
+    """Per certified estimate."""
+    stderr: NDArray[np.float64]
+    """Per certified standard deviation of an estimate."""
+    residual_sd: float
+    """For the residual standard deviation."""
+
+
+def floors(case: NistCase, eta: float | None = None) -> Floors:
+    """LRE floors of ``case`` from perturbation theory, not from observed runs.
+
+    A least-squares solver whose backward error is columnwise, as Householder QR's is
+    (Higham 2002, Thm 20.3), is within :func:`bounds.lstsq_columnwise` of the exact answer,
+    computed here from the design matrix's own singular values (numpy SVD of the
+    column-equilibrated matrix) and u. TSQR is Householder QR of the row blocks and then of
+    stacked R factors whose column norms are those of A, so its backward error is columnwise
+    too (the levels of the tree add up; Demmel, Grigori, Hoemmen, Langou, SISC 34(1) 2012, for
+    the normwise form). ``eta`` is the solver's columnwise relative backward error (default:
+    that of :func:`bounds.lstsq_columnwise`). Each bound becomes an LRE floor by
+    :func:`bounds.lre_floor`, which also allows for the certified values' 15 digits and caps
+    the floor at 15 (McCullough 1998). Where the certified value is 0 (the exact fits
+    Wampler1/2: residual SD and standard deviations) the LRE is -log10|x|, so the floor is
+    the absolute bound: the computed residual is then rounding noise of size at most the
+    residual bound.
+    """
+    errors = bounds.lstsq_columnwise(case.X, case.y, case.certified_estimates, eta)
+    coefficients = np.array(
+        [
+            bounds.lre_floor(float(e / abs(c)))
+            for e, c in zip(errors.coefficients, case.certified_estimates, strict=True)
+        ]
+    )
+    dof = case.n_obs - case.n_params
+    if case.certified_residual_sd == 0.0:
+        sd = errors.residual_norm / math.sqrt(dof)
+        stderr = sd * errors.root_diagonal * (1 + errors.inverse_diagonal)
+        return Floors(
+            coefficients, np.array([bounds.lre_floor(v) for v in stderr]), bounds.lre_floor(sd)
+        )
+    sd_relative = errors.residual_norm / (case.certified_residual_sd * math.sqrt(dof))
+    stderr = np.array([bounds.lre_floor(sd_relative + v) for v in errors.inverse_diagonal])
+    return Floors(coefficients, stderr, bounds.lre_floor(sd_relative))
+
+
+def condition(case: NistCase) -> float:
+    """2-norm condition number of the raw design matrix (numpy SVD)."""
+    s = np.linalg.svd(case.X, compute_uv=False)
+    return float(s[0] / s[-1])
+
+
+def equilibrated_condition(case: NistCase) -> float:
+    """2-norm condition number of the design matrix with unit-norm columns (numpy SVD)."""
+    s = np.linalg.svd(case.X / np.linalg.norm(case.X, axis=0), compute_uv=False)
+    return float(s[0] / s[-1])
+
+
+def _relative_rounding(exact: list[Fraction], stored: NDArray[np.float64]) -> float:
+    """||stored - exact|| / ||exact|| in rational arithmetic (0 for an all-zero column)."""
+    error = sum((Fraction(float(s)) - e) ** 2 for e, s in zip(exact, stored, strict=True))
+    size = sum(e**2 for e in exact)
+    return math.sqrt(error / size) if size else 0.0
+
+
+def representation_error(case: NistCase) -> float:
+    """Largest columnwise relative error of the binary data against the file's decimals.
+
+    max over y and the columns a_j of ``||fl(a_j) - a_j|| / ||a_j||``, where a_j is built
+    exactly (rational arithmetic, powers of the decimal x for the polynomial models) and
+    fl(a_j) is :func:`load_dataset`'s float64 column. This is the columnwise backward error
+    that storing the problem in binary has already made before any solver runs, so no solver,
+    refined or not, can be held closer to the certified values than it allows.
+    """
+    text = dataset_path(case.name).read_text(encoding="ascii")
+    first, last = _line_ranges(text)["Data"]
+    rows = [[Fraction(tok) for tok in line.split()] for line in text.splitlines()[first - 1 : last]]
+    y = [row[0] for row in rows]
+    predictors = [row[1:] for row in rows]
+    errors = [_relative_rounding(y, case.y)]
+    for j, k in enumerate(case.params):
+        if len(predictors[0]) == 1:
+            exact = [p[0] ** k for p in predictors]
+        else:
+            exact = [Fraction(1) if k == 0 else p[k - 1] for p in predictors]
+        errors.append(_relative_rounding(exact, case.X[:, j]))
+    return max(errors)
+
+
+def refined_floors(case: NistCase, residual_roundoff: float) -> NDArray[np.float64]:
+    """Coefficient LRE floors after augmented-system iterative refinement whose residuals
+    are computed with unit roundoff ``residual_roundoff`` (numpy.longdouble's in rowfold).
+
+    Refinement with residuals in a precision u_r converges, while the solver's own forward
+    error is below 1 (every :func:`floors` entry above 0), to a limiting accuracy set by the
+    errors of the residual computation: a columnwise backward error of (n + 1) u_r (the
+    residual b - r - A x and A^H r of n + 1 terms each; Björck, BIT 7 (1967); Higham 2002,
+    sec. 20.5, from memory), taken with SAFETY as in :func:`bounds.lstsq_columnwise`. To it
+    add the binary data's own error (:func:`representation_error`, exact, no safety factor)
+    and the final rounding of x to float64 (SAFETY u relative, common practice).
+    """
+    n = case.n_params
+    c, b, x = case.X, case.y, case.certified_estimates
+    limiting = bounds.lstsq_columnwise(c, b, x, bounds.SAFETY * (n + 1) * residual_roundoff)
+    data = bounds.lstsq_columnwise(c, b, x, representation_error(case))
+    relative = (limiting.coefficients + data.coefficients) / np.abs(x)
+    final = bounds.SAFETY * bounds.unit_roundoff()
+    return np.array([bounds.lre_floor(float(v + final)) for v in relative])

@@ -4,10 +4,9 @@ What is checked, and against what:
 
 - R from a run on the cluster equals numpy's LAPACK R after fixing its signs (with a
   positive diagonal the thin QR is unique: Trefethen & Bau, Numerical Linear Algebra,
-  1997, Thm 7.2), to a multiple of kappa * u (QR perturbation bounds, Higham, Accuracy
-  and Stability of Numerical Algorithms, 2nd ed. 2002, ch. 19); Q has loss of
-  orthogonality O(u) for TSQR (Demmel, Grigori, Hoemmen, Langou, SIAM J. Sci. Comput.
-  34(1), 2012), held to 10 n u as in test_factorization.py.
+  1997, Thm 7.2), to the first-order perturbation bound of R (``bounds.r_factor``, kappa
+  u; Sun, BIT 31, 1991); Q has loss of orthogonality O(u) for TSQR (Demmel, Grigori,
+  Hoemmen, Langou, SIAM J. Sci. Comput. 34(1), 2012), ``bounds.stable_qr``.
 - A worker killed (SIGKILL) in the middle of a run: the scheduler runs its tasks again
   elsewhere and the run still gives that R.
 - Every worker killed and none coming back: exit 4, the earlier result stays
@@ -52,7 +51,8 @@ from rowfold.errors import RunError
 from rowfold.spec import ClusterSpec
 from rowfold.storage import write_arrays
 
-from support import U, assert_thin_qr, lapack_r, prescribed, read_store, write_job
+import bounds
+from support import assert_thin_qr, lapack_r, prescribed, read_store, write_job
 
 pytestmark = pytest.mark.slow
 
@@ -178,7 +178,7 @@ def cluster(scheduler: tuple[str, Path]) -> Iterator[Cluster]:
 
 @dataclass
 class BigInput:
-    """An input file, LAPACK's sign-normalised R of its matrix, and the matrix's norm."""
+    """An input file, LAPACK's sign-normalised R of its matrix, and the matrix's 2-norm."""
 
     path: Path
     R: np.ndarray
@@ -191,7 +191,7 @@ def big_input(tmp_path_factory: pytest.TempPathFactory) -> BigInput:
     path = tmp_path_factory.mktemp("big") / "big.h5"
     A = prescribed(BIG_ROWS, BIG_COLS, BIG_KAPPA, seed=11)
     write_arrays(path, {"model/A": A}, chunk_rows=4096)
-    return BigInput(path, lapack_r(A), float(np.linalg.norm(A)))
+    return BigInput(path, lapack_r(A), float(np.linalg.norm(A, 2)))
 
 
 def big_job(folder: Path, source: Path, address: str, **cluster: float) -> Path:
@@ -268,10 +268,11 @@ def test_remote_scheduler_matches_lapack(
     err = capsys.readouterr().err
     assert status == 0, err
     got = read_store(tmp_path / "out.h5")
-    # Trefethen & Bau Thm 7.2 (uniqueness) with a kappa u perturbation bound (Higham ch. 19).
-    assert np.linalg.norm(got["R"] - lapack_r(A)) <= 100 * n * kappa * U * np.linalg.norm(A)
+    # Trefethen & Bau Thm 7.2 (uniqueness) with the R-factor perturbation bound.
+    r_error = np.linalg.norm(got["R"] - lapack_r(A)) / np.linalg.norm(A, 2)
+    assert r_error <= bounds.r_factor(n, kappa)
     if method == "tsqr":
-        assert_thin_qr(A, got["Q"], got["R"], 10 * n * U)  # Demmel et al. 2012: O(u)
+        assert_thin_qr(A, got["Q"], got["R"], bounds.stable_qr(n))  # Demmel et al. 2012
     # The dashboard link is printed only when the scheduler can serve a dashboard (bokeh).
     has_dashboard = importlib.util.find_spec("bokeh") is not None
     assert ("rowfold: dashboard at http://" in err) == has_dashboard, err
@@ -294,8 +295,8 @@ def test_run_survives_a_killed_worker(
     assert victim.wait(timeout=10) == -signal.SIGKILL
     assert status == 0, err
     R = read_store(tmp_path / "out.h5")["R"]
-    # Trefethen & Bau Thm 7.2 (uniqueness) with a kappa u perturbation bound (Higham ch. 19).
-    limit = 100 * BIG_COLS * BIG_KAPPA * U * big_input.norm
+    # Trefethen & Bau Thm 7.2 (uniqueness) with the R-factor perturbation bound.
+    limit = bounds.r_factor(BIG_COLS, BIG_KAPPA) * big_input.norm
     assert np.linalg.norm(R - big_input.R) <= limit
 
 

@@ -3,8 +3,10 @@
 from __future__ import annotations
 
 from pathlib import Path
+from typing import Any
 
 import pytest
+import yaml
 
 from rowfold import demo
 from rowfold.spec import load_job
@@ -31,8 +33,14 @@ def test_demo_jobs_match_the_examples(example: str, text: str) -> None:
     assert (ROOT / "jobs" / example).read_text(encoding="utf-8") == text
 
 
+def _auto(value: Any) -> Any:
+    """A profile's ``auto`` (or an absent key) is None in the parsed job (spec.ClusterSpec)."""
+    return None if value in ("auto", None) else value
+
+
 @pytest.mark.parametrize("profile", sorted((ROOT / "configs").glob("*.yaml")), ids=lambda p: p.name)
 def test_cluster_profiles_load(profile: Path, tmp_path: Path) -> None:
+    """A job naming a profile gets every setting the profile file writes down."""
     job = tmp_path / "job.yaml"
     job.write_text(
         f"input: {{path: a.h5, matrix: A}}\noutput: {{path: o.h5}}\n"
@@ -40,7 +48,12 @@ def test_cluster_profiles_load(profile: Path, tmp_path: Path) -> None:
         encoding="utf-8",
     )
     cluster = load_job(job).cluster
-    assert cluster.processes in (True, False, None)
+    written = yaml.safe_load(profile.read_text(encoding="utf-8"))["cluster"]
+    assert cluster.address == written.get("address")
+    assert cluster.workers == _auto(written.get("workers"))
+    assert cluster.threads_per_worker == _auto(written.get("threads_per_worker"))
+    assert cluster.processes == _auto(written.get("processes"))
+    assert cluster.scheduler == written.get("scheduler", "distributed")
 
 
 def test_demo_recovers_its_true_parameters(tmp_path: Path) -> None:

@@ -4,8 +4,13 @@ Source: NIST/ITL Statistical Reference Datasets (StRD), linear least-squares reg
 files in ``tests/data/nist-strd/`` (see ``SOURCE.md`` there). Their certified estimates, standard
 deviations of the estimates and residual standard deviations were computed by NIST in 500-digit
 arithmetic and are printed to 15 significant digits. Accuracy is scored as the log relative error
-(LRE, McCullough, The American Statistician 52(4), 1998); the coefficient floors come from
-../shared/CHECKS.md ("NIST StRD linear regression").
+(LRE, McCullough, The American Statistician 52(4), 1998), one score per certified value.
+
+Floors are not observed figures: :func:`nist_strd.floors` derives each one from the first-order
+perturbation bound of least squares with a columnwise backward error, from the design matrix's
+own singular values (numpy SVD) and u, as ``-log10(bound)`` capped at 15. Every run must exit 0
+and meet every floor, except where a test names the set as one the method must refuse, with the
+reason, and checks that reason against the design matrix's condition number.
 
 Each case writes the design matrix and response to an HDF5 file, writes a job file as in the
 product contract (SPEC.md, "Job file"), runs it in-process through the command line entry point
@@ -27,53 +32,37 @@ import numpy as np
 import pytest
 import yaml
 
-from nist_strd import DATASET_NAMES, NistCase, load_dataset, lre, worst_lre
+import bounds
+from nist_strd import (
+    DATASET_NAMES,
+    Floors,
+    NistCase,
+    condition,
+    equilibrated_condition,
+    floors,
+    load_dataset,
+    lre,
+)
 
 RowsPerBlock = int | str
 
-# Worst-coefficient LRE observed once with Householder QR on the raw design, per set
-# (../shared/CHECKS.md, "NIST StRD linear regression"). Single runs, not bounds: the tests
-# below allow 0.5 digit less. TSQR is as stable as Householder QR (Demmel, Grigori, Hoemmen,
-# Langou, SIAM J. Sci. Comput. 34(1), 2012; same file).
-HOUSEHOLDER_COEF_LRE: dict[str, float] = {
-    "Norris": 12.4,
-    "Pontius": 12.2,
-    "NoInt1": 14.7,
-    "NoInt2": 15.1,
-    "Longley": 10.9,
-    "Filip": 7.9,
-    "Wampler1": 9.4,
-    "Wampler2": 13.0,
-    "Wampler3": 9.1,
-    "Wampler4": 7.8,
-    "Wampler5": 5.8,
-}
-COEF_MARGIN = 0.5
-
-# Measured here, not published: a reference TSQR (LAPACK Householder on each row block, flat
-# and binary reduction trees, every block size from 2 rows to m) gave these lowest
-# worst-coefficient LREs, below the single Householder figure above: Pontius 11.5, Filip 6.5
-# (Filip's condition number is about 1.8e15, so kappa * u is near 0.2 and the digits that
-# survive depend on the order of rounding), Wampler2 12.1. For these sets the floor is that
-# lowest value minus the same 0.5.
-COEF_LRE_FLOOR_MEASURED: dict[str, float] = {"Pontius": 11.0, "Filip": 6.0, "Wampler2": 11.6}
-
-# Standard deviations of the estimates and the residual SD need 7 correct digits (NIST StRD
-# certified values). Measured here, not published: the same reference TSQR sweep gave Filip
-# standard deviations with LRE 7.0 to 9.0, so Filip's floor is 6.5.
-STATS_LRE_FLOOR = 7.0
-STATS_LRE_FLOOR_MEASURED: dict[str, float] = {"Filip": 6.5}
-
-# NIST StRD Wampler1 and Wampler2 are exact fits (certified residual SD 0): the computed residual
-# SD must be rounding noise relative to the response.
+# Wampler1 and Wampler2 are exact fits (NIST StRD: certified residual SD 0).
 EXACT_FITS = ("Wampler1", "Wampler2")
-EXACT_FIT_RELATIVE_SD = 1e-8
 
-# CholeskyQR2 is only reliable for condition numbers below about 1e8 (Yamamoto, Nakatsukasa,
-# Yanagisawa, Fukaya, ETNA 44, 2015; ../shared/CHECKS.md). Filip (~1.8e15 unscaled) and Longley
-# are far above it, so rowfold must refuse them (exit 4) and point to tsqr.
-CHOLQR2_MUST_REFUSE = ("Filip", "Longley")
-CHOLQR2_MIN_LRE = 4.0
+# CholeskyQR2 refuses when its first-pass condition estimate reaches u^-1/2, about 9.5e7
+# (Yamamoto, Nakatsukasa, Yanagisawa, Fukaya, ETNA 44, 2015; ../shared/CHECKS.md). The
+# reason each set must be refused is checked against the raw design's condition number
+# (numpy SVD) in the test; every other set must be accepted and meet its floors.
+CHOLQR2_LIMIT = 1 / np.sqrt(bounds.unit_roundoff())
+CHOLQR2_MUST_REFUSE: dict[str, str] = {
+    "Pontius": "raw condition about 1.4e13, above u^-1/2",
+    "Filip": "raw condition about 1.8e15, above u^-1/2 (the Gram matrix is not positive definite)",
+    "Longley": "raw condition about 4.9e9, above u^-1/2",
+}
+# Sets CholeskyQR2 must accept are this far below the limit, so that an estimate of the
+# condition number (within a small factor of the SVD's) cannot flip the decision
+# (common-practice margin).
+CHOLQR2_ACCEPT_MARGIN = 10.0
 
 EXIT_OK = 0  # SPEC.md, "Exit status"
 EXIT_RUN_FAILED = 4  # SPEC.md, "Exit status"
@@ -197,6 +186,32 @@ def _succeeded(outcome: Outcome) -> Outcome:
     return outcome
 
 
+def _meets(what: str, computed: np.ndarray, certified: np.ndarray, floor: np.ndarray) -> list[str]:
+    """Return one line per certified value whose LRE is below its floor."""
+    scores = [lre(x, c) for x, c in zip(np.ravel(computed), np.ravel(certified), strict=True)]
+    floor = np.broadcast_to(floor, np.shape(scores))
+    return [
+        f"{what}[{i}]: LRE {score:.2f} < floor {f:.2f} (computed {x!r}, certified {c!r})"
+        for i, (score, f, x, c) in enumerate(
+            zip(scores, floor, np.ravel(computed), np.ravel(certified), strict=True)
+        )
+        if not score >= f
+    ]
+
+
+def _informative(floor: Floors) -> None:
+    """A floor at or below 0 would accept an answer wrong by more than its own size."""
+    least = min(floor.coefficients.min(), floor.stderr.min(), floor.residual_sd)
+    assert least > 0, f"bound too loose to test anything (least floor {least:.2f})"
+
+
+def _tsqr_floors(case: NistCase) -> Floors:
+    """Floors for TSQR: Householder QR's columnwise backward error (bounds.py default)."""
+    floor = floors(case)
+    _informative(floor)
+    return floor
+
+
 TSQR_CASES = [
     pytest.param(name, rpb, id=f"{name}-rows_per_block={rpb}")
     for name in DATASET_NAMES
@@ -208,73 +223,97 @@ TSQR_CASES = [
 def test_tsqr_coefficients(
     name: str, rows_per_block: RowsPerBlock, tsqr_outcome: Callable[..., Outcome]
 ) -> None:
-    """NIST StRD certified estimates: worst-coefficient LRE at the Householder level.
+    """NIST StRD certified estimates: each coefficient's LRE meets its perturbation floor.
 
-    Floor: ../shared/CHECKS.md observed Householder LRE for the set, minus 0.5 (lower for the
-    three sets in COEF_LRE_FLOOR_MEASURED, measured here). With
-    rows_per_block=7 the rows fall into several blocks (some shorter than the number of
+    With rows_per_block=7 the rows fall into several blocks (some shorter than the number of
     parameters, for Filip and Longley) and are combined through the reduction tree.
     """
     case = load_dataset(name)
     out = _succeeded(tsqr_outcome(name, rows_per_block))
     assert out.x is not None and out.x.shape == (case.n_params,)
-    floor = COEF_LRE_FLOOR_MEASURED.get(name, HOUSEHOLDER_COEF_LRE[name] - COEF_MARGIN)
-    assert worst_lre(out.x, case.certified_estimates) >= floor
+    floor = _tsqr_floors(case).coefficients
+    assert not (failures := _meets("x", out.x, case.certified_estimates, floor)), failures
 
 
 @pytest.mark.parametrize(("name", "rows_per_block"), TSQR_CASES)
 def test_tsqr_standard_deviations(
     name: str, rows_per_block: RowsPerBlock, tsqr_outcome: Callable[..., Outcome]
 ) -> None:
-    """NIST StRD certified standard deviations of the estimates: LRE >= 7.
+    """NIST StRD certified standard deviations of the estimates meet their floors.
 
     Where the certified value is 0 (the exact fits Wampler1/2) McCullough's LRE uses the
-    absolute error, -log10|x|, and the same floor applies.
+    absolute error, -log10|x|, and the floor is the absolute bound (nist_strd.floors).
     """
     case = load_dataset(name)
     out = _succeeded(tsqr_outcome(name, rows_per_block))
     assert out.x_stderr is not None and out.x_stderr.shape == (case.n_params,)
-    floor = STATS_LRE_FLOOR_MEASURED.get(name, STATS_LRE_FLOOR)
-    assert worst_lre(out.x_stderr, case.certified_stderr) >= floor
+    floor = _tsqr_floors(case).stderr
+    failures = _meets("x_stderr", out.x_stderr, case.certified_stderr, floor)
+    assert not failures, failures
 
 
 @pytest.mark.parametrize(("name", "rows_per_block"), TSQR_CASES)
 def test_tsqr_residual_sd(
     name: str, rows_per_block: RowsPerBlock, tsqr_outcome: Callable[..., Outcome]
 ) -> None:
-    """NIST StRD certified residual standard deviation: LRE >= 7.
+    """NIST StRD certified residual standard deviation meets its floor.
 
-    For the exact fits (Wampler1/2, certified 0) the computed value must instead be below
-    1e-8 times the largest |y|.
+    For the exact fits (Wampler1/2, certified 0) the computed value is rounding noise, and
+    its LRE -log10|s| must meet the absolute bound.
     """
     case = load_dataset(name)
     out = _succeeded(tsqr_outcome(name, rows_per_block))
-    assert out.residual_std is not None
-    if name in EXACT_FITS:
-        assert case.certified_residual_sd == 0.0  # NIST StRD: exact fit
-        assert 0.0 <= out.residual_std < EXACT_FIT_RELATIVE_SD * np.max(np.abs(case.y))
-    else:
-        floor = STATS_LRE_FLOOR_MEASURED.get(name, STATS_LRE_FLOOR)
-        assert lre(out.residual_std, case.certified_residual_sd) >= floor
+    assert out.residual_std is not None and out.residual_std >= 0.0
+    assert (case.certified_residual_sd == 0.0) == (name in EXACT_FITS)  # NIST StRD headers
+    floor = np.array(_tsqr_floors(case).residual_sd)
+    certified = np.array(case.certified_residual_sd)
+    failures = _meets("residual_std", np.array(out.residual_std), certified, floor)
+    assert not failures, failures
+
+
+def test_cholqr2_refusals_are_the_ill_conditioned_sets() -> None:
+    """The sets CholeskyQR2 must refuse are exactly those whose raw condition number
+    (numpy SVD) is above u^-1/2; the others are well below it."""
+    for name in DATASET_NAMES:
+        kappa = condition(load_dataset(name))
+        if name in CHOLQR2_MUST_REFUSE:
+            assert kappa > CHOLQR2_LIMIT, (name, kappa, CHOLQR2_MUST_REFUSE[name])
+        else:
+            assert kappa * CHOLQR2_ACCEPT_MARGIN < CHOLQR2_LIMIT, (name, kappa)
 
 
 @pytest.mark.parametrize("name", DATASET_NAMES)
-def test_cholqr2_accurate_or_refuses(
+def test_cholqr2_meets_its_floors_or_refuses_with_reason(
     name: str, tmp_path: Path, capsys: pytest.CaptureFixture[str]
 ) -> None:
-    """CholeskyQR2 on NIST StRD: exit 0 with coefficient LRE >= 4, or refuse with exit 4.
+    """CholeskyQR2 on NIST StRD: refuse (exit 4, pointing to tsqr) exactly the sets in
+    CHOLQR2_MUST_REFUSE; on every other set exit 0 and meet every floor.
 
-    It must never exit 0 with fewer than 4 correct digits. Filip and Longley are far above the
-    condition number CholeskyQR2 can handle (about 1e8, ../shared/CHECKS.md), so there the
-    refusal is required and its message must point to tsqr.
+    The floors use CholeskyQR2's columnwise backward error (bounds.cholqr2_columnwise), valid
+    because the column-equilibrated design is far inside CholeskyQR2's range.
     """
     case = load_dataset(name)
     out = run_rowfold(case, "cholqr2", "auto", tmp_path, capture=False)
     stderr_text = capsys.readouterr().err
-    assert out.status in (EXIT_OK, EXIT_RUN_FAILED), f"exit {out.status}; stderr: {stderr_text}"
     if name in CHOLQR2_MUST_REFUSE:
-        assert out.status == EXIT_RUN_FAILED, "CholeskyQR2 accepted an ill-conditioned set"
+        reason = CHOLQR2_MUST_REFUSE[name]
+        assert out.status == EXIT_RUN_FAILED, f"accepted ({reason}); stderr: {stderr_text}"
+        assert out.x is None, "a refused run wrote a result store"
         assert "tsqr" in stderr_text, f"refusal does not suggest tsqr: {stderr_text!r}"
-    if out.status == EXIT_OK:
-        assert out.x is not None
-        assert worst_lre(out.x, case.certified_estimates) >= CHOLQR2_MIN_LRE
+        return
+    assert equilibrated_condition(case) * CHOLQR2_ACCEPT_MARGIN < CHOLQR2_LIMIT
+    assert out.status == EXIT_OK, f"exit {out.status}; stderr: {stderr_text}"
+    assert out.x is not None and out.x_stderr is not None and out.residual_std is not None
+    floor = floors(case, bounds.cholqr2_columnwise(case.n_obs, case.n_params))
+    _informative(floor)
+    failures = [
+        *_meets("x", out.x, case.certified_estimates, floor.coefficients),
+        *_meets("x_stderr", out.x_stderr, case.certified_stderr, floor.stderr),
+        *_meets(
+            "residual_std",
+            np.array(out.residual_std),
+            np.array(case.certified_residual_sd),
+            np.array(floor.residual_sd),
+        ),
+    ]
+    assert not failures, failures

@@ -70,8 +70,8 @@ def power_of_two_scale(A: np.ndarray) -> np.ndarray:
 
 
 def leverage_bound(n: int, kappa: float) -> float:
-    """|h_i - h_ref_i| <= ||H - H_ref||_2 (sin-theta, bounds.projector)."""
-    return bounds.projector(n, kappa)
+    """|h_i - h_ref_i| <= ||H - H_ref||_2 (sin-theta, bounds.subspace_projector)."""
+    return bounds.subspace_projector(n, kappa)
 
 
 def standardized_bound(
@@ -216,13 +216,13 @@ def test_native_float32_report_measures_the_written_q(job_folder: Path, method: 
     Q = got["Q"].astype(np.float64)
     written = float(np.linalg.norm(np.eye(n) - Q.T @ Q))
     reported = outcome.report["orthogonality_loss"]
-    assert abs(reported - written) <= 2 * bounds.inner_products(m, n), (reported, written)
+    assert abs(reported - written) <= 2 * bounds.gram_rounding(m, n), (reported, written)
     bound = outcome.report["orthogonality_bound"]
     assert bound["value"] >= 10 * n * bounds.unit_roundoff(np.float32)
     assert bound["within"] is True and written <= bound["value"]
     # leverages from the same stored rows: float64 sums of n exact products, stored in float32
     h = np.sum(Q**2, axis=1)
-    slack = bounds.unit_roundoff(np.float32) + bounds.inner_products(n, 1)
+    slack = bounds.unit_roundoff(np.float32) + bounds.gram_rounding(n, 1)
     assert np.all(np.abs(got["leverage"] - h) <= slack * h)
 
 

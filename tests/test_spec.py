@@ -748,7 +748,7 @@ def scratch(tmp_path_factory: pytest.TempPathFactory) -> Path:
     return tmp_path_factory.mktemp("hypothesis-jobs")
 
 
-@settings(max_examples=300, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@settings(max_examples=300, suppress_health_check=[HealthCheck.too_slow])
 @given(document=documents | sections, overrides=st.lists(override_strings, max_size=3))
 def test_any_yaml_data_gives_job_or_job_error(
     scratch: Path, document: Any, overrides: list[str]
@@ -759,7 +759,7 @@ def test_any_yaml_data_gives_job_or_job_error(
     _check_job_or_job_error(path, tuple(overrides))
 
 
-@settings(max_examples=300, deadline=None, derandomize=True, database=None)
+@settings(max_examples=300)
 @given(text=st.text(max_size=80) | st.text(alphabet=YAML_ALPHABET, max_size=80))
 def test_any_text_gives_job_or_job_error(scratch: Path, text: str) -> None:
     """Arbitrary text, some of it drawn from YAML's punctuation."""

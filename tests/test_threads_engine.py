@@ -1,8 +1,8 @@
 """``cluster.scheduler: threads``: Dask's threaded scheduler inside the rowfold process.
 
-References: numpy/LAPACK (``numpy.linalg.qr``) for R and Q; the TSQR bound O(u) for Q's
-orthogonality (Demmel, Grigori, Hoemmen and Langou, SIAM J. Sci. Comput. 34, 2012) with a
-common-practice constant of 100 n u.
+References: numpy/LAPACK (``numpy.linalg.qr``) for R and Q; the bounds of tests/bounds.py:
+O(u) orthogonality and residual (TSQR: Demmel, Grigori, Hoemmen and Langou, SIAM J. Sci.
+Comput. 34, 2012; CholeskyQR2: ETNA 44, 2015) and the R-factor perturbation bound.
 """
 
 from __future__ import annotations
@@ -20,7 +20,8 @@ from rowfold import runner
 from rowfold.cluster import Progress
 from rowfold.errors import JobError
 
-from support import U, assert_thin_qr, lapack_r, prescribed, read_store, write_job
+import bounds
+from support import assert_thin_qr, lapack_r, prescribed, read_store, write_job
 
 
 @pytest.mark.parametrize("method", ["tsqr", "cholqr2"])
@@ -37,8 +38,10 @@ def test_threads_scheduler_forms_q_and_r_like_lapack(job_folder: Path, method: s
     log = io.StringIO()
     runner.run_job(runner.load_job(job_path), Progress(stream=log))
     store = read_store(job_folder / "out.h5")
-    assert_thin_qr(A, store["Q"], store["R"], 100 * 6 * U)
-    assert np.linalg.norm(store["R"] - lapack_r(A)) <= 100 * 6 * U * 1e4 * np.linalg.norm(A)
+    limit = bounds.stable_qr(6) if method == "tsqr" else bounds.cholqr2(900, 6)
+    assert_thin_qr(A, store["Q"], store["R"], limit)
+    r_error = np.linalg.norm(store["R"] - lapack_r(A)) / np.linalg.norm(A, 2)
+    assert r_error <= bounds.r_factor(6, 1e4)
     finished = re.findall(r"^(.+): (\d+)/(\d+) tasks", log.getvalue(), flags=re.M)
     assert any(done == total for _, done, total in finished), log.getvalue()
     stages = {label for label, done, total in finished if done == total}
