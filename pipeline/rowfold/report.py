@@ -153,7 +153,8 @@ th{{text-align:left;padding-right:1em}}td{{font-family:monospace}}
 </head><body>
 <h1>{title}</h1>
 <p>rowfold {html.escape(str(report.get("rowfold_version")))}; output
-<code>{html.escape(str(report.get("output")))}</code></p>
+<code>{html.escape(str(report.get("output")))}</code>; commit
+<code>{html.escape(str(report.get("commit")))}</code></p>
 <h2>Quality</h2><table>{rows}</table>
 <p>{html.escape(bound_text)}</p>
 <h2>Gates</h2><table>{gates}</table>

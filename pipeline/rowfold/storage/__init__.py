@@ -1,7 +1,8 @@
 """Storage: every file handle rowfold opens lives here.
 
 Inputs are read by row range from HDF5 or Zarr, dense (:mod:`.inputs`) or as a CSR group
-(:mod:`.csr`); results and reports are written atomically (:mod:`.results`). Nothing here
+(:mod:`.csr`); results and reports are committed together (:mod:`.results`, with the
+protocol in :mod:`.commit` and one writer per output by :mod:`.locks`). Nothing here
 knows about Dask. ``fingerprint`` and ``same_prefix`` are the format-aware ones from
 :mod:`.csr`.
 """
@@ -24,13 +25,18 @@ from rowfold.storage.inputs import (
     read_rows,
     write_arrays,
 )
+from rowfold.storage.locks import OutputBusyError
 from rowfold.storage.results import (
     ResultWriter,
     check_output_path,
+    claim_output,
     describe_path,
+    is_result,
+    open_output,
     read_result,
     read_state,
-    remove_litter,
+    recover_if_idle,
+    recover_output,
     report_paths,
     scratch_folder,
     write_text_atomic,
@@ -40,8 +46,10 @@ __all__ = [
     "ArrayInfo",
     "ArrayRef",
     "CsrInfo",
+    "OutputBusyError",
     "ResultWriter",
     "check_output_path",
+    "claim_output",
     "close_open_inputs",
     "describe_array",
     "describe_csr",
@@ -49,11 +57,14 @@ __all__ = [
     "describe_path",
     "fingerprint",
     "is_csr",
+    "is_result",
+    "open_output",
     "read_csr_rows",
     "read_result",
     "read_rows",
     "read_state",
-    "remove_litter",
+    "recover_if_idle",
+    "recover_output",
     "report_paths",
     "same_prefix",
     "scratch_folder",
