@@ -180,23 +180,33 @@ def test_signal_at_start_up_gives_one_line_and_128_plus_signal(tmp_path: Path, s
 
 @pytest.mark.parametrize(
     ("engine", "signum"),
-    [("--inline", signal.SIGTERM), ("--inline", signal.SIGINT), ("cluster", signal.SIGTERM)],
-    ids=["inline-SIGTERM", "inline-SIGINT", "cluster-SIGTERM"],
+    [
+        ("--inline", signal.SIGTERM),
+        ("--inline", signal.SIGINT),
+        ("cluster", signal.SIGTERM),
+        ("threads", signal.SIGINT),
+    ],
+    ids=["inline-SIGTERM", "inline-SIGINT", "cluster-SIGTERM", "threads-SIGINT"],
 )
 def test_signal_mid_run_cleans_up_and_keeps_the_previous_result(
     tmp_path: Path, engine: str, signum: int
 ) -> None:
     """Paused after Q rows went into the staged store: the signal removes the staging
-    area, scratch and lock, leaves the earlier result byte-identical, says one line."""
+    area, scratch and lock, leaves the earlier result byte-identical, says one line (on
+    stderr and in the --log-file)."""
     job = write_job(tmp_path, ".zarr")
     out = tmp_path / "out.zarr"
     first = start(tmp_path, "run", str(job), "--inline")
     assert finish(first)[0] == 0
     before = {name: digest(tmp_path / name) for name in ("out.zarr", "out.report.json")}
     ready = tmp_path / "writing"
-    args = ["run", str(job)] + (
-        ["--inline"] if engine == "--inline" else ["--set", "cluster.workers=1"]
-    )
+    engines = {
+        "--inline": ["--inline"],
+        "cluster": ["--set", "cluster.workers=1"],
+        "threads": ["--set", "cluster.scheduler=threads"],
+    }
+    log = tmp_path / "run.log"
+    args = ["--log-file", str(log), "run", str(job), *engines[engine]]
     proc = start(tmp_path, *args, hook="writer:rows=pause", ready=ready)
     wait_for(ready, proc)
     assert any(name.startswith(".rowfold-stage-") for name in ours(tmp_path))
@@ -207,6 +217,7 @@ def test_signal_mid_run_cleans_up_and_keeps_the_previous_result(
     assert err == [
         f"rowfold: interrupted by {name}; nothing was written, the previous result is kept"
     ]
+    assert log.read_text().splitlines()[-1].endswith(err[0]), "the log file misses the line"
     assert {n: digest(tmp_path / n) for n in before} == before
     assert [n for n in ours(tmp_path) if not n.startswith(".rowfold-checkpoints-")] == []
     consistent(out)

@@ -1,9 +1,10 @@
 """What an output may replace, and the temporary names beside it.
 
 An output equal to an input (also through a link or a hard link), inside an input store or
-holding the input, and an existing output that is not a rowfold result, are refused with
-exit 2 and one line naming the path, by ``run`` and ``check`` alike, before any data is
-read; the input stays byte-identical. Temporary names are created exclusively with random
+holding the input, an existing output that is not a rowfold result, and a file at a report
+path that is not a rowfold report, are refused with exit 2 and one line naming the path, by
+``run``, ``update`` and ``check`` alike, before any data is read; the input (or that file)
+stays byte-identical. Temporary names are created exclusively with random
 parts, so links planted at the names the earlier code predicted (``.rowfold-tmp-<pid>-...``)
 are never written through, and clean-up removes links, never what they point to.
 """
@@ -104,6 +105,20 @@ def unrelated_hdf5(folder: Path) -> tuple[Path, Path, Path]:
     return data, other, other
 
 
+def foreign_json_report(folder: Path) -> tuple[Path, Path, Path]:
+    data = make_input(folder, "obs.h5")
+    notes = folder / "fit.report.json"
+    notes.write_text('{"ridge": "levelling notes, season 3"}')
+    return data, folder / "fit.h5", notes
+
+
+def foreign_html_report(folder: Path) -> tuple[Path, Path, Path]:
+    data = make_input(folder, "obs.h5")
+    page = folder / "fit.report.html"
+    page.write_text("<html><title>Fen board minutes</title></html>")
+    return data, folder / "fit.zarr", page
+
+
 CASES: list[tuple[str, Callable[[Path], tuple[Path, Path, Path]], str]] = [
     ("output-is-the-hdf5-input", same_h5, "is the input"),
     ("output-is-the-zarr-input", same_zarr, "is the input"),
@@ -113,10 +128,12 @@ CASES: list[tuple[str, Callable[[Path], tuple[Path, Path, Path]], str]] = [
     ("input-inside-the-output", input_inside_output, "lies inside output.path"),
     ("unrelated-folder-at-a-zarr-output", unrelated_folder, "is not a rowfold result"),
     ("unrelated-hdf5-at-the-output", unrelated_hdf5, "is not a rowfold result"),
+    ("unrelated-json-at-the-report-path", foreign_json_report, "is not a rowfold report"),
+    ("unrelated-html-at-the-report-path", foreign_html_report, "is not a rowfold report"),
 ]
 
 
-@pytest.mark.parametrize("verb", ["check", "run"])
+@pytest.mark.parametrize("verb", ["check", "run", "update"])
 @pytest.mark.parametrize(("case", "build", "words"), CASES, ids=[c[0] for c in CASES])
 def test_output_that_would_destroy_something_is_refused(
     tmp_path: Path,
@@ -133,7 +150,7 @@ def test_output_that_would_destroy_something_is_refused(
     log = tmp_path / "reads.log"
     monkeypatch.setenv("ROWFOLD_READ_LOG", str(log))
     capsys.readouterr()
-    args = ["--quiet", verb, str(job)] + (["--inline"] if verb == "run" else [])
+    args = ["--quiet", verb, str(job)] + (["--inline"] if verb != "check" else [])
     status = main(args)
     err = capsys.readouterr().err.strip().splitlines()
     assert status == 2, err

@@ -267,7 +267,7 @@ def main(argv: Sequence[str] | None = None) -> int:
         try:
             testhooks.reached("startup")
             return _main(argv)
-        except interrupts.Interrupted as exc:
+        except interrupts.Interrupted as exc:  # during start-up, before the verb runs
             _error(_interrupted_line(exc))
             return exc.exit_status
         except KeyboardInterrupt:  # outside the handlers' reach (e.g. not the main thread)
@@ -300,6 +300,9 @@ def _main(argv: Sequence[str] | None) -> int:
     logging.getLogger("rowfold").addHandler(notes)
     try:
         return _dispatch(args, progress)
+    except interrupts.Interrupted as exc:  # said here too, so that --log-file records it
+        _error(_interrupted_line(exc))
+        return exc.exit_status
     finally:
         logging.getLogger("rowfold").removeHandler(notes)
         while _LOG:

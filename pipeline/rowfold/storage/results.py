@@ -31,6 +31,8 @@ from rowfold.storage.locks import output_lock
 
 TMP_PREFIX = protocol.TMP_PREFIX
 RESULT_MARK = "rowfold_version"  # the attribute every rowfold result store carries
+HTML_MARK = "<title>rowfold report"  # how every rowfold HTML report begins (report.py)
+REPORT_LIMIT = 256 * 2**20  # a larger file beside the output is not one of our reports
 
 _LOG = logging.getLogger("rowfold.storage")
 
@@ -40,7 +42,8 @@ def check_output_path(path: Path, overwrite: bool, inputs: Sequence[Path] = ()) 
 
     Refused: the output is an input (same real path or same file), lies inside an input
     store, or holds an input; its folder is missing or unwritable; it is a symbolic link;
-    it exists without ``overwrite``; or it exists but is not a rowfold result.
+    it exists without ``overwrite``; it exists but is not a rowfold result; or a file at
+    one of its report paths is not a rowfold report (the commit would replace it).
 
     Raises
     ------
@@ -54,8 +57,13 @@ def check_output_path(path: Path, overwrite: bool, inputs: Sequence[Path] = ()) 
         raise OutputError(f"{path}: output folder {parent} does not exist")
     if not os.access(parent, os.W_OK | os.X_OK):
         raise OutputError(f"{path}: output folder {parent} is not writable")
-    if not os.path.lexists(path):
-        return
+    if os.path.lexists(path):
+        _check_existing(path, overwrite)
+    _check_reports(path)
+
+
+def _check_existing(path: Path, overwrite: bool) -> None:
+    """An existing output is replaced only with ``overwrite`` and only if it is a result."""
     if path.is_symlink():
         raise OutputError(
             f"{path}: output.path is a symbolic link (to {os.readlink(path)}); rowfold would "
@@ -92,6 +100,33 @@ def _check_apart(output: Path, source: Path) -> None:
             f"{output}: the input {source} lies inside output.path; "
             "replacing the output would delete it; choose another output.path"
         )
+
+
+def _check_reports(path: Path) -> None:
+    """Reports already beside the output are replaced with it: they must be rowfold's."""
+    for report in report_paths(path):
+        if os.path.lexists(report) and not _is_report(report):
+            raise OutputError(
+                f"{path}: {report.name} exists but is not a rowfold report, and this output's "
+                "report would replace it; move it away or choose another output.path"
+            )
+
+
+def _is_report(path: Path) -> bool:
+    """Whether ``path`` is a regular file that a rowfold commit wrote (JSON or HTML report)."""
+    if path.is_symlink() or not path.is_file() or path.stat().st_size > REPORT_LIMIT:
+        return False
+    try:
+        text = path.read_text(encoding="utf-8")
+    except (OSError, UnicodeDecodeError):
+        return False
+    if path.suffix == ".html":
+        return HTML_MARK in text[:4096]
+    try:
+        report = json.loads(text)
+    except ValueError:
+        return False
+    return isinstance(report, dict) and RESULT_MARK in report
 
 
 def _same_file(a: Path, b: Path) -> bool:
@@ -197,6 +232,9 @@ def write_text_atomic(path: Path, text: str) -> None:
     except OSError as exc:
         protocol.remove_entry(tmp)
         raise OutputError(f"{path}: cannot write ({exc})") from None
+    except BaseException:  # an interrupt: leave no temporary file behind
+        protocol.remove_entry(tmp)
+        raise
 
 
 @contextmanager
@@ -246,21 +284,27 @@ class ResultWriter:
         return self._staging.commit_id
 
     def __enter__(self) -> ResultWriter:
-        self._claim.enter_context(claim_output(self.path))
         try:
-            self._staging = protocol.Staging(self.path)
-            target = self._staging.part(self.path.name)
-            if self.is_hdf5:
-                self._handle = h5py.File(target, "x")
-            else:
-                import zarr
-
-                self._handle = zarr.open_group(str(target), mode="w-")
+            self._claim.enter_context(claim_output(self.path))
+            self._open_staged()
         except OSError as exc:
             self.__exit__(None, None, None)
             raise OutputError(f"{self.path}: cannot create the result ({exc})") from None
+        except BaseException:  # e.g. an interrupt: the with-block never starts, clean up here
+            self.__exit__(None, None, None)
+            raise
         testhooks.reached("writer:staged")
         return self
+
+    def _open_staged(self) -> None:
+        self._staging = protocol.Staging(self.path)
+        target = self._staging.part(self.path.name)
+        if self.is_hdf5:
+            self._handle = h5py.File(target, "x")
+        else:
+            import zarr
+
+            self._handle = zarr.open_group(str(target), mode="w-")
 
     def __exit__(
         self,
