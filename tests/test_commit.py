@@ -296,6 +296,31 @@ def test_recovery_refuses_a_damaged_staged_part(
     assert whole(out) == "old"
 
 
+def test_a_damaged_commit_is_named_by_inspect_and_refused_by_a_run(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str], monkeypatch: pytest.MonkeyPatch
+) -> None:
+    """inspect still describes the old result and names the staging folder in a note; a
+    run exits 2 naming it and touches nothing."""
+    job = write_job(tmp_path, ".h5")
+    out = tmp_path / "out.h5"
+    assert main(["--quiet", "run", str(job), "--inline"]) == 0
+    old_id = cli_whole(out)
+    monkeypatch.setenv(HOOK, "commit:journal=raise")
+    assert main(["--quiet", "run", str(job), "--inline"]) == 4
+    monkeypatch.delenv(HOOK)
+    (stage,) = [p for p in tmp_path.iterdir() if p.name.startswith(".rowfold-stage-")]
+    (stage / "new" / "out.report.json").write_text("{")
+    capsys.readouterr()
+    assert main(["inspect", str(out)]) == 0
+    captured = capsys.readouterr()
+    assert stage.name in captured.err and "cannot be completed" in captured.err, captured.err
+    assert old_id in captured.out
+    assert main(["--quiet", "run", str(job), "--inline"]) == 2
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and stage.name in err[0], err
+    assert cli_whole(out) == old_id and (stage / "journal.json").exists()
+
+
 # ------------------------------------------------------------ through the command line
 
 

@@ -27,7 +27,7 @@ from rowfold import testhooks
 from rowfold.errors import OutputError, RowfoldError, RunError
 from rowfold.storage import commit as protocol
 from rowfold.storage.inputs import _HDF5_LOCK, HDF5_SUFFIXES
-from rowfold.storage.locks import output_lock
+from rowfold.storage.locks import OutputBusyError, output_lock
 
 TMP_PREFIX = protocol.TMP_PREFIX
 RESULT_MARK = "rowfold_version"  # the attribute every rowfold result store carries
@@ -211,7 +211,9 @@ def recover_if_idle(path: Path) -> None:
     """Recover ``path`` if an interrupted run left something and no one holds it now.
 
     For read-only verbs (``inspect``): nothing is created unless there is something to
-    recover, and a busy or unlockable output is left as it is.
+    recover. A busy output (its run's staging folder is no leftover) is left as it is; an
+    output that cannot be locked or whose interrupted commit cannot be completed is left as
+    it is too, with a note saying why, so that it can still be described.
     """
     if not protocol.leftovers(path, report_paths(path)):
         return
@@ -219,8 +221,10 @@ def recover_if_idle(path: Path) -> None:
         with output_lock(path) as fresh:
             if fresh:
                 recover_output(path)
-    except OutputError:
+    except OutputBusyError:
         return
+    except OutputError as exc:
+        _LOG.warning("%s", exc)
 
 
 def write_text_atomic(path: Path, text: str) -> None:
