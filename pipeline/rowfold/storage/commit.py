@@ -48,6 +48,7 @@ clean-up removes links themselves, never what they point to.
 
 from __future__ import annotations
 
+import contextlib
 import json
 import os
 import re
@@ -324,7 +325,7 @@ def recover(output: Path, reports: Iterable[Path]) -> list[str]:
         info = os.lstat(path)
         if stat.S_ISLNK(info.st_mode) or info.st_uid != os.geteuid():
             if stat.S_ISLNK(info.st_mode):
-                path.unlink()  # a link under one of our names: remove the link only
+                _unlink_quietly(path)  # a link under one of our names: remove the link only
             continue
         if kind == "stage":
             notes.append(_recover_stage(output, path))
@@ -336,11 +337,19 @@ def recover(output: Path, reports: Iterable[Path]) -> list[str]:
     return [note for note in notes if note]
 
 
+def _unlink_quietly(path: Path) -> None:
+    with contextlib.suppress(OSError):  # e.g. another user's link in a sticky folder
+        path.unlink()
+
+
 def _recover_stage(output: Path, folder: Path) -> str:
     journal_path = folder / JOURNAL
     if not os.path.lexists(journal_path):
         remove_entry(folder)
-        return f"{output}: removed {folder.name}, the staging folder of an unfinished commit"
+        return (
+            f"{output}: removed {folder.name}, the staging folder of an interrupted run "
+            "(it had no journal, so nothing of it was pending)"
+        )
     journal = _load_journal(output, folder)
     _verify(output, folder, journal)
     _replay(output.parent, journal)
