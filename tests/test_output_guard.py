@@ -244,3 +244,21 @@ def test_scratch_array_refuses_a_linked_folder(tmp_path: Path) -> None:
     with pytest.raises(RunError, match="link"):
         create_work_array(tmp_path / "scratch", "Q", 10, 3, np.float64, 5)
     assert list(victim.iterdir()) == []
+
+
+def test_a_link_planted_at_the_lock_file_is_refused_not_followed(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    """The lock file has a fixed name (it must, to be found): a link there is refused with
+    exit 2 naming it, and its target stays as it was."""
+    data = make_input(tmp_path, "obs.h5")
+    job = job_file(tmp_path, data, tmp_path / "out.h5")
+    victim = tmp_path / "diary.txt"
+    victim.write_text("precious diary")
+    (tmp_path / ".rowfold-lock-out.h5").symlink_to(victim)
+    capsys.readouterr()
+    assert main(["--quiet", "run", str(job), "--inline"]) == 2
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and ".rowfold-lock-out.h5 is a symbolic link" in err[0], err
+    assert victim.read_text() == "precious diary"
+    assert not (tmp_path / "out.h5").exists()
