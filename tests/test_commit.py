@@ -275,6 +275,67 @@ def recover_output_under_lock(out: Path) -> None:
         pass
 
 
+RECOVER_CHILD = textwrap.dedent(
+    """
+    import os, sys
+    from pathlib import Path
+    out, die_after = Path(sys.argv[1]), int(sys.argv[2])
+    calls = 0
+
+    def counted(real):
+        def rename(src, dst, *args, **kwargs):
+            global calls
+            real(src, dst, *args, **kwargs)
+            calls += 1
+            if calls == die_after:
+                os._exit(17)
+        return rename
+
+    os.replace, os.rename = counted(os.replace), counted(os.rename)
+    from rowfold.storage import claim_output
+    with claim_output(out):
+        pass
+    print(calls)
+    """
+)
+
+
+def test_a_recovery_killed_after_any_of_its_renames_is_completed_by_the_next(
+    out: Path,
+) -> None:
+    """Recovery replays the journal's renames; killed after its k-th one (for every k), the
+    next recovery must still complete the same commit."""
+    env = {**os.environ, HOOK: "commit:journal=exit"}
+
+    def interrupted_commit() -> None:
+        commit(out, "old", 1.0)
+        killed = subprocess.run(
+            [sys.executable, "-c", CHILD, str(out), "0", "0"], env=env, capture_output=True
+        )
+        assert killed.returncode == testhooks.EXIT_STATUS, killed.stderr
+
+    def recovering_child(die_after: int) -> subprocess.CompletedProcess[str]:
+        return subprocess.run(
+            [sys.executable, "-c", RECOVER_CHILD, str(out), str(die_after)],
+            capture_output=True,
+            text=True,
+            timeout=120,
+        )
+
+    interrupted_commit()
+    done = recovering_child(0)
+    assert done.returncode == 0, done.stderr
+    renames = int(done.stdout.split()[-1])
+    assert renames >= 3, "recovery installs the store and its two reports"
+    assert whole(out) == "new"
+    for k in range(1, renames + 1):
+        interrupted_commit()
+        assert recovering_child(k).returncode == 17
+        recover_output_under_lock(out)
+        assert whole(out) == "new", f"recovery killed after its rename {k}"
+        assert leftovers(out.parent) == [], k
+
+
 def test_recovery_refuses_a_damaged_staged_part(
     tmp_path: Path, monkeypatch: pytest.MonkeyPatch
 ) -> None:
