@@ -447,7 +447,8 @@ def test_disk_full_while_writing_keeps_the_previous_result(
     assert status == 4
     assert "No space left on device" in line and "previous result is kept" in line
     assert digest(tmp_path / "out.h5") == before
-    assert not [p.name for p in tmp_path.iterdir() if p.name.startswith(".rowfold-tmp")]
+    temporary = (".rowfold-stage-", ".rowfold-work-", ".rowfold-lock-")  # storage/commit.py
+    assert not [p.name for p in tmp_path.iterdir() if p.name.startswith(temporary)]
 
 
 def test_missing_chunks_fill_value_reads_the_fill_value(

@@ -36,7 +36,7 @@ from rowfold.storage import write_arrays
 import bounds
 from support import write_job
 
-TMP_PREFIX = ".rowfold-tmp-"
+STAGE_PREFIX = ".rowfold-stage-"  # the staging folder of a commit (storage/commit.py)
 ROWS, COLS = 100, 5
 
 
@@ -484,7 +484,8 @@ def test_killed_run_leaves_previous_result(
     assert {name: after[name] for name in before} == before
     added = {p.name for p in folder.iterdir()} - set(before) - {"input.h5"}
     assert added, "the kill came before anything was written"
-    assert all(name.startswith((TMP_PREFIX, ".rowfold-checkpoints-")) for name in added), added
+    ours = (STAGE_PREFIX, ".rowfold-work-", ".rowfold-lock-", ".rowfold-checkpoints-")
+    assert all(name.startswith(ours) for name in added), added
 
     status, _, err = run(capsys, "--quiet", "run", str(job), "--inline")
     assert status == 0, err
@@ -496,7 +497,7 @@ def _wait_for_temp(folder: Path, proc: Any, limit: float = 90.0) -> None:
     """Wait until the run has created its temporary result (or give up after ``limit`` s)."""
     deadline = time.monotonic() + limit
     while time.monotonic() < deadline and proc.poll() is None:
-        if any(p.name.startswith(TMP_PREFIX) for p in folder.iterdir()):
+        if any(p.name.startswith(STAGE_PREFIX) for p in folder.iterdir()):
             return
         time.sleep(0.05)
     raise AssertionError("no temporary result appeared while the run was going")

@@ -2,24 +2,33 @@
 
 Verbs call :mod:`rowfold.runner` and nothing deeper. Exit statuses: 0 success, 2 invalid
 job or input (nothing computed or written), 3 written but a quality gate failed or could
-not be evaluated, 4 failed while running (no earlier result replaced). Errors are one
-line on stderr; ``--debug`` adds the traceback.
+not be evaluated, 4 failed while running (no earlier result replaced), 130 / 143 stopped by
+SIGINT / SIGTERM (cleaned up, no earlier result replaced). Errors are one line on stderr;
+``--debug`` adds the traceback.
+
+The signal handlers are installed first thing in :func:`main`, before the heavy imports
+(runner, dask, h5py), so a signal during start-up is handled like one during the run.
 """
 
 from __future__ import annotations
 
 import argparse
 import json
+import logging
 import sys
 import time
 import traceback
 from collections.abc import Sequence
 from pathlib import Path
-from typing import Any, TextIO
+from typing import TYPE_CHECKING, Any, TextIO
 
-from rowfold import __version__, runner
-from rowfold.cluster import Progress
-from rowfold.errors import EXIT_INVALID, EXIT_RUN_FAILED, JobError, RowfoldError
+from rowfold import __version__, interrupts, testhooks
+
+if TYPE_CHECKING:
+    from rowfold.cluster import Progress
+    from rowfold.runner import RunOutcome
+
+EXIT_INVALID, EXIT_RUN_FAILED = 2, 4  # as in rowfold.errors (imported later, it needs numpy)
 
 
 def _parser() -> argparse.ArgumentParser:
@@ -51,6 +60,7 @@ def _parser() -> argparse.ArgumentParser:
         action="store_true",
         help="reuse the checkpoints an interrupted run of the same job left (tsqr)",
     )
+    _wait_lock_option(run)
     compare = verbs.add_parser("compare", help="run one job with several methods side by side")
     compare.add_argument("job", type=Path)
     compare.add_argument(
@@ -68,6 +78,7 @@ def _parser() -> argparse.ArgumentParser:
     update.add_argument(
         "--inline", action="store_true", help="run in this process without a Dask cluster"
     )
+    _wait_lock_option(update)
     check = verbs.add_parser("check", help="validate a job file and its inputs, compute nothing")
     check.add_argument("job", type=Path)
     check.add_argument("--set", dest="overrides", action="append", default=[], metavar="KEY=VALUE")
@@ -77,6 +88,16 @@ def _parser() -> argparse.ArgumentParser:
     inspect = verbs.add_parser("inspect", help="describe an input file or a result store")
     inspect.add_argument("path", type=Path)
     return parser
+
+
+def _wait_lock_option(parser: argparse.ArgumentParser) -> None:
+    parser.add_argument(
+        "--wait-lock",
+        type=float,
+        default=0.0,
+        metavar="SECONDS",
+        help="when another run holds the output, wait up to SECONDS for it (default: refuse)",
+    )
 
 
 _LOG: list[TextIO] = []  # the open --log-file, if any
@@ -99,7 +120,7 @@ def _error(message: str) -> None:
     _log(message)
 
 
-def _summary(outcome: runner.RunOutcome) -> str:
+def _summary(outcome: RunOutcome) -> str:
     report = outcome.report
 
     def fmt(value: Any) -> str:
@@ -137,8 +158,12 @@ def _job_files(paths: list[Path]) -> list[Path]:
 
 
 def _run_one(path: Path, args: argparse.Namespace, progress: Progress) -> int:
+    from rowfold import runner
+
     job = runner.load_job(path, tuple(args.overrides))
-    outcome = runner.run_job(job, progress, inline=args.inline, resume=args.resume)
+    outcome = runner.run_job(
+        job, progress, inline=args.inline, resume=args.resume, wait_lock=args.wait_lock
+    )
     _say(_summary(outcome))
     return outcome.status
 
@@ -159,6 +184,8 @@ def _run(args: argparse.Namespace, progress: Progress) -> int:
 
 def _guarded(action: Any, args: argparse.Namespace) -> tuple[int, str]:
     """Run one job of several; an error is printed and becomes its status."""
+    from rowfold.errors import RowfoldError
+
     try:
         return int(action()), ""
     except RowfoldError as exc:
@@ -172,6 +199,9 @@ def _guarded(action: Any, args: argparse.Namespace) -> tuple[int, str]:
 
 
 def _compare(args: argparse.Namespace, progress: Progress) -> int:
+    from rowfold import runner
+    from rowfold.errors import JobError
+
     job = runner.load_job(args.job, tuple(args.overrides))
     methods = [name.strip() for name in args.methods.split(",") if name.strip()]
     unknown = [name for name in methods if name not in runner.METHOD_NAMES]
@@ -187,9 +217,11 @@ def _compare(args: argparse.Namespace, progress: Progress) -> int:
 
 
 def _update(args: argparse.Namespace, progress: Progress) -> int:
+    from rowfold import runner
+
     job = runner.load_job(args.job, tuple(args.overrides))
     try:
-        outcome = runner.update_job(job, progress, inline=args.inline)
+        outcome = runner.update_job(job, progress, inline=args.inline, wait_lock=args.wait_lock)
     except runner.NoNewRowsError as exc:
         _say(f"{exc}; nothing to do")
         return 0
@@ -199,6 +231,8 @@ def _update(args: argparse.Namespace, progress: Progress) -> int:
 
 
 def _check(args: argparse.Namespace) -> int:
+    from rowfold import runner
+
     job = runner.load_job(args.job, tuple(args.overrides))
     summary = runner.check_job(job)
     _say(
@@ -210,6 +244,8 @@ def _check(args: argparse.Namespace) -> int:
 
 
 def _demo(args: argparse.Namespace, progress: Progress) -> int:
+    from rowfold import runner
+
     worst = 0
     for outcome in runner.run_demo(args.dir, progress, rows=args.rows):
         _say(_summary(outcome))
@@ -218,12 +254,37 @@ def _demo(args: argparse.Namespace, progress: Progress) -> int:
 
 
 def _inspect(args: argparse.Namespace) -> int:
+    from rowfold import runner
+
     _say(json.dumps(runner.inspect_path(args.path), indent=2, default=str))
     return 0
 
 
 def main(argv: Sequence[str] | None = None) -> int:
-    """Run the command line and return the exit status."""
+    """Run the command line and return the exit status.
+
+    SIGINT and SIGTERM stop the run cleanly (see :mod:`rowfold.interrupts`) and give
+    130 or 143.
+    """
+    with interrupts.handled():
+        try:
+            testhooks.reached("startup")
+            return _main(argv)
+        except interrupts.Interrupted as exc:  # during start-up, before the verb runs
+            _error(_interrupted_line(exc))
+            return exc.exit_status
+        except KeyboardInterrupt:  # outside the handlers' reach (e.g. not the main thread)
+            _error("rowfold: interrupted; no result was written, the previous one is kept")
+            return 130
+
+
+def _interrupted_line(exc: interrupts.Interrupted) -> str:
+    if exc.committed is not None:
+        return f"rowfold: interrupted by {exc.name} after committing {exc.committed}; stopped"
+    return f"rowfold: interrupted by {exc.name}; nothing was written, the previous result is kept"
+
+
+def _main(argv: Sequence[str] | None) -> int:
     parser = _parser()
     try:
         args = parser.parse_args(argv)
@@ -235,16 +296,40 @@ def main(argv: Sequence[str] | None = None) -> int:
         except OSError as exc:
             print(f"rowfold: error: --log-file {args.log_file}: {exc.strerror}", file=sys.stderr)
             return EXIT_INVALID
+    from rowfold.cluster import Progress
+
     progress = Progress(stream=None if args.quiet else sys.stderr, log=_LOG[0] if _LOG else None)
+    notes = _NoteHandler(quiet=args.quiet)
+    logging.getLogger("rowfold").addHandler(notes)
     try:
         return _dispatch(args, progress)
+    except interrupts.Interrupted as exc:  # said here too, so that --log-file records it
+        _error(_interrupted_line(exc))
+        return exc.exit_status
     finally:
+        logging.getLogger("rowfold").removeHandler(notes)
         while _LOG:
             _LOG.pop().close()
 
 
+class _NoteHandler(logging.Handler):
+    """Notes from rowfold's own loggers (e.g. a recovered commit): stderr and the log file."""
+
+    def __init__(self, quiet: bool) -> None:
+        super().__init__(logging.WARNING)
+        self.quiet = quiet
+
+    def emit(self, record: logging.LogRecord) -> None:
+        line = f"rowfold: note: {record.getMessage()}"
+        if not self.quiet:
+            print(line, file=sys.stderr, flush=True)
+        _log(line)
+
+
 def _dispatch(args: argparse.Namespace, progress: Progress) -> int:
     """Run the verb; turn errors into one line and an exit status."""
+    from rowfold.errors import RowfoldError
+
     try:
         if args.verb == "run":
             return _run(args, progress)
@@ -262,9 +347,6 @@ def _dispatch(args: argparse.Namespace, progress: Progress) -> int:
             traceback.print_exc()
         _error(f"rowfold: error: {exc}")
         return exc.exit_status
-    except KeyboardInterrupt:
-        _error("rowfold: interrupted; no result was replaced")
-        return EXIT_RUN_FAILED
     except Exception as exc:
         if args.debug:
             traceback.print_exc()

@@ -430,7 +430,8 @@ def render_html(report: dict[str, Any]) -> str:
 </head><body>
 <h1>{title}</h1>
 <p>rowfold {_esc(report.get("rowfold_version"))}; job <code>{_esc(report.get("name"))}</code>;
-result <code>{_esc(report.get("output"))}</code></p>
+result <code>{_esc(report.get("output"))}</code>; commit
+<code>{_esc(report.get("commit"))}</code></p>
 {body}
 <p class="caution">{_esc(report.get("caution") or CAUTION)}</p>
 </body></html>

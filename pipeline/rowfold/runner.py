@@ -154,7 +154,8 @@ def check_job(job: Job) -> dict[str, Any]:
     """Validate a job's inputs and output path without computing; return a summary."""
     plan = plan_job(job)
     parameter_names(job, plan)
-    storage.check_output_path(job.output.path, job.output.overwrite)
+    with storage.open_output(job.output.path, job.output.overwrite, _inputs(job)):
+        pass  # takes the lock and recovers an interrupted commit, like a run would
     return {
         "job": job.name,
         "input": str(job.input.path),
@@ -177,8 +178,17 @@ def wants_q(job: Job) -> bool:
     return wanted or gates or job.solve.refine or job.solve.residuals
 
 
+def _inputs(job: Job) -> tuple[Path]:
+    """The input files or stores an output must stay clear of."""
+    return (job.input.path,)
+
+
 def run_job(
-    job: Job, progress: Progress | None = None, inline: bool = False, resume: bool = False
+    job: Job,
+    progress: Progress | None = None,
+    inline: bool = False,
+    resume: bool = False,
+    wait_lock: float = 0.0,
 ) -> RunOutcome:
     """Run a job end to end and commit its result store and reports.
 
@@ -193,6 +203,8 @@ def run_job(
     resume : bool
         Reuse the first-pass checkpoints that an interrupted run of the same job left
         (tsqr); blocks already factored are not read again.
+    wait_lock : float
+        Seconds to wait while another run holds the output (0: refuse at once).
 
     Raises
     ------
@@ -205,14 +217,14 @@ def run_job(
     with clock.stage("plan"):
         plan = plan_job(job)
         names = parameter_names(job, plan)
-        storage.check_output_path(job.output.path, job.output.overwrite)
-    try:
-        outcome = _run_with_engine(job, plan, names, progress, inline, resume, clock, started)
-    except RowfoldError as exc:
-        if exc.exit_status == EXIT_INVALID:  # a bad input: no checkpoint is worth resuming
-            close_checkpoints(job.output.path)
-        raise
-    close_checkpoints(job.output.path)
+    with storage.open_output(job.output.path, job.output.overwrite, _inputs(job), wait_lock):
+        try:
+            outcome = _run_with_engine(job, plan, names, progress, inline, resume, clock, started)
+        except RowfoldError as exc:
+            if exc.exit_status == EXIT_INVALID:  # a bad input: no checkpoint is worth resuming
+                close_checkpoints(job.output.path)
+            raise
+        close_checkpoints(job.output.path)
     return outcome
 
 
@@ -228,7 +240,6 @@ def _run_with_engine(
 ) -> RunOutcome:
     """Start the engine and scratch folder, run, and shut them down (before cleanup)."""
     with ExitStack() as stack:
-        storage.remove_litter(job.output.path)
         workdir = stack.enter_context(storage.scratch_folder(job.output.path))
         with clock.stage("cluster_start"):
             engine = stack.enter_context(_engine(job, progress, inline))
@@ -383,6 +394,7 @@ def _commit(
     _write_store(writer, job, plan, fact, solution, stats, report, scale)
     _write_state(writer, plan, fact, state_sums, scale)
     json_path, html_path = storage.report_paths(job.output.path)
+    report = {**report, "commit": writer.commit_id}  # the store records the same id
     drawing = time.perf_counter()
     page = render_html(report)
     report["seconds"]["report"] = round(time.perf_counter() - drawing, 4)
@@ -415,7 +427,11 @@ def compare_job(
         inputs = _fingerprints(job, plan, engine)
 
         def run(method_job: Job) -> RunOutcome:
-            with storage.scratch_folder(method_job.output.path) as workdir:
+            out = method_job.output.path
+            with (
+                storage.open_output(out, True, _inputs(job)),
+                storage.scratch_folder(out) as workdir,
+            ):
                 ctx = Context(engine, wants_q(method_job), workdir)
                 return _run_on(method_job, plan, names, ctx, inputs, _Clock(), time.time())
 
@@ -425,7 +441,9 @@ def compare_job(
     return records, json_path, html_path
 
 
-def update_job(job: Job, progress: Progress | None = None, inline: bool = False) -> RunOutcome:
+def update_job(
+    job: Job, progress: Progress | None = None, inline: bool = False, wait_lock: float = 0.0
+) -> RunOutcome:
     """Fold the rows appended since the earlier result into it (see :mod:`rowfold.update`).
 
     Raises
@@ -435,6 +453,12 @@ def update_job(job: Job, progress: Progress | None = None, inline: bool = False)
         stored one, or the input no longer starts with the rows it consumed (run ``run``
         instead).
     """
+    with storage.open_output(job.output.path, True, _inputs(job), wait_lock):
+        return _update_held(job, progress, inline)
+
+
+def _update_held(job: Job, progress: Progress | None, inline: bool) -> RunOutcome:
+    """``update_job`` while it holds the output."""
     from rowfold import update
 
     out = job.output.path
@@ -830,6 +854,7 @@ def _covariance(
 def inspect_path(path: str | Path) -> dict[str, Any]:
     """Describe an input file or a result store (and its report, when there is one)."""
     target = Path(path).expanduser().resolve()
+    storage.recover_if_idle(target)  # finish an interrupted commit before describing it
     info = storage.describe_path(target)
     json_path, _ = storage.report_paths(target)
     if json_path.exists():

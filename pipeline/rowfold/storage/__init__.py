@@ -1,7 +1,8 @@
 """Storage: every file handle rowfold opens lives here.
 
 Inputs are read by row range from HDF5 or Zarr, dense (:mod:`.inputs`) or as a CSR group
-(:mod:`.csr`); results and reports are written atomically (:mod:`.results`). Nothing here
+(:mod:`.csr`); results and reports are committed together (:mod:`.results`, with the
+protocol in :mod:`.commit` and one writer per output by :mod:`.locks`). Nothing here
 knows about Dask. Row-block digests of inputs (what ``update`` and ``run --resume`` check)
 are in :mod:`.digests`, first-pass checkpoints in :mod:`.checkpoints`.
 """
@@ -33,13 +34,18 @@ from rowfold.storage.inputs import (
     read_rows,
     write_arrays,
 )
+from rowfold.storage.locks import OutputBusyError
 from rowfold.storage.results import (
     ResultWriter,
     check_output_path,
+    claim_output,
     describe_path,
+    is_result,
+    open_output,
     read_result,
     read_state,
-    remove_litter,
+    recover_if_idle,
+    recover_output,
     report_paths,
     scratch_folder,
     write_text_atomic,
@@ -49,9 +55,11 @@ __all__ = [
     "ArrayInfo",
     "ArrayRef",
     "CsrInfo",
+    "OutputBusyError",
     "ResultWriter",
     "block_digests",
     "check_output_path",
+    "claim_output",
     "close_open_inputs",
     "describe_array",
     "describe_csr",
@@ -62,14 +70,17 @@ __all__ = [
     "input_layout",
     "input_record",
     "is_csr",
+    "is_result",
     "layout_change",
+    "open_output",
     "public_record",
     "read_csr_rows",
     "read_names",
     "read_result",
     "read_rows",
     "read_state",
-    "remove_litter",
+    "recover_if_idle",
+    "recover_output",
     "report_paths",
     "scratch_folder",
     "stored_records",

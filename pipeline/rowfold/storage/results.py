@@ -1,20 +1,21 @@
-"""Result stores (HDF5 file or Zarr group) and reports, written atomically.
+"""Result stores (HDF5 file or Zarr group) and reports, committed together and atomically.
 
-Everything is written under a temporary sibling whose name starts with ``.rowfold-tmp-``;
-only a complete result is renamed into place. An HDF5 file is swapped with one
-``os.replace``. A Zarr store is a folder, which cannot be replaced in one step: the old
-folder is first renamed aside (``.rowfold-old-``), the new one renamed in, and the old one
-removed. Leftovers of a killed run are removed by the next run to the same output.
+A run writes its store and reports under a staging folder created exclusively beside the
+output and makes them the output in one commit (:mod:`rowfold.storage.commit` describes the
+protocol: a journal written at the commit point, renames, recovery that finishes or rolls
+back an interrupted commit). Each output is held by one process at a time
+(:mod:`rowfold.storage.locks`); :func:`open_output` takes that lock, recovers what an
+interrupted run left, and checks the output path: never the input itself, inside it or
+around it, and only ever replacing what is recognisably a rowfold result.
 """
 
 from __future__ import annotations
 
 import json
+import logging
 import os
-import re
-import shutil
-from collections.abc import Iterator
-from contextlib import contextmanager
+from collections.abc import Iterator, Sequence
+from contextlib import ExitStack, contextmanager
 from pathlib import Path
 from types import TracebackType
 from typing import Any
@@ -22,31 +23,134 @@ from typing import Any
 import h5py
 import numpy as np
 
+from rowfold import testhooks
 from rowfold.errors import OutputError, RowfoldError, RunError
+from rowfold.storage import commit as protocol
 from rowfold.storage.inputs import _HDF5_LOCK, HDF5_SUFFIXES
+from rowfold.storage.locks import OutputBusyError, output_lock
 
-TMP_PREFIX = ".rowfold-tmp-"
-OLD_PREFIX = ".rowfold-old-"
+TMP_PREFIX = protocol.TMP_PREFIX
+RESULT_MARK = "rowfold_version"  # the attribute every rowfold result store carries
+HTML_MARK = "<title>rowfold report"  # how every rowfold HTML report begins (report.py)
+REPORT_LIMIT = 256 * 2**20  # a larger file beside the output is not one of our reports
+
+_LOG = logging.getLogger("rowfold.storage")
 
 
-def check_output_path(path: Path, overwrite: bool) -> None:
-    """Refuse an output that exists without ``overwrite``, or whose folder is unwritable.
+def check_output_path(path: Path, overwrite: bool, inputs: Sequence[Path] = ()) -> None:
+    """Refuse an output that would destroy an input or something that is not a result.
+
+    Refused: the output is an input (same real path or same file), lies inside an input
+    store, or holds an input; its folder is missing or unwritable; it is a symbolic link;
+    it exists without ``overwrite``; it exists but is not a rowfold result; or a file at
+    one of its report paths is not a rowfold report (the commit would replace it).
 
     Raises
     ------
     OutputError
         Naming the path and what to do.
     """
-    if path.exists() and not overwrite:
-        raise OutputError(
-            f"{path}: output exists; set output.overwrite: true to replace it, "
-            "or choose another output.path"
-        )
+    for source in inputs:
+        _check_apart(path, Path(source))
     parent = path.parent
     if not parent.is_dir():
         raise OutputError(f"{path}: output folder {parent} does not exist")
     if not os.access(parent, os.W_OK | os.X_OK):
         raise OutputError(f"{path}: output folder {parent} is not writable")
+    if os.path.lexists(path):
+        _check_existing(path, overwrite)
+    _check_reports(path)
+
+
+def _check_existing(path: Path, overwrite: bool) -> None:
+    """An existing output is replaced only with ``overwrite`` and only if it is a result."""
+    if path.is_symlink():
+        raise OutputError(
+            f"{path}: output.path is a symbolic link (to {os.readlink(path)}); rowfold would "
+            "replace the link, not what it points to; set output.path to the real location"
+        )
+    if not overwrite:
+        raise OutputError(
+            f"{path}: output exists; set output.overwrite: true to replace it, "
+            "or choose another output.path"
+        )
+    if not is_result(path):
+        raise OutputError(
+            f"{path}: exists but is not a rowfold result (no '{RESULT_MARK}' attribute); "
+            "rowfold replaces only its own results; move it away or choose another output.path"
+        )
+
+
+def _check_apart(output: Path, source: Path) -> None:
+    """The output must be neither the input, nor inside it, nor around it."""
+    out_real = Path(os.path.realpath(output))
+    src_real = Path(os.path.realpath(source))
+    if out_real == src_real or _same_file(out_real, src_real):
+        raise OutputError(
+            f"{output}: output.path is the input {source}; writing the result would replace "
+            "the input; choose another output.path"
+        )
+    if src_real in out_real.parents or any(_same_file(p, src_real) for p in out_real.parents):
+        raise OutputError(
+            f"{output}: output.path lies inside the input store {source}; "
+            "choose an output outside it"
+        )
+    if out_real in src_real.parents or any(_same_file(p, out_real) for p in src_real.parents):
+        raise OutputError(
+            f"{output}: the input {source} lies inside output.path; "
+            "replacing the output would delete it; choose another output.path"
+        )
+
+
+def _check_reports(path: Path) -> None:
+    """Reports already beside the output are replaced with it: they must be rowfold's."""
+    for report in report_paths(path):
+        if os.path.lexists(report) and not _is_report(report):
+            raise OutputError(
+                f"{path}: {report.name} exists but is not a rowfold report, and this output's "
+                "report would replace it; move it away or choose another output.path"
+            )
+
+
+def _is_report(path: Path) -> bool:
+    """Whether ``path`` is a regular file that a rowfold commit wrote (JSON or HTML report)."""
+    if path.is_symlink() or not path.is_file() or path.stat().st_size > REPORT_LIMIT:
+        return False
+    try:
+        text = path.read_text(encoding="utf-8")
+    except (OSError, UnicodeDecodeError):
+        return False
+    if path.suffix == ".html":
+        return HTML_MARK in text[:4096]
+    try:
+        report = json.loads(text)
+    except ValueError:
+        return False
+    return isinstance(report, dict) and RESULT_MARK in report
+
+
+def _same_file(a: Path, b: Path) -> bool:
+    try:
+        return os.path.samefile(a, b)
+    except OSError:
+        return False
+
+
+def is_result(path: Path) -> bool:
+    """Whether ``path`` is a rowfold result store (it carries :data:`RESULT_MARK`)."""
+    try:
+        if path.suffix.lower() in HDF5_SUFFIXES:
+            if not path.is_file():
+                return False
+            with _HDF5_LOCK, h5py.File(path, "r") as handle:
+                return RESULT_MARK in handle.attrs
+        if not path.is_dir():
+            return False
+        import zarr
+
+        return RESULT_MARK in zarr.open_group(str(path), mode="r").attrs
+    except Exception:  # unreadable, another format, ...: not ours
+        return False
 
 
 def report_paths(path: Path) -> tuple[Path, Path]:
@@ -55,54 +159,99 @@ def report_paths(path: Path) -> tuple[Path, Path]:
     return stem.with_name(stem.name + ".report.json"), stem.with_name(stem.name + ".report.html")
 
 
-def _litter_pattern(path: Path) -> re.Pattern[str]:
-    """Names of the temporary siblings a run writes for ``path`` (store, scratch, reports)."""
-    json_path, html_path = report_paths(path)
-    names = "|".join(re.escape(p.name) for p in (path, json_path, html_path))
-    return re.compile(rf"^\.rowfold-(?:tmp|old)-(\d+)-(?:work-)?(?:{names})$")
+@contextmanager
+def open_output(
+    path: Path, overwrite: bool, inputs: Sequence[Path] = (), wait: float = 0.0
+) -> Iterator[None]:
+    """Hold the output for a run: lock it, recover an interrupted commit, check the path.
+
+    The path is checked before the lock too, so a refused output creates nothing.
+
+    Parameters
+    ----------
+    path : Path
+        The result store.
+    overwrite : bool
+        ``output.overwrite``.
+    inputs : sequence of Path
+        The job's input files or stores (the output must stay clear of them).
+    wait : float
+        Seconds to wait for another run holding the output (``--wait-lock``).
+
+    Raises
+    ------
+    OutputError
+        A refused path, or the output held by another process
+        (:class:`~rowfold.storage.locks.OutputBusyError`).
+    """
+    check_output_path(path, overwrite, inputs)
+    with claim_output(path, wait):
+        check_output_path(path, overwrite, inputs)  # recovery may have changed what is there
+        yield
+
+
+@contextmanager
+def claim_output(path: Path, wait: float = 0.0) -> Iterator[None]:
+    """Hold the output's lock; on taking it, recover what interrupted runs left."""
+    with output_lock(path, wait) as fresh:
+        if fresh:
+            recover_output(path)
+        yield
+
+
+def recover_output(path: Path) -> list[str]:
+    """Finish or roll back an interrupted commit of ``path``; call while holding its lock."""
+    notes = protocol.recover(path, report_paths(path))
+    for note in notes:
+        _LOG.warning(note)
+    return notes
+
+
+def recover_if_idle(path: Path) -> None:
+    """Recover ``path`` if an interrupted run left something and no one holds it now.
+
+    For read-only verbs (``inspect``): nothing is created unless there is something to
+    recover. A busy output (its run's staging folder is no leftover) is left as it is; an
+    output that cannot be locked or whose interrupted commit cannot be completed is left as
+    it is too, with a note saying why, so that it can still be described.
+    """
+    if not protocol.leftovers(path, report_paths(path)):
+        return
+    try:
+        with output_lock(path) as fresh:
+            if fresh:
+                recover_output(path)
+    except OutputBusyError:
+        return
+    except OutputError as exc:
+        _LOG.warning("%s", exc)
 
 
 def write_text_atomic(path: Path, text: str) -> None:
-    """Write a text file under a temporary name and rename it into place."""
-    tmp = path.with_name(f"{TMP_PREFIX}{os.getpid()}-{path.name}")
+    """Write a text file under a fresh exclusive temporary name and rename it into place."""
+    tmp = protocol.exclusive_name(path.parent, TMP_PREFIX, path.name)
     try:
-        tmp.write_text(text, encoding="utf-8")
+        protocol.write_new_file(tmp, text.encode("utf-8"))
         os.replace(tmp, path)
     except OSError as exc:
-        tmp.unlink(missing_ok=True)
+        protocol.remove_entry(tmp)
         raise OutputError(f"{path}: cannot write ({exc})") from None
-
-
-def remove_litter(path: Path) -> None:
-    """Remove temporary siblings that an earlier, killed run left beside ``path``.
-
-    Only names a run for this very output writes are touched, and never those of this
-    process (same pid).
-    """
-    pattern = _litter_pattern(path)
-    if not path.parent.is_dir():
-        return
-    for stale in path.parent.iterdir():
-        match = pattern.match(stale.name)
-        if match and int(match.group(1)) != os.getpid():
-            _remove(stale)
+    except BaseException:  # an interrupt: leave no temporary file behind
+        protocol.remove_entry(tmp)
+        raise
 
 
 @contextmanager
 def scratch_folder(path: Path) -> Iterator[Path]:
-    """Yield a scratch folder path beside ``path`` (not created); remove it afterwards."""
-    folder = path.with_name(f"{TMP_PREFIX}{os.getpid()}-work-{path.name}")
+    """Create a fresh scratch folder beside ``path`` (exclusively); remove it afterwards."""
+    try:
+        folder = protocol.exclusive_dir(path.parent, protocol.WORK_PREFIX, path.name)
+    except OSError as exc:
+        raise OutputError(f"{path}: cannot create a scratch folder ({exc.strerror})") from None
     try:
         yield folder
     finally:
-        _remove(folder)
-
-
-def _remove(path: Path) -> None:
-    if path.is_dir() and not path.is_symlink():
-        shutil.rmtree(path, ignore_errors=True)
-    else:
-        path.unlink(missing_ok=True)
+        protocol.remove_entry(folder)
 
 
 def _jsonable(value: Any) -> Any:
@@ -113,10 +262,10 @@ def _jsonable(value: Any) -> Any:
 
 
 class ResultWriter:
-    """Write one result store under a temporary name and commit it into place.
+    """Write one result store (and its reports) in staging and commit them together.
 
-    Use as a context manager; leaving the block without :meth:`commit` discards the
-    temporary store.
+    Use as a context manager; leaving the block without :meth:`commit` discards the staged
+    store. Entering takes the output's lock unless this process already holds it.
 
     Parameters
     ----------
@@ -126,23 +275,40 @@ class ResultWriter:
 
     def __init__(self, path: Path) -> None:
         self.path = path
-        self.tmp = path.with_name(f"{TMP_PREFIX}{os.getpid()}-{path.name}")
         self.is_hdf5 = path.suffix.lower() in HDF5_SUFFIXES
         self._handle: Any = None
-        self._files: list[tuple[Path, Path]] = []
+        self._staging: protocol.Staging | None = None
+        self._files: list[str] = []
+        self._claim = ExitStack()
+
+    @property
+    def commit_id(self) -> str:
+        """The id this commit records in the store (``rowfold_commit``) and the report."""
+        assert self._staging is not None, "the writer is not open"
+        return self._staging.commit_id
 
     def __enter__(self) -> ResultWriter:
-        remove_litter(self.path)
         try:
-            if self.is_hdf5:
-                self._handle = h5py.File(self.tmp, "w")
-            else:
-                import zarr
-
-                self._handle = zarr.open_group(str(self.tmp), mode="w")
+            self._claim.enter_context(claim_output(self.path))
+            self._open_staged()
         except OSError as exc:
+            self.__exit__(None, None, None)
             raise OutputError(f"{self.path}: cannot create the result ({exc})") from None
+        except BaseException:  # e.g. an interrupt: the with-block never starts, clean up here
+            self.__exit__(None, None, None)
+            raise
+        testhooks.reached("writer:staged")
         return self
+
+    def _open_staged(self) -> None:
+        self._staging = protocol.Staging(self.path)
+        target = self._staging.part(self.path.name)
+        if self.is_hdf5:
+            self._handle = h5py.File(target, "x")
+        else:
+            import zarr
+
+            self._handle = zarr.open_group(str(target), mode="w-")
 
     def __exit__(
         self,
@@ -153,11 +319,12 @@ class ResultWriter:
         if self._handle is not None:
             try:
                 self._close()
-            except OSError:  # the temporary store is discarded anyway
+            except OSError:  # the staged store is discarded anyway
                 self._handle = None
-            _remove(self.tmp)
-        for tmp, _ in self._files:
-            tmp.unlink(missing_ok=True)
+        if self._staging is not None:
+            self._staging.discard()  # kept when past the commit point: recovery completes it
+            self._staging = None
+        self._claim.close()
         if isinstance(exc, OSError) and not isinstance(exc, RowfoldError):
             reason = exc.strerror or str(exc)
             raise RunError(
@@ -186,6 +353,7 @@ class ResultWriter:
                 self._handle[name][start : start + block.shape[0]] = block
         else:
             self._handle[name][start : start + block.shape[0]] = block
+        testhooks.reached("writer:rows")
 
     def read_rows(self, name: str, start: int, stop: int) -> np.ndarray:
         """Read back rows of an array written earlier in this store."""
@@ -214,26 +382,39 @@ class ResultWriter:
             self._handle.attrs.update(clean)
 
     def add_file(self, final: Path, text: str) -> None:
-        """Stage a text file (a report) to be swapped in together with the store."""
-        tmp = final.with_name(f"{TMP_PREFIX}{os.getpid()}-{final.name}")
-        tmp.write_text(text, encoding="utf-8")
-        self._files.append((tmp, final))
+        """Stage a text file (a report, beside the store) to be committed with the store."""
+        if final.parent != self.path.parent:
+            raise ValueError(f"{final}: a committed file must lie beside {self.path}")
+        assert self._staging is not None, "the writer is not open"
+        self._staging.write_text(final.name, text)
+        self._files.append(final.name)
 
     def commit(self) -> None:
-        """Close the temporary store and rename it, and the staged files, into place."""
+        """Record the commit id, close the staged store, and commit it with the staged files.
+
+        Raises
+        ------
+        RunError
+            When the file system fails; before the commit point the previous result is
+            kept, after it the next run (or ``check``/``inspect``) completes the commit.
+        """
+        assert self._staging is not None, "the writer is not open"
+        self.set_attrs({"rowfold_commit": self.commit_id})
         self._close()
+        staging = self._staging
         try:
-            if self.is_hdf5 or not self.path.exists():
-                os.replace(self.tmp, self.path)
-            else:
-                aside = self.path.with_name(f"{OLD_PREFIX}{os.getpid()}-{self.path.name}")
-                os.replace(self.path, aside)
-                os.replace(self.tmp, self.path)
-                _remove(aside)
-            for tmp, final in self._files:
-                os.replace(tmp, final)
+            staging.commit([self.path.name, *self._files])
         except OSError as exc:
-            raise RunError(f"{self.path}: cannot commit the result ({exc})") from None
+            if staging.past_commit_point:
+                raise RunError(
+                    f"{self.path}: the commit was interrupted ({exc}); {staging.folder.name} "
+                    "records it and the next run, update, check or inspect of this output "
+                    "completes it"
+                ) from None
+            raise RunError(
+                f"{self.path}: cannot commit the result ({exc}); the previous result is kept"
+            ) from None
+        self._staging = None
         self._files = []
 
 

@@ -9,6 +9,8 @@ and reading goes through :func:`rowfold.storage.inputs.read_rows`.
 
 from __future__ import annotations
 
+import os
+import stat
 from pathlib import Path
 from typing import Any
 
@@ -28,7 +30,8 @@ def create_work_array(
     Parameters
     ----------
     folder : str or Path
-        The scratch folder; created when missing.
+        The scratch folder (the runner creates it exclusively); created when missing, in
+        an existing parent. A link there is refused, never followed.
     name : str
         Array name inside the scratch group.
     rows, cols : int
@@ -50,9 +53,9 @@ def create_work_array(
     """
     import zarr
 
-    target = Path(folder).resolve() / SCRATCH_GROUP
+    target = Path(os.path.abspath(folder)) / SCRATCH_GROUP
     try:
-        target.parent.mkdir(parents=True, exist_ok=True)
+        _own_folder(target.parent)
         group = zarr.open_group(str(target), mode="a", zarr_format=3)
         group.create_array(
             name,
@@ -70,6 +73,15 @@ def create_work_array(
         ) from None
     # zero-filled by design: a chunk no task has written yet reads as zeros
     return ArrayRef(str(target), name, missing_chunks="fill_value")
+
+
+def _own_folder(folder: Path) -> None:
+    """Create ``folder`` (not its parents) or accept it if it is a real folder, not a link."""
+    try:
+        os.mkdir(folder)
+    except FileExistsError:
+        if not stat.S_ISDIR(os.lstat(folder).st_mode):
+            raise NotADirectoryError(f"{folder} is a link or a file, not a folder") from None
 
 
 def write_rows(ref: ArrayRef, start: int, block: np.ndarray, col_start: int = 0) -> None:
