@@ -372,3 +372,22 @@ def gram_rounding(m: int, n: int, dtype: Any = np.float64) -> float:
     """
     mu = m * unit_roundoff(dtype)
     return n * mu / (1 - mu)
+
+
+def redundancy_total(rows: int, n: int, rank: int, dof: int, block_rows: int) -> float:
+    """|sum r_i - f| for redundancy numbers r_i = 1 - h_i whose leverages come from a
+    backward-stable Q (f = m' - rank; in exact arithmetic the sum is f, the trace of the
+    projector I - H).
+
+    ``sum h_i = trace(U_r^H Q^H Q U_r) = r + <E, U_r U_r^H>_F`` with ``E = Q^H Q - I``, so
+    ``|sum h_i - r| <= sqrt(r) ||E||_F`` (Cauchy-Schwarz for the Frobenius inner product),
+    and ``||E||_F`` is the loss of orthogonality, :func:`stable_qr` (Higham 2002, Thm 19.4;
+    Demmel, Grigori, Hoemmen, Langou 2012). The rounding of the leverages (n (n + 2) u over
+    ``||Q||_F^2 = n``), of ``1 - h_i`` (u per row) and of the sums (pairwise within a block,
+    compensated across: Higham 2002, sections 4.2 and 4.3) takes ``SAFETY`` (common
+    practice).
+    """
+    u = unit_roundoff()
+    summing = (np.log2(max(block_rows, 2)) + 32) * max(dof, 1)
+    rounding = SAFETY * u * (n * (n + 2) + rows + summing)
+    return float(np.sqrt(rank) * stable_qr(n) + rounding)

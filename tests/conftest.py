@@ -33,6 +33,7 @@ NUMERICAL_MODULES = {
     "test_gram_schmidt.py",
     "test_kernels.py",
     "test_least_squares.py",
+    "test_model_tests.py",
     "test_nist_strd.py",
     "test_numerics.py",
     "test_operations.py",

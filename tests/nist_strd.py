@@ -49,6 +49,7 @@ _PARAM_LINE = re.compile(rf"^\s*B(\d+)\s+({_NUMBER})\s+({_NUMBER})\s*$")
 _RESIDUAL_SD = re.compile(rf"^\s*Standard Deviation\s+({_NUMBER})\s*$", re.M)
 _OBSERVATIONS = re.compile(r"^\s*(\d+)\s+Observations\s*$", re.M)
 _MODEL = re.compile(r"^\s*y\s*=\s*(.+?)\s*$", re.M)
+_RESIDUAL_ANOVA = re.compile(rf"^Residual\s+(\d+)\s+({_NUMBER})\s+({_NUMBER})\s*$", re.M)
 _POWER_TERM = re.compile(r"B(\d+)\*\(x\*\*(\d+)\)")
 _PREDICTOR_TERM = re.compile(r"B(\d+)\*x(\d+)")
 
@@ -369,3 +370,30 @@ def refined_floors(case: NistCase, residual_roundoff: float) -> NDArray[np.float
     relative = (limiting.coefficients + data.coefficients) / np.abs(x)
     final = bounds.SAFETY * bounds.unit_roundoff()
     return np.array([bounds.lre_floor(float(v + final)) for v in relative])
+
+
+@dataclass(frozen=True, slots=True)
+class ResidualAnova:
+    """The "Residual" row of a dataset's certified analysis-of-variance table."""
+
+    degrees_of_freedom: int
+    """m - p."""
+    sum_of_squares: float
+    """The certified residual sum of squares r^T r."""
+    mean_square: float
+    """r^T r / (m - p): the a posteriori variance factor with unit weights."""
+
+
+def residual_anova(name: str) -> ResidualAnova:
+    """Read the certified residual degrees of freedom, sum of squares and mean square.
+
+    Raises
+    ------
+    ValueError
+        If the file has no ``Residual <dof> <SS> <MS>`` line.
+    """
+    text = dataset_path(name).read_text(encoding="ascii")
+    found = _RESIDUAL_ANOVA.search(text)
+    if found is None:
+        raise ValueError(f"{name}: no 'Residual' line in the analysis-of-variance table")
+    return ResidualAnova(int(found.group(1)), float(found.group(2)), float(found.group(3)))

@@ -307,6 +307,16 @@ def infinite_flag_above(folder: Path) -> Path:
     return with_keys(make(folder, A, b), solve={"residuals": True, "flag_above": float("inf")})
 
 
+def significance_one(folder: Path) -> Path:
+    A, b = good()
+    return with_keys(make(folder, A, b), solve={"alpha": 1.0})
+
+
+def sigma0_zero(folder: Path) -> Path:
+    A, b = good()
+    return with_keys(make(folder, A, b), solve={"residuals": True, "sigma0": 0})
+
+
 def rank_tolerance_ten(folder: Path) -> Path:
     A, b = good()
     return with_keys(make(folder, A, b), solve={"rank_tolerance": 10})
@@ -389,6 +399,8 @@ CATALOGUE: list[tuple[str, Callable[[Path], Path], tuple[str, ...]]] = [
     ("sketch-rows-below-n", sketch_below_columns, ("job.yaml line", "method.sketch_rows", "4")),
     ("flag-above-inf", infinite_flag_above, ("job.yaml line", "solve.flag_above", "finite")),
     ("rank-tolerance-10", rank_tolerance_ten, ("job.yaml line", "solve.rank_tolerance")),
+    ("alpha-one", significance_one, ("job.yaml line", "solve.alpha", "between 0 and 1")),
+    ("sigma0-zero", sigma0_zero, ("job.yaml line", "solve.sigma0", "positive")),
     ("address-not-a-url", address_not_a_url, ("job.yaml line", "cluster.address", "not a url")),
     ("workers-100000", absurd_worker_count, ("job.yaml line", "cluster.workers", "cores")),
     # parameter names: one distinct text per input column

@@ -310,9 +310,13 @@ def test_update_keeps_its_gates_and_a_gate_it_cannot_evaluate_gives_exit_3(
         "held": None,
         "evaluated": False,
         "reason": gate["reason"],
+        "rule": "value <= limit",
     }
     assert "Q not formed by update" in gate["reason"]
     assert report["gates"]["gram"]["held"] is True and report["gates"]["gram"]["evaluated"]
+    # the global test of the model needs only e^T e, which update folds in
+    assert report["model_test"]["evaluated"] is True
+    assert report["model_test"]["degrees_of_freedom"] == 650 - 4
     assert report["gates_status"] == "not evaluated" and report["exit_status"] == 3
     page = (tmp_path / "result.report.html").read_text(encoding="utf-8")
     assert "NOT EVALUATED" in page and "Q not formed by update" in page

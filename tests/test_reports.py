@@ -135,6 +135,7 @@ def test_report_shows_the_answer_first_with_names_datum_refinement_and_inputs(
         "Refinement",
         "Inputs",
         "Quality",
+        "Model test",
         "Residual screening",
         "Conditioning",
         "Run",
@@ -370,8 +371,35 @@ def test_report_without_rhs_says_there_is_no_solution(job_folder: Path) -> None:
     report: dict[str, Any] = json.loads((job_folder / "out.report.json").read_text())
     assert report["parameters"] is None
     page, _ = parse(job_folder / "out.report.html")
-    assert "no solution x" in " ".join(page.text)
+    text = " ".join(page.text)
+    assert "no solution x" in text
     assert page.captions == ["Spectrum of R"]
+    assert report["model_test"]["evaluated"] is False
+    assert "Not evaluated: no right-hand side" in text
+
+
+def test_model_test_section_shows_the_global_test_redundancy_and_observation_test(
+    job_folder: Path,
+) -> None:
+    """A 100-sigma blunder with sigma0 the noise level: the page's Model test section gives
+    the global test with its chi-square bounds and FAILED (so the model_test gate fails,
+    exit 3, shown as p-value >= alpha), the redundancy total against f, and the
+    per-observation test with its critical value and the blunder's row first."""
+    job, _, _ = levelling_job(job_folder, outlier=100.0)
+    args = ["--quiet", "run", str(job), "--inline", "--set", "solve.sigma0=0.01"]
+    assert main([*args, "--set", "gates.model_test=true"]) == 3
+    report = json.loads((job_folder / "out.report.json").read_text())
+    page, _ = parse(job_folder / "out.report.html")
+    text = " ".join(page.text)
+    model, test = report["model_test"], report["observation_test"]
+    assert "Model test" in page.headings
+    assert model["passed"] is False and "Global test of the model" in text
+    assert f"{model['lower']:.4g} to {model['upper']:.4g}" in text
+    assert f"{report['redundancy']['degrees_of_freedom']:,}" in text
+    assert f"critical value {test['critical_value']:.4g}" in text
+    assert test["worst"][0]["row"] == 700 and "exceeds" in text
+    gate = report["gates"]["model_test"]
+    assert gate["held"] is False and f"\u2265 {gate['limit']:.4g}" in text
 
 
 @pytest.mark.parametrize("suffix", [".h5", ".zarr"])

@@ -96,6 +96,7 @@ def test_extremes_keep_the_highest_leverages_across_blocks() -> None:
 
 
 def test_rows_of_zero_weight_are_not_informative() -> None:
-    r = np.array([[0.0], [0.0], [0.3]])
-    h = np.array([0.0, 0.2, 0.0])
-    assert list(summaries.informative(r, h)) == [False, True, True]
+    """A row of weight 0 has redundancy NaN (model_tests.redundancy_numbers); an
+    uncontrolled row (redundancy 0) and a row of zero residual still count."""
+    redundancy = np.array([np.nan, 0.0, 0.8, 1.0])
+    assert list(summaries.informative(redundancy)) == [False, True, True, True]

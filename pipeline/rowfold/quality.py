@@ -15,16 +15,16 @@ from typing import Any
 
 import numpy as np
 
-from rowfold import __version__, summaries
+from rowfold import __version__, model_tests, summaries
 from rowfold.blocks import BlockPlan, load_block, load_weights
-from rowfold.errors import EXIT_GATE_FAILED, EXIT_OK
+from rowfold.errors import EXIT_GATE_FAILED, EXIT_OK, RunError
 from rowfold.kernels import metrics, norms
 from rowfold.methods._graph import sum_tree, task
 from rowfold.methods.base import Engine, Factorization
 from rowfold.solve import Solution, Statistics, numerical_rank, rank_tolerance
 from rowfold.spec import GateSpec, Job
 
-ROW_OUTPUTS = ("Q", "residuals", "leverage")
+ROW_OUTPUTS = ("Q", "residuals", "leverage", "redundancy")
 
 
 def verify_block(
@@ -40,9 +40,10 @@ def verify_block(
     """Read one block; return its verification sums and the per-row outputs asked for.
 
     Per-row outputs: ``Q`` (the block of Q), ``residuals`` (weighted residuals
-    ``sqrt(w) (b - A x)``) and ``leverage`` (the diagonal of the hat matrix: ``h_i =
+    ``sqrt(w) (b - A x)``), ``leverage`` (the diagonal of the hat matrix: ``h_i =
     ||q_i||^2`` at full rank, ``||q_i U_r||^2`` with the rank-r range basis ``basis``
-    below it, so the leverages sum to the rank).
+    below it, so the leverages sum to the rank) and ``redundancy`` (``1 - h_i`` in
+    float64, NaN for rows of weight 0: :func:`rowfold.model_tests.redundancy_numbers`).
 
     Q is rounded to the plan's dtype (the dtype it is stored in) before anything is
     measured, so the figures and leverages are those of the Q that is written.
@@ -54,15 +55,20 @@ def verify_block(
         block, rhs = load_block(plan, index, "C")
     q = None if q_kernel is None else stored_q(q_kernel(block, recipe), plan)
     sums = metrics.block_sums(block, rhs, x, R, q)
-    if plan.weights is not None:
-        sums["rows_used"] = int(np.count_nonzero(load_weights(plan, index)))
+    weights = None if plan.weights is None else load_weights(plan, index)
+    if weights is not None:
+        sums["rows_used"] = int(np.count_nonzero(weights))
     rows: dict[str, np.ndarray] = {}
     if "Q" in outputs and q is not None:
         rows["Q"] = q
     if "residuals" in outputs and rhs is not None and x is not None:
         rows["residuals"] = rhs - block @ x
-    if "leverage" in outputs and q is not None:
-        rows["leverage"] = leverages(q, basis)
+    if q is not None and ("leverage" in outputs or "redundancy" in outputs):
+        h = leverages(q, basis)
+        if "leverage" in outputs:
+            rows["leverage"] = h
+        if "redundancy" in outputs:
+            rows["redundancy"] = model_tests.redundancy_numbers(h, weights)
     return sums, rows
 
 
@@ -138,7 +144,7 @@ def verify(
     basis : ndarray (n, r) or None
         The solution's range basis ``U_r`` below full rank (leverages ``||q_i U_r||^2``).
     """
-    needs_q = form_q or "Q" in outputs or "leverage" in outputs
+    needs_q = form_q or any(name in outputs for name in ("Q", "leverage", "redundancy"))
     q_kernel = fact.q_kernel if needs_q else None
     if q_kernel is None and x is None:
         return Verification({}, False)
@@ -217,10 +223,16 @@ class Screening:
     histogram : dict
         ``edges`` and ``counts`` over +-HISTOGRAM_LIMIT; ``below`` and ``above`` count the
         values beyond, ``largest`` is the largest |value|, ``not_finite`` counts values that
-        are not finite (leverage 1), ``rows_left_out`` the rows of zero weight.
+        are not finite (uncontrolled rows: redundancy 0), ``rows_left_out`` the rows of zero
+        weight.
     plots_data : dict
         Bounded-size summaries for the plots (:mod:`rowfold.summaries`): ``row_bins``,
         ``sample`` and ``high_leverage``.
+    redundancy : dict
+        The redundancy numbers' total against the degrees of freedom, and their extremes.
+    observation_test : dict
+        The per-observation test: which, its critical value, how many rows exceed it and
+        the worst rows (or ``evaluated`` false and the reason).
     """
 
     flag_above: float
@@ -228,88 +240,213 @@ class Screening:
     worst: list[dict[str, Any]]
     histogram: dict[str, Any]
     plots_data: dict[str, Any]
+    redundancy: dict[str, Any]
+    observation_test: dict[str, Any]
 
 
-def standardized(residuals: np.ndarray, leverage: np.ndarray, sigma: np.ndarray) -> np.ndarray:
-    """``r_i / (sigma sqrt(1 - h_i))``; NaN where ``1 - h_i`` is not positive."""
-    spare = 1.0 - leverage
-    safe = np.where(spare > 0, spare, np.nan)
-    return residuals / (np.sqrt(safe)[:, None] * np.where(sigma > 0, sigma, np.nan)[None, :])
+@dataclass(frozen=True)
+class ScreeningSetup:
+    """What the screening pass needs besides the stored rows.
+
+    Attributes
+    ----------
+    flag_above : float
+        The fixed screening limit on |standardized residual| (``solve.flag_above``).
+    s0 : ndarray (k,)
+        The a posteriori s0 per rhs (``residual_std``).
+    dof : int
+        f, the degrees of freedom.
+    resolution : float
+        Redundancy numbers at or below this are uncontrolled
+        (:func:`rowfold.model_tests.redundancy_resolution`).
+    test : ObservationTest or None
+        The per-observation test; None when it cannot be evaluated.
+    redundancy_bound : float
+        How far the redundancy numbers' total may lie from f
+        (:func:`rowfold.model_tests.redundancy_total_bound`); beyond it the run fails.
+    not_tested : dict or None
+        The report's ``observation_test`` when ``test`` is None (with the reason).
+    """
+
+    flag_above: float
+    s0: np.ndarray
+    dof: int
+    resolution: float
+    test: model_tests.ObservationTest | None
+    redundancy_bound: float
+    not_tested: dict[str, Any] | None = None
+
+
+def screening_setup(
+    job: Job, plan: BlockPlan, solution: Solution, stats: Statistics, sums: metrics.Sums
+) -> ScreeningSetup:
+    """The critical value, resolution and bound of the screening pass, from the solution
+    and the verification sums (the measured ``Q^H Q``)."""
+    dof = stats.degrees_of_freedom
+    resolution = model_tests.redundancy_resolution(
+        plan.cols, solution.scaled_condition(), np.dtype(plan.dtype)
+    )
+    given = job.solve
+    test: model_tests.ObservationTest | str
+    if np.dtype(plan.dtype).kind == "c":
+        test = "complex data: the per-observation tests here assume real normal errors"
+    else:
+        test = model_tests.observation_test(
+            given.observation_test,
+            given.alpha_observation,
+            dof,
+            given.sigma0,
+            stats.residual_std,
+            resolution,
+        )
+    loo = metrics.orthogonality_loss(sums["qhq"]) if "qhq" in sums else math.inf
+    bound = model_tests.redundancy_total_bound(
+        plan.rows, plan.cols, solution.rank, dof, loo, plan.per_block
+    )
+    s0 = np.asarray(stats.residual_std, dtype=float)
+    if isinstance(test, str):
+        missing = model_tests.unavailable(given.alpha_observation, given.sigma0, test)
+        missing["test"] = given.observation_test
+        return ScreeningSetup(given.flag_above, s0, dof, resolution, None, bound, missing)
+    return ScreeningSetup(given.flag_above, s0, dof, resolution, test, bound)
+
+
+StoreRows = Callable[[str, int, np.ndarray], None]
 
 
 def screen_residuals(
     read: Callable[[str, int, int], np.ndarray],
-    write: Callable[[int, np.ndarray], None],
+    write: StoreRows,
     plan: BlockPlan,
-    sigma: np.ndarray,
-    flag_above: float,
+    setup: ScreeningSetup,
 ) -> Screening:
-    """Compute standardized residuals block by block from stored residuals and leverages.
+    """Standardized and studentized residuals, the redundancy numbers' total and the
+    per-observation test, block by block from the stored residuals, leverages and
+    redundancy numbers.
 
-    ``read(name, start, stop)`` reads rows of a stored array; ``write(start, rows)``
-    stores the standardized residuals. Memory holds one block at a time, and the summaries
-    for the plots have a fixed size (:mod:`rowfold.summaries`), whatever the rows.
+    ``read(name, start, stop)`` reads rows of a stored array; ``write(name, start, rows)``
+    stores ``standardized_residuals`` (``e_i / (s0 sqrt(r_i))``, Pope's tau) and
+    ``studentized_residuals`` (externally studentized). Memory holds one block at a time,
+    and the summaries have a fixed size (:mod:`rowfold.summaries`), whatever the rows.
+
+    Raises
+    ------
+    RunError
+        When the redundancy numbers do not sum to the degrees of freedom within
+        ``setup.redundancy_bound``: the leverages cannot be trusted (nothing is written).
     """
-    flagged = np.zeros(plan.rhs_cols, dtype=int)
-    edges = np.linspace(-HISTOGRAM_LIMIT, HISTOGRAM_LIMIT, 49)
-    counts = np.zeros(edges.size - 1, dtype=int)
-    tails = {"below": 0, "above": 0, "not_finite": 0, "rows_left_out": 0}
-    largest = 0.0
-    bins = summaries.RowBins(plan.rows, plan.rhs_cols)
-    sample = summaries.Reservoir()
-    leverage_top = summaries.Extremes()
-    worst: list[tuple[float, int, int, float, float]] = []
+    tally = model_tests.ObservationTally(plan.rhs_cols, setup.resolution, setup.test)
+    plots = _PlotTally(plan)
     for start, stop in plan.bounds:
-        r = read("residuals", start, stop).reshape(stop - start, plan.rhs_cols)
+        e = read("residuals", start, stop).reshape(stop - start, plan.rhs_cols)
         h = read("leverage", start, stop)
-        z = standardized(r, h, sigma)
-        write(start, z)
+        redundancy = read("redundancy", start, stop)
+        tau = model_tests.standardized(e, redundancy, setup.s0, setup.resolution)
+        studentized = model_tests.externally_studentized(tau, setup.dof)
+        write("standardized_residuals", start, tau)
+        write("studentized_residuals", start, studentized)
+        tally.add(start, e, redundancy, tau, studentized)
+        plots.add(start, e, h, redundancy, tau, setup.flag_above)
+    _check_redundancy_total(tally.redundancy_total, setup.dof, setup.redundancy_bound)
+    observation = tally.test_report(plan.rhs_1d) if setup.test else setup.not_tested
+    return plots.screening(
+        setup.flag_above,
+        tally.redundancy_report(setup.dof, setup.redundancy_bound),
+        observation or {},
+    )
+
+
+def _check_redundancy_total(total: float, dof: int, bound: float) -> None:
+    """Refuse redundancy numbers whose total is not f: the leverages would be wrong."""
+    if not abs(total - dof) <= bound:
+        raise RunError(
+            f"internal check failed: the redundancy numbers sum to {total!r}, not to the "
+            f"{dof} degrees of freedom (allowed difference {bound:.3g}); the leverages "
+            "cannot be trusted, nothing was written; please report this"
+        )
+
+
+class _PlotTally:
+    """The fixed-size screening summaries: flag counts, the worst rows by |standardized
+    residual|, the histogram and the plot summaries (:mod:`rowfold.summaries`)."""
+
+    def __init__(self, plan: BlockPlan) -> None:
+        self.plan = plan
+        self.flagged = np.zeros(plan.rhs_cols, dtype=int)
+        self.edges = np.linspace(-HISTOGRAM_LIMIT, HISTOGRAM_LIMIT, 49)
+        self.counts = np.zeros(self.edges.size - 1, dtype=int)
+        self.tails = {"below": 0, "above": 0, "not_finite": 0, "rows_left_out": 0}
+        self.largest = 0.0
+        self.bins = summaries.RowBins(plan.rows, plan.rhs_cols)
+        self.sample = summaries.Reservoir()
+        self.leverage_top = summaries.Extremes()
+        self.worst: list[tuple[float, int, int, float, float]] = []
+
+    def add(
+        self,
+        start: int,
+        r: np.ndarray,
+        h: np.ndarray,
+        redundancy: np.ndarray,
+        z: np.ndarray,
+        flag_above: float,
+    ) -> None:
+        """Add one block: residuals, leverages, redundancy numbers, standardized values."""
         size = np.abs(z)
-        flagged += np.sum(size > flag_above, axis=0)
-        used = summaries.informative(r, h)
-        tails["rows_left_out"] += int(np.count_nonzero(~used))
+        self.flagged += np.sum(size > flag_above, axis=0)
+        used = summaries.informative(redundancy)
+        self.tails["rows_left_out"] += int(np.count_nonzero(~used))
         shown = np.where(used[:, None], np.real(z), np.nan)
         finite = shown[np.isfinite(shown)]
-        tails["not_finite"] += int(np.count_nonzero(used)) * plan.rhs_cols - finite.size
-        tails["below"] += int(np.count_nonzero(finite < edges[0]))
-        tails["above"] += int(np.count_nonzero(finite > edges[-1]))
-        largest = max(largest, float(np.max(np.abs(finite), initial=0.0)))
-        counts += np.histogram(finite, bins=edges)[0]
-        bins.add(start, shown)
-        rows = np.arange(start, stop)[used]
-        sample.offer(rows, shown[used], h[used])
-        leverage_top.offer(rows, shown[used], h[used])
+        cols = self.plan.rhs_cols
+        self.tails["not_finite"] += int(np.count_nonzero(used)) * cols - finite.size
+        self.tails["below"] += int(np.count_nonzero(finite < self.edges[0]))
+        self.tails["above"] += int(np.count_nonzero(finite > self.edges[-1]))
+        self.largest = max(self.largest, float(np.max(np.abs(finite), initial=0.0)))
+        self.counts += np.histogram(finite, bins=self.edges)[0]
+        self.bins.add(start, shown)
+        rows = np.arange(start, start + r.shape[0])[used]
+        self.sample.offer(rows, shown[used], h[used])
+        self.leverage_top.offer(rows, shown[used], h[used])
         top = np.argsort(np.nan_to_num(size, nan=-1.0), axis=None)[::-1][:WORST_ROWS]
         for flat in top:
-            row, col = divmod(int(flat), plan.rhs_cols)
+            row, col = divmod(int(flat), cols)
             if np.isfinite(size[row, col]):
-                worst.append((float(size[row, col]), start + row, col, r[row, col], h[row]))
-        worst = sorted(worst, reverse=True)[:WORST_ROWS]
-    return Screening(
-        flag_above,
-        [int(v) for v in flagged],
-        [
+                self.worst.append((float(size[row, col]), start + row, col, r[row, col], h[row]))
+        self.worst = sorted(self.worst, reverse=True)[:WORST_ROWS]
+
+    def screening(
+        self, flag_above: float, redundancy: dict[str, Any], observation: dict[str, Any]
+    ) -> Screening:
+        """The finished summaries."""
+        rhs_1d = self.plan.rhs_1d
+        return Screening(
+            flag_above,
+            [int(v) for v in self.flagged],
+            [
+                {
+                    "row": row,
+                    "rhs": col,
+                    "residual": float(np.real(res)),
+                    "leverage": float(lev),
+                    "standardized": value,
+                }
+                for value, row, col, res, lev in self.worst
+            ],
             {
-                "row": row,
-                "rhs": col,
-                "residual": float(np.real(res)),
-                "leverage": float(lev),
-                "standardized": value,
-            }
-            for value, row, col, res, lev in worst
-        ],
-        {
-            "edges": [float(e) for e in edges],
-            "counts": [int(c) for c in counts],
-            **tails,
-            "largest": largest,
-        },
-        {
-            "row_bins": bins.as_dict(plan.rhs_1d),
-            "sample": sample.as_dict(plan.rhs_1d),
-            "high_leverage": leverage_top.as_list(plan.rhs_1d),
-        },
-    )
+                "edges": [float(e) for e in self.edges],
+                "counts": [int(c) for c in self.counts],
+                **self.tails,
+                "largest": self.largest,
+            },
+            {
+                "row_bins": self.bins.as_dict(rhs_1d),
+                "sample": self.sample.as_dict(rhs_1d),
+                "high_leverage": self.leverage_top.as_list(rhs_1d),
+            },
+            redundancy,
+            observation,
+        )
 
 
 # Published loss-of-orthogonality bounds, as (formula, source); see CHECKS.md. "10 n u"
@@ -373,6 +510,7 @@ class GateResult:
     held: bool | None
     evaluated: bool = True
     reason: str | None = None
+    rule: str = "value <= limit"
 
     def as_dict(self) -> dict[str, Any]:
         """The report's form of the gate."""
@@ -382,7 +520,13 @@ class GateResult:
             "held": self.held,
             "evaluated": self.evaluated,
             "reason": self.reason,
+            "rule": self.rule,
         }
+
+
+# The model_test gate: its value is the smallest p-value over the right-hand sides, its
+# limit solve.alpha; it holds when every rhs passes the two-sided test.
+MODEL_TEST_RULE = "value >= limit: p-value of the two-sided chi-square test of the model"
 
 
 GATE_FIGURES = {
@@ -393,7 +537,11 @@ GATE_FIGURES = {
 
 
 def check_gates(
-    gates: GateSpec, figures: dict[str, Any], unmeasured: dict[str, str] | None = None
+    gates: GateSpec,
+    figures: dict[str, Any],
+    unmeasured: dict[str, str] | None = None,
+    model: model_tests.ModelTest | str | None = None,
+    alpha: float = 0.05,
 ) -> dict[str, GateResult]:
     """Compare report figures with the job's gates.
 
@@ -405,6 +553,10 @@ def check_gates(
         The measured figures (see :data:`GATE_FIGURES`); None where not measured.
     unmeasured : dict, optional
         Why a figure was not measured, by figure name (e.g. Q was not formed).
+    model : ModelTest or str, optional
+        The global test of the model for ``gates.model_test``, or why it was not evaluated.
+    alpha : float
+        Its significance level (``solve.alpha``), the gate's limit.
 
     Returns
     -------
@@ -425,7 +577,20 @@ def check_gates(
             continue
         held = bool(np.isfinite(value)) and value <= limit
         results[name] = GateResult(limit=limit, value=value, held=held)
+    if gates.model_test:
+        results["model_test"] = model_test_gate(model, alpha)
     return results
+
+
+def model_test_gate(model: model_tests.ModelTest | str | None, alpha: float) -> GateResult:
+    """``gates.model_test``: held when the global test passes for every rhs; not evaluated
+    (exit 3 all the same) when it could not be computed."""
+    if not isinstance(model, model_tests.ModelTest):
+        reason = model or "the global test of the model was not computed"
+        return GateResult(alpha, None, None, False, reason, MODEL_TEST_RULE)
+    p_value = float(np.min(model.p_value))
+    held = bool(np.all(model.passed))
+    return GateResult(alpha, p_value, held, rule=MODEL_TEST_RULE)
 
 
 def gates_status(gates: dict[str, dict[str, Any]]) -> str:
@@ -545,8 +710,10 @@ def assemble_report(
             f"A^H A {problem} in float64 at this scaling of A, so gram_residual is not "
             "measured; solve.scale_columns: true brings the columns to norm about 1"
         )
+    model = _global_test(job, plan, solution, stats)
+    report.update(_model_figures(job, plan, model))
     reasons = _unmeasured_reasons(formed_q, figures["factorization_residual"], unmeasured)
-    gates = check_gates(job.gates, figures, reasons)
+    gates = check_gates(job.gates, figures, reasons, model, job.solve.alpha)
     report["gates"] = {name: g.as_dict() for name, g in gates.items()}
     report["gates_status"] = gates_status(report["gates"])
     report["exit_status"] = EXIT_OK if report["gates_status"] == "held" else EXIT_GATE_FAILED
@@ -623,4 +790,29 @@ def _solution_figures(
         "solution_residual_norm": _per_rhs(plan, stats.residual_norm),
         "residual_std": _per_rhs(plan, stats.residual_std),
         "normal_equations_residual": ne,
+    }
+
+
+def _global_test(
+    job: Job, plan: BlockPlan, solution: Solution | None, stats: Statistics | None
+) -> model_tests.ModelTest | str:
+    """The global chi-square test of the model, or why it cannot be evaluated."""
+    dof = stats.degrees_of_freedom if stats is not None else 0
+    complex_data = np.dtype(plan.dtype).kind == "c"
+    reason = model_tests.global_test_unavailable(stats is not None, dof, complex_data)
+    if reason is not None or stats is None:
+        return reason or "no solution"
+    return model_tests.global_test(stats.residual_norm, dof, job.solve.sigma0, job.solve.alpha)
+
+
+def _model_figures(job: Job, plan: BlockPlan, model: model_tests.ModelTest | str) -> dict[str, Any]:
+    """The report's ``variance_factor`` (s0^2, a posteriori) and ``model_test``."""
+    if isinstance(model, str):
+        return {
+            "variance_factor": None,
+            "model_test": model_tests.unavailable(job.solve.alpha, job.solve.sigma0, model),
+        }
+    return {
+        "variance_factor": _per_rhs(plan, model.variance_factor),
+        "model_test": model.as_dict(plan.rhs_1d),
     }

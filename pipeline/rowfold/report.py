@@ -2,9 +2,10 @@
 
 The figures themselves are assembled by :func:`rowfold.quality.assemble_report`. The page
 shows the answer first (the parameters with their standard errors, the datum, the
-refinement, the inputs), then the quality figures and gates, then the residual screening
-and the plots (:mod:`rowfold.plots`, drawn with matplotlib, imported only here and only
-when a page is rendered).
+refinement, the inputs), then the quality figures and gates, the model test (the global
+test, the redundancy numbers, the per-observation test), then the residual screening and
+the plots (:mod:`rowfold.plots`, drawn with matplotlib, imported only here and only when a
+page is rendered).
 """
 
 from __future__ import annotations
@@ -127,9 +128,24 @@ def _answer(report: dict[str, Any]) -> str:
         f"{f' and {rhs} right-hand sides' if rhs > 1 else ''}; numerical rank "
         f"{report.get('rank')} of {report.get('cols')} estimated columns; residual standard "
         f"deviation {sigma} {_num(report.get('residual_std'))} with "
-        f"{_num(report.get('degrees_of_freedom'))} degrees of freedom.</p>"
+        f"{_num(report.get('degrees_of_freedom'))} degrees of freedom."
+        f"{_model_verdict(report.get('model_test') or {})}</p>"
     )
     return head + summary + _datum(report) + _parameter_table(table, rhs)
+
+
+def _model_verdict(model: dict[str, Any]) -> str:
+    """One sentence on the global test of the model, for the answer's summary."""
+    if not model.get("evaluated"):
+        return ""
+    passed = model.get("passed")
+    verdicts = passed if isinstance(passed, list) else [passed]
+    outcome = "passed" if all(verdicts) else "<b>FAILED</b>"
+    return (
+        f" Global test of the model (variance factor against sigma0 = "
+        f"{_num(model.get('sigma0'))}, alpha {_num(model.get('alpha'))}, two-sided): "
+        f"{outcome}; see Model test."
+    )
 
 
 def _datum(report: dict[str, Any]) -> str:
@@ -281,14 +297,117 @@ def _gates(report: dict[str, Any]) -> str:
             result = f"<b>NOT EVALUATED</b>: {_esc(gate.get('reason') or '')}"
         else:
             result = "held" if gate["held"] else "<b>FAILED</b>"
+        relation = "&ge;" if str(gate.get("rule", "")).startswith("value >=") else "&le;"
         rows.append(
             f"<tr><th>{_esc(name)}</th><td class='num'>{_num(gate['value'])}</td>"
-            f"<td class='num'>&le; {_num(gate['limit'])}</td><td>{result}</td></tr>"
+            f"<td class='num'>{relation} {_num(gate['limit'])}</td><td>{result}</td></tr>"
         )
     return (
         "<table><tr><th>gate</th><th>measured</th><th>limit</th><th>result</th></tr>"
         f"{''.join(rows)}</table><p class='note'>A gate that held gives exit status 0; one "
-        "that failed or could not be evaluated gives 3.</p>"
+        "that failed or could not be evaluated gives 3. The model_test gate compares the "
+        "smallest p-value of the global test with solve.alpha.</p>"
+    )
+
+
+def _model_test(report: dict[str, Any]) -> str:
+    head = "<h2 id='model-test'>Model test</h2>"
+    return head + _global_test(report) + _redundancy(report) + _observation_test(report)
+
+
+def _global_test(report: dict[str, Any]) -> str:
+    model = report.get("model_test") or {}
+    if not model.get("evaluated"):
+        reason = model.get("reason") or "not computed"
+        return f"<h3>Global test</h3><p>Not evaluated: {_esc(reason)}.</p>"
+    passed = model.get("passed")
+    verdicts = passed if isinstance(passed, list) else [passed]
+    result = ", ".join("passed" if v else "<b>FAILED</b>" for v in verdicts)
+    facts = [
+        (
+            "a priori sigma0 (solve.sigma0), variance factor",
+            _pair(model, "sigma0", "a_priori_variance_factor"),
+        ),
+        ("a posteriori s0, variance factor s0^2", _pair(model, "s0", "variance_factor")),
+        ("s0^2 / sigma0^2", _num(model.get("ratio"))),
+        ("degrees of freedom f", _num(model.get("degrees_of_freedom"))),
+        ("statistic T = f s0^2 / sigma0^2", _num(model.get("statistic"))),
+        (
+            f"chi-square({model.get('degrees_of_freedom')}) bounds at alpha "
+            f"{_num(model.get('alpha'))}, two-sided",
+            f"{_num(model.get('lower'))} to {_num(model.get('upper'))}",
+        ),
+        ("p-value (two-sided)", _num(model.get("p_value"))),
+        ("result", result),
+    ]
+    rows = "".join(f"<tr><th>{_esc(k)}</th><td class='num'>{v}</td></tr>" for k, v in facts)
+    return (
+        f"<h3>Global test</h3><table>{rows}</table><p class='note'>The weights are taken as "
+        "sigma0^2 / sigma_i^2. The test is "
+        f"{_esc(model.get('why_two_sided'))}. Failing it is a statistical finding, not a "
+        "numerical failure: it changes the exit status only with gates.model_test. "
+        f"Source: {_esc(model.get('source'))}.</p>"
+    )
+
+
+def _pair(model: dict[str, Any], first: str, second: str) -> str:
+    return f"{_num(model.get(first))}; {_num(model.get(second))}"
+
+
+def _redundancy(report: dict[str, Any]) -> str:
+    info = report.get("redundancy")
+    head = "<h3>Redundancy numbers</h3>"
+    if not info:
+        return head + (
+            "<p>Not computed (<code>solve.residuals: true</code> writes the redundancy "
+            "numbers r_i = 1 - h_i and tests every observation; <code>update</code> does "
+            "not, it reads no old rows).</p>"
+        )
+    facts = [
+        ("sum of r_i over the observations", _num(info.get("total"), 12)),
+        ("degrees of freedom f", _num(info.get("degrees_of_freedom"))),
+        (
+            "difference (allowed by rounding)",
+            f"{_num(info.get('difference'))} ({_num(info.get('bound'))})",
+        ),
+        ("observations (rows of positive weight)", _num(info.get("observations"))),
+        ("mean r_i, smallest r_i", _pair(info, "mean", "smallest")),
+        (
+            f"uncontrolled (r_i at most {_num(info.get('resolution'), 2)}, not tested)",
+            _num(info.get("uncontrolled")),
+        ),
+        ("rows of weight 0 (redundancy NaN)", _num(info.get("zero_weight_rows"))),
+    ]
+    rows = "".join(f"<tr><th>{_esc(k)}</th><td class='num'>{v}</td></tr>" for k, v in facts)
+    return head + f"<table>{rows}</table>"
+
+
+def _observation_test(report: dict[str, Any]) -> str:
+    test = report.get("observation_test")
+    head = "<h3>Per-observation test</h3>"
+    if not test:
+        return head + "<p>Not computed (it needs <code>solve.residuals: true</code>).</p>"
+    if not test.get("evaluated"):
+        return head + f"<p>Not evaluated: {_esc(test.get('reason'))}.</p>"
+    worst = "".join(
+        f"<tr><td class='num'>{w['row']:,}</td><td class='num'>{w['rhs']}</td>"
+        f"<td class='num'>{_num(w['residual'])}</td><td class='num'>{_num(w['redundancy'])}</td>"
+        f"<td class='num'>{_num(w['statistic'])}</td><td class='num'>{_num(w['studentized'])}</td>"
+        f"<td>{'<b>exceeds</b>' if w['exceeds'] else ''}</td></tr>"
+        for w in test.get("worst", [])
+    )
+    return head + (
+        f"<p>{_esc(test.get('name'))} (solve.observation_test: {_esc(test.get('test'))}): "
+        f"{_esc(test.get('statistic'))}, {_esc(test.get('distribution'))}; critical value "
+        f"{_num(test.get('critical_value'))} at alpha {_num(test.get('alpha'))} per "
+        f"observation. {_num(test.get('exceeding'))} of {_num(test.get('tested'))} "
+        f"observations exceed it (about {_num(test.get('expected_false_alarms'), 3)} would by "
+        "chance alone if the model were right). The rows of largest |statistic|:</p>"
+        "<div class='scroll'><table><tr><th>row</th><th>rhs</th><th>residual (weighted)</th>"
+        "<th>redundancy r_i</th><th>statistic</th><th>studentized (leave-one-out)</th>"
+        f"<th></th></tr>{worst}</table></div><p class='note'>The leave-one-out residual "
+        "uses the s0 of the adjustment without the row, so one gross error does not shrink "
+        f"its own statistic. Source: {_esc(test.get('source'))}.</p>"
     )
 
 
@@ -419,6 +538,7 @@ def render_html(report: dict[str, Any]) -> str:
             _refinement(report) + _figure(drawn, "refinement"),
             _inputs(report),
             _quality(report),
+            _model_test(report),
             _screening(report) + _figure(drawn, "screening"),
             "<h2 id='conditioning'>Conditioning</h2>" + _figure(drawn, "conditioning"),
             _run(report),

@@ -350,9 +350,10 @@ def _run_on(
             used = int(check.sums.get("rows_used", plan.rows))
             norms = check.sums["res_norm"].value
             stats = statistics(solution, check.sums["res2"], used, norms)
-        if stats is not None and job.solve.residuals:
+        if solution is not None and stats is not None and job.solve.residuals:
             with clock.stage("screen"):
-                extra["residual_screening"], extra["plots_data"] = _screen(writer, plan, stats, job)
+                setup = quality.screening_setup(job, plan, solution, stats, check.sums)
+                extra.update(_screen(writer, plan, setup))
         if scale is not None:
             extra["column_scaling"] = _scaling_figures(fact.R, scale)
         extra.update(_answer(plan, solution, stats, scale, names))
@@ -591,7 +592,7 @@ def _row_outputs(job: Job, plan: BlockPlan) -> tuple[str, ...]:
     if job.output.q:
         names.append("Q")
     if job.solve.residuals and plan.rhs is not None:
-        names += ["residuals", "leverage"]
+        names += ["residuals", "leverage", "redundancy"]
     return tuple(names)
 
 
@@ -606,9 +607,11 @@ def _row_sink(
         "Q": (plan.rows, plan.cols),
         "residuals": (plan.rows, plan.rhs_cols),
         "leverage": (plan.rows,),
+        "redundancy": (plan.rows,),
     }
+    kinds = {"leverage": real, "redundancy": np.dtype(np.float64)}
     for name in outputs:
-        writer.create(name, shapes[name], real if name == "leverage" else dtype, chunk)
+        writer.create(name, shapes[name], kinds.get(name, dtype), chunk)
 
     def sink(start: int, rows: dict[str, np.ndarray]) -> None:
         for name, block in rows.items():
@@ -618,26 +621,31 @@ def _row_sink(
 
 
 def _screen(
-    writer: storage.ResultWriter, plan: BlockPlan, stats: Statistics, job: Job
-) -> tuple[dict[str, Any], dict[str, Any]]:
-    """Standardized residuals into the store; the report's screening summary and the
-    bounded-size summaries its plots are drawn from."""
+    writer: storage.ResultWriter, plan: BlockPlan, setup: quality.ScreeningSetup
+) -> dict[str, Any]:
+    """Standardized and studentized residuals into the store; the report's screening
+    summary, the bounded-size summaries its plots are drawn from, the redundancy numbers'
+    total and the per-observation test."""
     chunk = plan.per_block
-    writer.create("standardized_residuals", (plan.rows, plan.rhs_cols), np.float64, chunk)
+    for name in ("standardized_residuals", "studentized_residuals"):
+        writer.create(name, (plan.rows, plan.rhs_cols), np.float64, chunk)
 
-    def write(start: int, rows: np.ndarray) -> None:
-        writer.write_rows("standardized_residuals", start, np.real(rows))
+    def write(name: str, start: int, rows: np.ndarray) -> None:
+        writer.write_rows(name, start, np.real(rows))
 
-    screening = quality.screen_residuals(
-        writer.read_rows, write, plan, stats.residual_std, job.solve.flag_above
-    )
+    screening = quality.screen_residuals(writer.read_rows, write, plan, setup)
     summary = {
         "flag_above": screening.flag_above,
         "flagged": screening.flagged[0] if plan.rhs_1d else screening.flagged,
         "worst": screening.worst,
         "histogram": screening.histogram,
     }
-    return summary, screening.plots_data
+    return {
+        "residual_screening": summary,
+        "plots_data": screening.plots_data,
+        "redundancy": screening.redundancy,
+        "observation_test": screening.observation_test,
+    }
 
 
 def _scaling_figures(R_scaled: np.ndarray, scale: np.ndarray) -> dict[str, Any]:

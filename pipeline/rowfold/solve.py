@@ -45,6 +45,9 @@ class Solution:
     range_basis : ndarray (n, r) or None
         Below full rank, ``U_r``: Q U_r is an orthonormal basis of the rank-r column space
         of A, whose squared row norms are the leverages. None at full rank (then Q itself).
+    scaled_singular_values : ndarray (n,) or None
+        The singular values of the column-equilibrated ``R D^{-1}`` that decided the rank
+        (``sigma_1 / sigma_r`` is the condition that bounds the error of the leverages).
     """
 
     x: np.ndarray
@@ -53,6 +56,16 @@ class Solution:
     deficient_columns: list[int]
     inverse_rows: np.ndarray
     range_basis: np.ndarray | None = None
+    scaled_singular_values: np.ndarray | None = None
+
+    def scaled_condition(self) -> float:
+        """``sigma_1 / sigma_r`` of ``R D^{-1}`` (inf at rank 0, NaN when not recorded)."""
+        sigma = self.scaled_singular_values
+        if sigma is None:
+            return float("nan")
+        if self.rank == 0:
+            return float("inf")
+        return float(sigma[0] / sigma[self.rank - 1])
 
 
 def rank_tolerance(n: int, dtype: np.dtype, given: float | None) -> float:
@@ -122,13 +135,13 @@ def solve(R: np.ndarray, qhb: np.ndarray, given_tolerance: float | None = None) 
     if decision.rank == n:
         x = solve_triangular(R, qhb, lower=False, check_finite=False)
         inverse = solve_triangular(R, np.eye(n, dtype=R.dtype), lower=False, check_finite=False)
-        return Solution(x, n, tol, [], inverse)
+        return Solution(x, n, tol, [], inverse, None, decision.sigma)
     r = decision.rank
     unscale = (1.0 / decision.scale).astype(R.real.dtype)[:, None]
     inverse = unscale * (decision.vh[:r].conj().T / decision.sigma[:r])
     x = inverse @ (decision.u[:, :r].conj().T @ qhb)
     deficient = decision.deficient_columns() if r else list(range(n))
-    return Solution(x, r, tol, deficient, inverse, decision.u[:, :r])
+    return Solution(x, r, tol, deficient, inverse, decision.u[:, :r], decision.sigma)
 
 
 @dataclass(frozen=True)

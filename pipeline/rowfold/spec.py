@@ -36,6 +36,8 @@ CORES_OVERCOMMIT = 4
 # cluster.dashboard: true serves Dask's dashboard here (a free port on the loopback only).
 LOOPBACK_DASHBOARD = "127.0.0.1:0"
 VERIFY_MODES = ("all", "sample")
+# solve.observation_test: the per-observation test on the residuals (see rowfold.model_tests)
+OBSERVATION_TESTS = ("estimated", "known_sigma0")
 
 # Which method takes which option (every method takes ``precision``).
 METHOD_OPTIONS: dict[str, tuple[str, ...]] = {
@@ -165,9 +167,22 @@ class SolveSpec:
     residuals : bool
         Write the residuals, leverages and standardized residuals, and screen them.
     flag_above : float
-        Standardized residuals larger than this in magnitude are flagged.
+        Standardized residuals larger than this in magnitude are flagged (a fixed screening
+        limit for the plots; the statistical test is ``observation_test``).
     scale_columns : bool
         Equilibrate the columns of A to unit norm before factoring (results unscaled).
+    sigma0 : float
+        A priori standard deviation of unit weight: the weights are taken as
+        ``w_i = sigma0^2 / sigma_i^2`` (so ``w_i = 1 / sigma_i^2`` when sigma0 is 1), and
+        without weights every row has standard deviation sigma0.
+    alpha : float
+        Significance level of the global (chi-square) test of the model, in (0, 1).
+    alpha_observation : float
+        Significance level of the per-observation test, in (0, 1); 0.001 by default
+        (common practice in survey networks).
+    observation_test : str
+        ``"estimated"``: Pope's tau test on ``e_i / (s0 sqrt(r_i))`` with the a posteriori
+        s0; ``"known_sigma0"``: Baarda's w-test on ``e_i / (sigma0 sqrt(r_i))``.
     """
 
     refine: bool = False
@@ -177,6 +192,10 @@ class SolveSpec:
     residuals: bool = False
     flag_above: float = 3.0
     scale_columns: bool = False
+    sigma0: float = 1.0
+    alpha: float = 0.05
+    alpha_observation: float = 0.001
+    observation_test: str = "estimated"
 
 
 @dataclass(frozen=True, slots=True)
@@ -191,11 +210,15 @@ class GateSpec:
         Largest allowed ``||A - QR||_F / ||A||_F``.
     gram : float or None
         Largest allowed ``||A^H A - R^H R||_F / ||A||_F^2``.
+    model_test : bool
+        Fail the run (exit 3) when the global chi-square test of the model fails at
+        ``solve.alpha``, or cannot be evaluated (no rhs, no degrees of freedom).
     """
 
     orthogonality: float | None = None
     residual: float | None = None
     gram: float | None = None
+    model_test: bool = False
 
 
 @dataclass(frozen=True, slots=True)
@@ -509,6 +532,14 @@ def _fraction(value: Any) -> float:
     return float(value)
 
 
+def _significance(value: Any) -> float:
+    if isinstance(value, bool) or not isinstance(value, int | float):
+        raise TypeError("expected a significance level between 0 and 1 (exclusive)")
+    if not 0 < value < 1:  # also refuses NaN and infinities
+        raise ValueError("expected a significance level between 0 and 1 (exclusive)")
+    return float(value)
+
+
 def _seconds(value: Any) -> float:
     try:
         return _positive(value)
@@ -733,6 +764,10 @@ def _parse_solve(doc: _Doc) -> SolveSpec:
         "residuals",
         "flag_above",
         "scale_columns",
+        "sigma0",
+        "alpha",
+        "alpha_observation",
+        "observation_test",
     )
     section = _Section(doc, ("solve",), keys)
     return SolveSpec(
@@ -743,15 +778,20 @@ def _parse_solve(doc: _Doc) -> SolveSpec:
         residuals=section.get("residuals", _flag, False),
         flag_above=section.get("flag_above", _positive, 3.0),
         scale_columns=section.get("scale_columns", _flag, False),
+        sigma0=section.get("sigma0", _positive, 1.0),
+        alpha=section.get("alpha", _significance, 0.05),
+        alpha_observation=section.get("alpha_observation", _significance, 0.001),
+        observation_test=section.get("observation_test", _one_of(OBSERVATION_TESTS), "estimated"),
     )
 
 
 def _parse_gates(doc: _Doc) -> GateSpec:
-    section = _Section(doc, ("gates",), ("orthogonality", "residual", "gram"))
+    section = _Section(doc, ("gates",), ("orthogonality", "residual", "gram", "model_test"))
     return GateSpec(
         orthogonality=section.get("orthogonality", _positive),
         residual=section.get("residual", _positive),
         gram=section.get("gram", _positive),
+        model_test=section.get("model_test", _flag, False),
     )
 
 

@@ -12,9 +12,9 @@ leverages to the accumulators here. Their size is fixed whatever the number of r
   Li's "Algorithm L" (ACM TOMS 20(4), 1994) from a recorded seed;
 * :class:`Extremes` keeps the rows of highest leverage.
 
-Rows that carry no information (zero weight: residual and leverage both exactly 0) are
-left out of every summary, and standardized residuals that are not finite (leverage 1)
-are counted apart.
+Rows that carry no information (zero weight: their redundancy number is NaN) are left out
+of every summary, and standardized residuals that are not finite (an uncontrolled row,
+redundancy 0) are counted apart.
 """
 
 from __future__ import annotations
@@ -36,13 +36,11 @@ MEDIAN_RANGE = 8.0
 MEDIAN_STEP = 1.0 / 16.0
 
 
-def informative(residuals: np.ndarray, leverage: np.ndarray) -> np.ndarray:
-    """Rows that carry information: not (leverage 0 and every residual exactly 0).
-
-    A row of zero weight is scaled to zeros before factoring, so its leverage and its
-    residuals are exactly 0; it has no standardized residual to show.
-    """
-    return ~((leverage == 0) & np.all(residuals == 0, axis=1))
+def informative(redundancy: np.ndarray) -> np.ndarray:
+    """Rows that carry information: the rows of positive weight, whose redundancy number is
+    defined (a row of weight 0 has redundancy NaN: it is no observation of the adjustment,
+    and has no standardized residual to show)."""
+    return np.asarray(np.isfinite(redundancy))
 
 
 class RowBins:

@@ -515,4 +515,11 @@ def read_result(path: Path) -> dict[str, np.ndarray]:
 
 
 # Arrays with one row per input row: never read whole into memory.
-ROW_ARRAYS = ("Q", "residuals", "standardized_residuals", "leverage")
+ROW_ARRAYS = (
+    "Q",
+    "residuals",
+    "standardized_residuals",
+    "studentized_residuals",
+    "leverage",
+    "redundancy",
+)
