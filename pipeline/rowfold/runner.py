@@ -124,6 +124,25 @@ def plan_job(job: Job) -> BlockPlan:
     return plan
 
 
+# Fewer rows per block than this many times the columns draws a warning (common practice:
+# a block's QR costs about 2 b n^2 flops and leaves an n x n factor to reduce, so below a
+# few n rows per block the reduction tree does as much work as the blocks).
+MIN_BLOCK_ROWS_PER_COLUMN = 4
+
+
+def block_warnings(plan: BlockPlan) -> list[str]:
+    """Warnings about the block size (too few rows per block for the columns)."""
+    least = MIN_BLOCK_ROWS_PER_COLUMN * plan.cols
+    if plan.blocks <= 1 or plan.per_block >= least:
+        return []
+    return [
+        f"input.rows_per_block: {plan.per_block} rows per block for {plan.cols} columns "
+        f"({plan.blocks} blocks) is fewer than {MIN_BLOCK_ROWS_PER_COLUMN}n = {least}; "
+        f"the reduction of the blocks' factors then costs as much as the blocks themselves; "
+        f"use at least {least} (or auto)"
+    ]
+
+
 def parameter_names(job: Job, plan: BlockPlan) -> tuple[str, ...]:
     """The name of every input column: from ``input.parameter_names`` (a list, or a 1-D
     dataset of text in the input file), else ``x0 .. x{n-1}``.
@@ -150,10 +169,22 @@ def parameter_names(job: Job, plan: BlockPlan) -> tuple[str, ...]:
     return given
 
 
-def check_job(job: Job) -> dict[str, Any]:
-    """Validate a job's inputs and output path without computing; return a summary."""
+def validate_job(job: Job) -> BlockPlan:
+    """Check what a job reads (shapes, types, names) without computing; return its plan.
+
+    Raises
+    ------
+    JobError, InputError
+        When a key or an input does not fit (exit 2).
+    """
     plan = plan_job(job)
     parameter_names(job, plan)
+    return plan
+
+
+def check_job(job: Job) -> dict[str, Any]:
+    """Validate a job's inputs and output path without computing; return a summary."""
+    plan = validate_job(job)
     with storage.open_output(job.output.path, job.output.overwrite, _inputs(job)):
         pass  # takes the lock and recovers an interrupted commit, like a run would
     return {
@@ -167,6 +198,7 @@ def check_job(job: Job) -> dict[str, Any]:
         "rows_per_block": plan.per_block,
         "method": job.method.name,
         "output": str(job.output.path),
+        "warnings": block_warnings(plan),
     }
 
 
@@ -217,6 +249,7 @@ def run_job(
     with clock.stage("plan"):
         plan = plan_job(job)
         names = parameter_names(job, plan)
+    progress.begin_job(job.name, plan.rows)
     with storage.open_output(job.output.path, job.output.overwrite, _inputs(job), wait_lock):
         try:
             outcome = _run_with_engine(job, plan, names, progress, inline, resume, clock, started)
@@ -321,7 +354,7 @@ def _run_on(
 ) -> RunOutcome:
     """The part of a run that needs the engine."""
     engine = ctx.engine
-    extra: dict[str, Any] = {"warnings": []}
+    extra: dict[str, Any] = {"warnings": block_warnings(plan)}
     if plan.fixed_columns:
         extra["fixed_columns"] = _fixed_note(plan)
     scale = None
@@ -424,7 +457,9 @@ def compare_job(
 
     plan = plan_job(job)
     names = parameter_names(job, plan)
-    with _engine(job, progress or Progress(), inline) as engine:
+    progress = progress or Progress()
+    progress.begin_job(job.name, plan.rows)
+    with _engine(job, progress, inline) as engine:
         inputs = _fingerprints(job, plan, engine)
 
         def run(method_job: Job) -> RunOutcome:
@@ -477,8 +512,10 @@ def _update_held(job: Job, progress: Progress | None, inline: bool) -> RunOutcom
             f"{out}: the earlier result does not match the input ({plan.rows} x {plan.cols}); "
             "run `rowfold run` instead of update"
         )
+    progress = progress or Progress()
+    progress.begin_job(job.name, 0)  # stages read old and new rows: no one rate
     with ExitStack() as stack:
-        engine = stack.enter_context(_engine(job, progress or Progress(), inline))
+        engine = stack.enter_context(_engine(job, progress, inline))
         with clock.stage("prefix_check"):
             check = update.verify_prefix(plan, state, attrs, job.update, engine, out)
         if rows_done == plan.rows:

@@ -380,11 +380,32 @@ def _key_lines(
             _key_lines(item, path, lines, file, seen)
 
 
+class _Yaml12Loader(yaml.SafeLoader):
+    """PyYAML's safe loader, reading numbers as YAML 1.2 does.
+
+    PyYAML follows YAML 1.1, where a float needs a dot, so ``1e-12`` would be read as a
+    string. YAML 1.2's core schema (section 10.3.2) also takes ``1e-12``, ``5E3`` and
+    ``.5``; this loader adds that pattern to the 1.1 ones, so nothing read before changes.
+    """
+
+
+_Yaml12Loader.add_implicit_resolver(
+    "tag:yaml.org,2002:float",
+    re.compile(r"^[-+]?(?:\.[0-9]+|[0-9]+(?:\.[0-9]*)?)(?:[eE][-+]?[0-9]+)?$"),
+    list("-+0123456789."),
+)
+
+
+def _yaml_value(text: str) -> Any:
+    """Parse YAML text (one document) with :class:`_Yaml12Loader`."""
+    return yaml.load(text, Loader=_Yaml12Loader)
+
+
 def _parse_text(text: str, file: Path) -> tuple[Any, dict[tuple[str, ...], int]]:
     """Parse YAML text with the safe loader; return the data and the key lines."""
     try:
-        root = yaml.compose(text, Loader=yaml.SafeLoader)
-        data = yaml.load(text, Loader=yaml.SafeLoader)
+        root = yaml.compose(text, Loader=_Yaml12Loader)
+        data = _yaml_value(text)
     except yaml.MarkedYAMLError as exc:
         mark = exc.problem_mark
         where = f"line {mark.line + 1} column {mark.column + 1}" if mark else "somewhere"
@@ -421,7 +442,7 @@ def _apply_override(doc: _Doc, override: str) -> None:
     if not sep or not keypath:
         raise JobError(f"--set {override!r}: expected key.path=value, e.g. method.name=cholqr2")
     try:
-        value = yaml.safe_load(raw) if raw.strip() else None
+        value = _yaml_value(raw) if raw.strip() else None
     except yaml.YAMLError:
         value = raw
     node: dict[str, Any] = doc.data

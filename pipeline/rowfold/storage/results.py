@@ -433,13 +433,16 @@ def describe_path(path: Path) -> dict[str, Any]:
     if not path.exists():
         raise InputMissingError(f"{path}: not found")
     arrays: dict[str, dict[str, Any]] = {}
+    groups: dict[str, dict[str, Any]] = {}  # groups with a ``shape`` attribute (CSR)
     try:
         if path.suffix.lower() in HDF5_SUFFIXES:
             with _HDF5_LOCK, h5py.File(path, "r") as handle:
 
                 def visit(name: str, obj: Any) -> None:
                     if isinstance(obj, h5py.Dataset):
-                        arrays[name] = {"shape": list(obj.shape), "dtype": obj.dtype.str}
+                        arrays[name] = _hdf5_array_info(obj)
+                    elif isinstance(obj, h5py.Group) and "shape" in obj.attrs:
+                        groups[name] = {k: _plain(v) for k, v in obj.attrs.items()}
 
                 handle.visititems(visit)
                 attrs = {key: _plain(value) for key, value in handle.attrs.items()}
@@ -447,18 +450,39 @@ def describe_path(path: Path) -> dict[str, Any]:
             import zarr
 
             root = zarr.open_group(str(path), mode="r")
-            for name, array in root.arrays():
-                arrays[name] = {"shape": list(array.shape), "dtype": np.dtype(array.dtype).str}
-            for name, group in root.groups():
-                for sub, array in group.arrays():
-                    arrays[f"{name}/{sub}"] = {
-                        "shape": list(array.shape),
-                        "dtype": np.dtype(array.dtype).str,
-                    }
+            for name, member in root.members(max_depth=None):
+                if isinstance(member, zarr.Array):
+                    arrays[name] = _zarr_array_info(member)
+                elif "shape" in member.attrs:
+                    groups[name] = {k: _plain(v) for k, v in member.attrs.items()}
             attrs = {key: _plain(value) for key, value in root.attrs.items()}
     except Exception as exc:
         raise InputError(f"{path}: cannot read ({exc.__class__.__name__}: {exc})") from None
-    return {"path": str(path), "arrays": arrays, "attrs": attrs}
+    return {"path": str(path), "arrays": arrays, "groups": groups, "attrs": attrs}
+
+
+def _hdf5_array_info(dataset: Any) -> dict[str, Any]:
+    """Shape, dtype, chunks and compression of an HDF5 dataset (no data read)."""
+    return {
+        "shape": list(dataset.shape),
+        "dtype": dataset.dtype.str,
+        "chunks": None if dataset.chunks is None else list(dataset.chunks),
+        "compression": dataset.compression,
+    }
+
+
+def _zarr_array_info(array: Any) -> dict[str, Any]:
+    """Shape, dtype, chunks and compression of a Zarr array (no data read)."""
+    try:
+        codecs = [type(c).__name__ for c in (*array.filters, *array.compressors)]
+    except (AttributeError, TypeError):
+        codecs = []
+    return {
+        "shape": list(array.shape),
+        "dtype": np.dtype(array.dtype).str,
+        "chunks": list(array.chunks),
+        "compression": ", ".join(codecs) or None,
+    }
 
 
 def _plain(value: Any) -> Any:
