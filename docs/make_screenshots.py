@@ -20,8 +20,9 @@ from pathlib import Path
 HERE = Path(__file__).resolve().parent
 sys.path.insert(0, str(HERE.parent / "tests"))
 
-import headless  # noqa: E402
 from test_progress import replay, run_in_pty  # noqa: E402
+
+import headless  # noqa: E402
 
 COLUMNS = 80
 PAGE = """<!doctype html><meta charset="utf-8"><title>rowfold at {columns} columns</title>
