@@ -26,7 +26,6 @@ import numpy as np
 import pytest
 
 from rowfold.progress import Progress
-
 from test_cli import setup_job
 
 CSI = re.compile(r"\x1b\[[0-9;?]*[A-Za-z]")
@@ -52,12 +51,12 @@ def replay(text: str, columns: int) -> list[str]:
             row, col = row + 1, 0
             screen.extend([] for _ in range(row + 1 - len(screen)))
         else:
-            for char in piece:
-                assert col < columns, f"wrapped past column {columns}: {screen[row]!r}"
-                line = screen[row]
-                line.extend(" " for _ in range(col + 1 - len(line)))
-                line[col] = char
-                col += 1
+            end = col + len(piece)
+            assert end <= columns, f"wrapped past column {columns}: {piece!r}"
+            line = screen[row]
+            line.extend(" " for _ in range(end - len(line)))
+            line[col:end] = list(piece)
+            col = end
     return ["".join(line).rstrip() for line in screen]
 
 

@@ -31,7 +31,7 @@ import resource
 import sys
 import time
 from collections.abc import Awaitable, Callable, Iterator, Sequence
-from contextlib import contextmanager, suppress
+from contextlib import ExitStack, contextmanager, suppress
 from dataclasses import dataclass
 from typing import Any
 
@@ -61,10 +61,40 @@ def peak_rss_bytes() -> int:
 
 
 def limit_blas_threads(threads: int) -> None:
-    """Limit BLAS/OpenMP threads of this process (run inside each worker)."""
+    """Limit BLAS/OpenMP threads of this process (run inside each worker *process*)."""
     from threadpoolctl import threadpool_limits
 
     threadpool_limits(limits=threads)
+
+
+@contextmanager
+def blas_limited(threads: int) -> Iterator[None]:
+    """Limit BLAS/OpenMP threads of this process while inside, then restore the caller's."""
+    from threadpoolctl import threadpool_limits
+
+    with threadpool_limits(limits=threads):
+        yield
+
+
+@contextmanager
+def distributed_logs_quiet() -> Iterator[None]:
+    """Keep ``distributed``'s own log quiet while inside (rowfold reports task failures as
+    one line), then give the caller its level back."""
+    logger = logging.getLogger("distributed")
+    level = logger.level
+    logger.setLevel(logging.CRITICAL)
+    try:
+        yield
+    finally:
+        logger.setLevel(level)
+
+
+def cpu_count() -> int:
+    """Cores this process may use: Dask's count, which honours CPU affinity and cgroup
+    quotas (``dask.system.CPU_COUNT``)."""
+    from dask.system import CPU_COUNT
+
+    return max(1, int(CPU_COUNT))
 
 
 class InlineEngine:
@@ -603,32 +633,48 @@ def open_engine(spec: ClusterSpec, progress: Progress) -> Iterator[DistributedEn
         When the scheduler at ``cluster.address`` cannot be reached within
         ``cluster.timeout`` seconds.
     """
+    with distributed_logs_quiet():
+        if spec.address:
+            yield from _remote_engine(spec, progress)
+        else:
+            yield from _embedded_engine(spec, progress)
+
+
+def _remote_engine(spec: ClusterSpec, progress: Progress) -> Iterator[DistributedEngine]:
+    """An engine on the scheduler at ``cluster.address``."""
     from distributed import Client
 
-    # Task failures are reported by rowfold as one line; keep distributed's own logs quiet.
-    logging.getLogger("distributed").setLevel(logging.CRITICAL)
-    patience = Patience.of(spec)
-    if spec.address:
+    try:
+        client = Client(spec.address, timeout=f"{spec.timeout}s")
+    except OSError as exc:
+        raise RunError(
+            f"cluster.address {spec.address}: cannot connect to the Dask scheduler ({exc}); "
+            "check that it is running and reachable"
+        ) from None
+    engine = DistributedEngine(client, progress, Patience.of(spec))
+    try:
+        announce_dashboard(engine, progress)
+        engine.install_tally()
+        yield engine
+    finally:
+        engine.remove_tally()
+        _close(engine)
+
+
+def _embedded_engine(spec: ClusterSpec, progress: Progress) -> Iterator[DistributedEngine]:
+    """An engine on the embedded cluster; BLAS limited in its workers (worker threads share
+    this process: limited here only while the cluster runs)."""
+    from distributed import Client
+
+    with _embedded_cluster(spec) as (cluster, blas), ExitStack() as stack:
+        engine = DistributedEngine(Client(cluster), progress, Patience.of(spec))
         try:
-            client = Client(spec.address, timeout=f"{spec.timeout}s")
-        except OSError as exc:
-            raise RunError(
-                f"cluster.address {spec.address}: cannot connect to the Dask scheduler ({exc}); "
-                "check that it is running and reachable"
-            ) from None
-        engine = DistributedEngine(client, progress, patience)
-        try:
-            announce_dashboard(engine, progress)
-            engine.install_tally()
-            yield engine
-        finally:
-            engine.remove_tally()
-            _close(engine)
-        return
-    with _embedded_cluster(spec) as (cluster, blas):
-        engine = DistributedEngine(Client(cluster), progress, patience)
-        try:
-            engine.ask("limiting BLAS threads", lambda: engine.client.run(limit_blas_threads, blas))
+            if spec.processes:
+                engine.ask(
+                    "limiting BLAS threads", lambda: engine.client.run(limit_blas_threads, blas)
+                )
+            else:
+                stack.enter_context(blas_limited(blas))
             announce_dashboard(engine, progress)
             engine.install_tally()
             yield engine
@@ -649,7 +695,7 @@ def _embedded_cluster(spec: ClusterSpec) -> Iterator[tuple[Any, int]]:
     """A ``LocalCluster`` on the loopback; yields it and the BLAS threads per worker."""
     from distributed import LocalCluster
 
-    cores = os.cpu_count() or 1
+    cores = cpu_count()
     workers, threads = local_layout(spec, cores)
     processes = bool(spec.processes)  # None (auto) is decided by the runner; threads here
     config: dict[str, Any] = {

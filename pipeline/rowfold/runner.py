@@ -6,7 +6,6 @@ whole result is ready; the result store and its reports are committed together.
 
 from __future__ import annotations
 
-import os
 import time
 from collections.abc import Iterator
 from contextlib import ExitStack, contextmanager
@@ -22,7 +21,8 @@ from rowfold.cluster import (
     InlineEngine,
     Progress,
     ThreadedEngine,
-    limit_blas_threads,
+    blas_limited,
+    cpu_count,
     local_layout,
     open_engine,
 )
@@ -333,11 +333,11 @@ def _engine(job: Job, progress: Progress, inline: bool) -> Iterator[Any]:
 @contextmanager
 def _threaded_engine(spec: ClusterSpec, progress: Progress) -> Iterator[ThreadedEngine]:
     """Dask's threaded scheduler in this process, one BLAS thread per worker thread."""
-    workers, threads = local_layout(spec, os.cpu_count() or 1)
-    limit_blas_threads(1)
+    workers, threads = local_layout(spec, cpu_count())
     engine = ThreadedEngine(progress, workers * threads)
     try:
-        yield engine
+        with blas_limited(1):
+            yield engine
     finally:
         engine.close()
         storage.close_open_inputs()

@@ -907,10 +907,11 @@ def _parse_cluster(doc: _Doc, base: Path) -> ClusterSpec:
 
 
 def usable_cores() -> int:
-    """Cores this process may run on (its CPU affinity, else the machine's count)."""
-    if hasattr(os, "sched_getaffinity"):
-        return max(1, len(os.sched_getaffinity(0)))
-    return os.cpu_count() or 1
+    """Cores this process may use: ``dask.system.CPU_COUNT`` (CPU affinity and cgroup
+    quotas), the count the embedded cluster is sized from."""
+    from dask.system import CPU_COUNT
+
+    return max(1, int(CPU_COUNT))
 
 
 def _check_local_counts(doc: _Doc, spec: ClusterSpec) -> None:
