@@ -190,7 +190,7 @@ def test_inspect_shows_provenance(tmp_path: Path, capsys: pytest.CaptureFixture[
     job = write_job(tmp_path, make_input(tmp_path, A, A[:, 0].copy(), ".h5"))
     assert main(["--quiet", "run", str(job), "--inline"]) == 0
     capsys.readouterr()
-    assert main(["inspect", str(tmp_path / "result.h5")]) == 0
+    assert main(["inspect", "--json", str(tmp_path / "result.h5")]) == 0
     shown = json.loads(capsys.readouterr().out)
     prov = shown["attrs"]["provenance"]
     for key in ("rowfold", "numpy", "scipy", "dask", "h5py", "zarr", "blas", "host", "started"):

@@ -509,7 +509,8 @@ class DistributedEngine:
 
     def compute(self, tasks: Sequence[Any], label: str) -> list[Any]:
         """Compute on the cluster and gather the values."""
-        before = self._tally()
+        shown = self.progress.stream is not None or self.progress.log is not None
+        before = self._tally() if shown else None
         futures = self.client.compute(list(tasks))
         self._wait(futures, label, before)
         return self._gather(futures)
