@@ -6,6 +6,7 @@ import numpy as np
 from numpy.linalg import LinAlgError
 from scipy.linalg import blas, lapack
 
+from rowfold.kernels import nogil
 from rowfold.kernels.householder import as_columns
 from rowfold.kernels.nogil import rank_k_upper
 
@@ -63,12 +64,29 @@ def cholesky_upper(gram: np.ndarray) -> np.ndarray:
     return np.asarray(factor)
 
 
-def solve_right_upper(block: np.ndarray, R: np.ndarray) -> np.ndarray:
+def solve_right_upper(block: np.ndarray, R: np.ndarray, overwrite: bool = False) -> np.ndarray:
     """Return ``block @ inv(R)`` for upper triangular R, by trsm (no inverse formed).
 
     The result keeps the block's layout: a C-ordered block is solved through its
-    transpose (``R^-T block^T``), so neither layout is copied on the way in.
+    transpose (``R^-T block^T``), so neither layout is transposed. The GIL-released trsm of
+    :func:`rowfold.kernels.nogil.solve_right_upper` is used when it can serve the call
+    (``overwrite`` lets it work in ``block`` itself); scipy's f2py wrapper otherwise.
+
+    Raises
+    ------
+    ValueError
+        When R holds NaN or Inf (the solve would give finite numbers that are wrong).
     """
+    solved = nogil.solve_right_upper(block, R, overwrite=overwrite)
+    if solved is not None:
+        return solved
+    if not np.isfinite(R).all():
+        raise ValueError("triangular factor holds NaN or Inf; refusing to solve with it")
+    return _f2py_solve_right_upper(block, R)
+
+
+def _f2py_solve_right_upper(block: np.ndarray, R: np.ndarray) -> np.ndarray:
+    """``block @ inv(R)`` through scipy's f2py trsm wrapper (holds the GIL while it runs)."""
     dtype = np.result_type(block, R)
     if block.shape[0] == 0:
         return np.zeros(block.shape, dtype=dtype)
