@@ -26,6 +26,7 @@ from rowfold.kernels import (
     solve_right_upper,
     stacked_r,
 )
+from rowfold.kernels.gram import gram_upper
 
 import bounds
 
@@ -237,3 +238,25 @@ def test_nogil_trsm_leaves_dtypes_without_blas_to_the_caller() -> None:
     assert nogil.solve_right_upper(b, R) is None
     x = solve_right_upper(b, R)
     _assert_backward_stable(b, x.astype(np.float16), R)
+
+
+@pytest.mark.parametrize("dtype", DTYPES)
+@pytest.mark.parametrize("layout", ["C", "F"])
+def test_a_non_finite_entry_reaches_the_gram_diagonal(dtype: type, layout: str) -> None:
+    """The claim a folded NaN/Inf check would rest on: (A^H A)_jj = sum_i |a_ij|^2 is a sum of
+    non-negative terms, so IEEE 754 (Higham 2002 sec. 2.3: inf + x = inf, NaN absorbs) makes
+    it NaN or +inf when column j holds NaN or +-inf, with no inf - inf to cancel, even when
+    the column also holds +inf and -inf (whose off-diagonal products do give NaN)."""
+    rng = np.random.default_rng(8)
+    n = 6
+    a = _random(rng, (300, n), dtype)
+    a[10, 0] = np.inf
+    a[20, 1], a[21, 1] = np.inf, -np.inf
+    a[30, 3] = np.nan
+    if np.dtype(dtype).kind == "c":
+        a[40, 4] = complex(0.0, -np.inf)
+    bad_columns = ~np.isfinite(a).all(axis=0)
+    with np.errstate(invalid="ignore", over="ignore"):
+        diagonal = np.real(np.diagonal(gram_upper(_laid_out(a, layout))))
+    assert np.array_equal(~np.isfinite(diagonal), bad_columns)
+    assert np.all(np.isnan(diagonal[np.isnan(a).any(axis=0)]))
