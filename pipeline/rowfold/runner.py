@@ -359,6 +359,10 @@ def _run_on(
         if scale is not None:
             extra["column_scaling"] = _scaling_figures(fact.R, scale)
         extra.update(_answer(plan, solution, stats, scale, names))
+        state = {**fact.sums, **check.sums, "input_digests": inputs}
+        state["segments"] = _run_segment(plan, fact, state, job.update.label)
+        step = {"verb": "run", "rows_read": [[0, plan.rows]], "rows_read_count": plan.rows}
+        extra["segments"] = segments.coverage(state["segments"], [], step, recomputed=True)
         report = quality.assemble_report(
             job=job,
             plan=plan,
@@ -378,8 +382,6 @@ def _run_on(
             },
         )
         with clock.stage("write"):
-            state = {**fact.sums, **check.sums, "input_digests": inputs}
-            state["segment_label"] = job.update.label
             return _commit(writer, job, plan, fact, solution, stats, report, scale, state)
 
 
@@ -1067,7 +1069,7 @@ def _write_state(
     writer.put("state/column_scale", np.ones(plan.cols) if scale is None else scale)
     for name, array in storage.digest_arrays(sums["input_digests"]).items():
         writer.put(f"state/{name}", array)
-    entries = sums.get("segments") or _run_segment(plan, fact, sums)
+    entries = sums["segments"]
     _write_segments(writer, entries, sums.get("retired_segments", []))
     writer.set_attrs(
         {
@@ -1078,7 +1080,9 @@ def _write_state(
     )
 
 
-def _run_segment(plan: BlockPlan, fact: Factorization, sums: dict[str, Any]) -> list[Any]:
+def _run_segment(
+    plan: BlockPlan, fact: Factorization, sums: dict[str, Any], label: str | None
+) -> list[segments.Entry]:
     """A run's rows as the store's one segment: the factor of ``[A | b]`` from R, ``Q^H b``
     and the residual Gram the verification pass summed, and the Gram of A."""
     residual = None
@@ -1086,7 +1090,7 @@ def _run_segment(plan: BlockPlan, fact: Factorization, sums: dict[str, Any]) -> 
         residual = residual_factor(np.asarray(sums["rtr"]))
     factor = segments.augmented(fact.R, fact.qhb, residual)
     segment = segments.Segment(
-        label=str(sums.get("segment_label") or segments.default_label(0, plan.rows)),
+        label=label or segments.default_label(plan.first_row, plan.rows),
         first_row=plan.first_row,
         stop_row=plan.rows,
         rows_used=int(sums.get("rows_used", plan.rows)),
