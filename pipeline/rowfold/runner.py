@@ -490,7 +490,9 @@ def _earlier(job: Job, verb: str) -> _Earlier:
     plan = plan_job(job)
     names = parameter_names(job, plan)
     rows_done = int(attrs.get("rows_done", -1))
-    if "R" not in state or state["R"].shape[0] != plan.cols or not 0 <= rows_done <= plan.rows:
+    # replace checks the row count itself (more plainly); retire reads no rows at all
+    rows_ok = verb != "update" or 0 <= rows_done <= plan.rows
+    if "R" not in state or state["R"].shape[0] != plan.cols or not rows_ok:
         raise InputError(
             f"{out}: the earlier result does not match the input ({plan.rows} x {plan.cols}); "
             f"run `rowfold run` instead of {verb}"
