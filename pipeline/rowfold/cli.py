@@ -115,10 +115,14 @@ def _segment_line(outcome: RunOutcome) -> str:
     info = outcome.report.get("segments") or {}
     step = info.get("step") or {}
     ranges = ", ".join(f"{a}..{b - 1}" for a, b in step.get("rows_read", [])) or "none"
+    hashed = step.get("rows_checked_by_digest")
+    checked = f", hashed {hashed} old rows to check them" if hashed else ""
+    retired = f"; retired {', '.join(step['retired'])}" if step.get("retired") else ""
     return (
-        f"{step.get('verb', 'run')}: read {step.get('rows_read_count', 0)} rows ({ranges}); "
-        f"the answer covers {info.get('rows_covered')} rows in {info.get('segments_covered')} "
-        "segments: " + ", ".join(s["label"] for s in info.get("covered", []))
+        f"{step.get('verb', 'run')}: read {step.get('rows_read_count', 0)} rows ({ranges})"
+        f"{checked}{retired}; the answer covers {info.get('rows_covered')} rows in "
+        f"{info.get('segments_covered')} segment(s): "
+        + ", ".join(s["label"] for s in info.get("covered", []))
     )
 
 
@@ -300,7 +304,7 @@ def _demo(args: argparse.Namespace, progress: Progress) -> int:
 
     worst = 0
     for outcome in runner.run_demo(args.dir, progress, rows=args.rows):
-        _say(_summary(outcome))
+        _say(_segment_line(outcome) + "\n" + _summary(outcome))
         worst = max(worst, outcome.status)
     return worst
 

@@ -1150,8 +1150,28 @@ def inspect_path(path: str | Path) -> dict[str, Any]:
 def run_demo(
     folder: Path, progress: Progress | None = None, rows: int | None = None
 ) -> Iterator[RunOutcome]:
-    """Write the demo scenario into ``folder`` and run each of its jobs in turn."""
-    from rowfold.demo import write_scenario
+    """Write the demo scenario into ``folder`` and run each of its jobs in turn; the
+    nightly job runs its nights (:data:`rowfold.demo.NIGHT_STEPS`): a run, an added night,
+    a replaced night and an added night that the window makes retire the first."""
+    from rowfold import demo
 
-    for path in write_scenario(Path(folder), rows):
+    for path in demo.write_scenario(Path(folder), rows):
+        if path.name == "zero_points_nightly.yaml":
+            yield from run_nights(path, demo.night_rows(rows), progress)
+            continue
         yield run_job(load_job(path), progress)
+
+
+def run_nights(job_path: Path, rows: int, progress: Progress | None = None) -> Iterator[RunOutcome]:
+    """The nightly demo's steps, writing each night's rows before the step that reads them."""
+    from rowfold import demo
+
+    for verb, label, nights, recalibrated in demo.NIGHT_STEPS:
+        demo.write_nights(job_path.parent, nights, rows, recalibrated)
+        job = load_job(job_path, (f"update.label={label}",))
+        if verb == "run":
+            yield run_job(job, progress)
+        elif verb == "update":
+            yield update_job(job, progress)
+        else:
+            yield replace_job(job, label, progress)
