@@ -387,3 +387,17 @@ def test_kill_9_during_each_verb_leaves_the_previous_result_byte_identical(
     assert main(["--quiet", "inspect", str(out)]) == 0
     assert snapshot(out) == before
     assert not [p for p in tmp_path.iterdir() if p.name.startswith(".rowfold-")]
+
+
+def test_tree_reduction_of_factors_equals_the_factor_of_the_stacked_rows() -> None:
+    """Seven segments' R factors reduced by the binary tree give the R of all their rows:
+    within the R-factor perturbation bound (Sun 1991; Higham Thm 19.4 for each of the
+    Householder QRs, TSQR's tree stability: Demmel et al., SISC 34(1) 2012)."""
+    from rowfold.kernels.tree import reduce_factors, triangular
+
+    A = prescribed(7 * 30, 6, 1e4, seed=21)
+    parts = [triangular(A[i : i + 30]) for i in range(0, A.shape[0], 30)]
+    R = reduce_factors(iter(parts))
+    assert np.array_equal(R, np.triu(R)) and np.all(np.diagonal(R) >= 0)
+    error = np.linalg.norm(R - lapack_r(A)) / np.linalg.norm(A, 2)
+    assert error <= bounds.r_factor(6, 1e4)
