@@ -311,6 +311,7 @@ def write_scenario(folder: Path, rows: int | None = None) -> list[Path]:
     write_csr(
         levelling, "network/A", A, {"network/dh": dh, "network/w": w, "network/benchmarks": names}
     )
+    write_nights(folder, 1, night_rows(rows))  # the nightly job's first night
     jobs = []
     for name, text in (
         ("zero_points_tsqr.yaml", JOB_TSQR),

@@ -1,17 +1,18 @@
-"""``rowfold update``: fold newly appended rows into an earlier result.
+"""``rowfold update`` (and ``replace``): factor a range of rows as one segment.
 
-The earlier result keeps, under ``state/``, the augmented triangular factor of ``[A | b]``:
-R, ``Q^H b`` and a residual factor F (``F^H F = r^H r``), plus ``A^H A``. New rows
-``[rows_done, m)`` are factored by Householder TSQR as ``[A_new | b_new]``, and the two
-augmented factors are reduced by one more stacked-R step (the TSQR reduction), so the result
-equals a full refactorization up to rounding, without reading the old rows again.
+The earlier result keeps, per segment, the triangular factor of that segment's ``[A | b]``
+(:mod:`rowfold.segments`). ``update`` factors the new rows ``[rows_done, m)`` by Householder
+TSQR as ``[A_new | b_new]`` (:func:`factor_rows`) into a new segment; ``replace`` factors one
+segment's rows again. The store's answer is then reduced from the live segments' factors
+(a TSQR reduction), so it equals a full refactorization up to rounding, without reading the
+other rows again.
 
-Before that, two things must hold, or the update is refused (exit 2) and ``run`` is the way:
+Before an update, two things must hold, or it is refused (exit 2) and ``run`` is the way:
 
 * every job key that changes the answer (:data:`ANSWER_KEYS`) equals the one the earlier
   result was computed with (:func:`check_answer_keys`);
-* the inputs still start with the rows the earlier result consumed: every old row block of
-  every input is hashed again and compared with the digests the earlier result recorded
+* the inputs still hold the rows the live segments consumed: every such row block of every
+  input is hashed again and compared with the digests the earlier result recorded
   (:func:`verify_prefix`; :mod:`rowfold.storage.digests`). ``update.verify: sample`` checks
   only a share of the blocks, and the report says exactly which.
 
