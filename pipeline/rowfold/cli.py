@@ -72,7 +72,9 @@ def _parser() -> argparse.ArgumentParser:
     update.add_argument(
         "--inline", action="store_true", help="run in this process without a Dask cluster"
     )
+    update.add_argument("--label", default=None, help="label of the new segment (update.label)")
     _wait_lock_option(update)
+    _segment_verbs(verbs)
     check = verbs.add_parser("check", help="validate a job file and its inputs, compute nothing")
     check.add_argument("job", type=Path)
     check.add_argument("--set", dest="overrides", action="append", default=[], metavar="KEY=VALUE")
@@ -123,6 +125,58 @@ class _Verbs:
             name, help=help, parents=[self.common]
         )
         return parser
+
+
+def _segment_verbs(verbs: Any) -> None:
+    """``replace`` and ``retire``: change one segment of an earlier result (rowfold.segments)."""
+    replace = verbs.add_parser("replace", help="read one segment's rows again and refactor them")
+    replace.add_argument("job", type=Path)
+    replace.add_argument("label", help="the segment's label")
+    retire = verbs.add_parser("retire", help="drop segments from the answer; reads no rows")
+    retire.add_argument("job", type=Path)
+    retire.add_argument("labels", nargs="+", metavar="LABEL", help="labels of the segments")
+    for parser in (replace, retire):
+        parser.add_argument(
+            "--set", dest="overrides", action="append", default=[], metavar="KEY=VALUE"
+        )
+        _wait_lock_option(parser)
+    replace.add_argument(
+        "--inline", action="store_true", help="run in this process without a Dask cluster"
+    )
+
+
+def _segment_line(outcome: RunOutcome) -> str:
+    """What a segment verb read and what the answer now covers."""
+    info = outcome.report.get("segments") or {}
+    step = info.get("step") or {}
+    ranges = ", ".join(f"{a}..{b - 1}" for a, b in step.get("rows_read", [])) or "none"
+    hashed = step.get("rows_checked_by_digest")
+    checked = f", hashed {hashed} old rows to check them" if hashed else ""
+    retired = f"; retired {', '.join(step['retired'])}" if step.get("retired") else ""
+    return (
+        f"{step.get('verb', 'run')}: read {step.get('rows_read_count', 0)} rows ({ranges})"
+        f"{checked}{retired}; the answer covers {info.get('rows_covered')} rows in "
+        f"{info.get('segments_covered')} segment(s): "
+        + ", ".join(s["label"] for s in info.get("covered", []))
+    )
+
+
+def _replace(args: argparse.Namespace, progress: Progress) -> int:
+    from rowfold import runner
+
+    job = runner.load_job(args.job, tuple(args.overrides))
+    outcome = runner.replace_job(job, args.label, progress, args.inline, args.wait_lock)
+    _say(_segment_line(outcome) + "\n" + _summary(outcome))
+    return outcome.status
+
+
+def _retire(args: argparse.Namespace, progress: Progress) -> int:
+    from rowfold import runner
+
+    job = runner.load_job(args.job, tuple(args.overrides))
+    outcome = runner.retire_job(job, list(args.labels), progress, args.wait_lock)
+    _say(_segment_line(outcome) + "\n" + _summary(outcome))
+    return outcome.status
 
 
 def _wait_lock_option(parser: argparse.ArgumentParser) -> None:
@@ -277,14 +331,16 @@ def _compare(args: argparse.Namespace, progress: Progress) -> int:
 def _update(args: argparse.Namespace, progress: Progress) -> int:
     from rowfold import runner
 
-    job = runner.load_job(args.job, tuple(args.overrides))
+    label = () if args.label is None else (f"update.label={args.label}",)
+    job = runner.load_job(args.job, (*args.overrides, *label))
     try:
         outcome = runner.update_job(job, progress, inline=args.inline, wait_lock=args.wait_lock)
     except runner.NoNewRowsError as exc:
         _say(f"{exc}; nothing to do")
         return 0
     added = outcome.report["update"]["rows_added"]
-    _say(f"folded {added} new rows into the earlier result\n" + _summary(outcome))
+    _say(f"folded {added} new rows into the earlier result\n{_segment_line(outcome)}")
+    _say(_summary(outcome))
     return outcome.status
 
 
@@ -308,7 +364,7 @@ def _demo(args: argparse.Namespace, progress: Progress) -> int:
 
     worst = 0
     for outcome in runner.run_demo(args.dir, progress, rows=args.rows):
-        _say(_summary(outcome))
+        _say(_segment_line(outcome) + "\n" + _summary(outcome))
         worst = max(worst, outcome.status)
     return worst
 
@@ -400,6 +456,8 @@ def _dispatch(args: argparse.Namespace, progress: Progress) -> int:
             return _run(args, progress)
         if args.verb == "update":
             return _update(args, progress)
+        if args.verb in ("replace", "retire"):
+            return (_replace if args.verb == "replace" else _retire)(args, progress)
         if args.verb == "compare":
             return _compare(args, progress)
         if args.verb == "check":

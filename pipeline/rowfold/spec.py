@@ -7,6 +7,7 @@ Relative paths resolve against the folder of the job file.
 
 from __future__ import annotations
 
+import datetime
 import json
 import math
 import os
@@ -233,10 +234,17 @@ class UpdateSpec:
         old blocks (always the last), which the report and a warning say.
     sample_fraction : float
         With ``verify: sample``, the share of old row blocks checked, in (0, 1].
+    label : str or None
+        The label of the segment a run or update adds (``update --label``); None gives
+        ``rows-<first>-<last>`` (see :mod:`rowfold.segments`).
+    window : int or None
+        Keep only the last ``window`` segments: ``update`` retires older ones itself.
     """
 
     verify: str = "all"
     sample_fraction: float = 0.1
+    label: str | None = None
+    window: int | None = None
 
 
 @dataclass(frozen=True, slots=True)
@@ -822,11 +830,24 @@ def _share(value: Any) -> float:
     return float(value)
 
 
+def _label(value: Any) -> str:
+    """A segment label: one line of text (a YAML date or number is taken as its text)."""
+    if isinstance(value, bool) or not isinstance(value, str | int | datetime.date):
+        raise TypeError("expected a label: one line of text, e.g. a night's date")
+    text = str(value).strip()
+    if not text or "\n" in text or len(text) > 100:
+        raise ValueError("expected a label of 1 to 100 characters on one line")
+    return text
+
+
 def _parse_update(doc: _Doc) -> UpdateSpec:
-    section = _Section(doc, ("update",), ("verify", "sample_fraction"))
+    keys = ("verify", "sample_fraction", "label", "window")
+    section = _Section(doc, ("update",), keys)
     return UpdateSpec(
         verify=section.get("verify", _one_of(VERIFY_MODES), "all"),
         sample_fraction=section.get("sample_fraction", _share, 0.1),
+        label=section.get("label", _label),
+        window=section.get("window", _count),
     )
 
 

@@ -534,11 +534,24 @@ def read_result(path: Path) -> dict[str, np.ndarray]:
             out[name] = np.asarray(array[...])
     for group_name, group in root.groups():
         for name, array in group.arrays():
-            out[f"{group_name}/{name}"] = np.asarray(array[...])
+            if f"{group_name}/{name}" not in ROW_ARRAYS:
+                out[f"{group_name}/{name}"] = np.asarray(array[...])
     return out
 
 
-# Arrays with one row per input row: never read whole into memory.
+def read_item(path: Path, name: str, index: int) -> np.ndarray:
+    """Read one item (the sub-array at ``index`` along the first axis) of a stored array,
+    for example one segment's factor, without reading the rest."""
+    if path.suffix.lower() in HDF5_SUFFIXES:
+        with _HDF5_LOCK, h5py.File(path, "r") as handle:
+            return np.asarray(handle[name][index])
+    import zarr
+
+    array: Any = zarr.open_group(str(path), mode="r")[name]
+    return np.asarray(array[index])
+
+
+# Arrays with one row per input row, or one item per segment: never read whole into memory.
 ROW_ARRAYS = (
     "Q",
     "residuals",
@@ -546,4 +559,6 @@ ROW_ARRAYS = (
     "studentized_residuals",
     "leverage",
     "redundancy",
+    "segments/factor",
+    "segments/gram",
 )
