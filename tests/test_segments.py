@@ -401,3 +401,26 @@ def test_tree_reduction_of_factors_equals_the_factor_of_the_stacked_rows() -> No
     assert np.array_equal(R, np.triu(R)) and np.all(np.diagonal(R) >= 0)
     error = np.linalg.norm(R - lapack_r(A)) / np.linalg.norm(A, 2)
     assert error <= bounds.r_factor(6, 1e4)
+
+
+@pytest.mark.parametrize("verb", ["update", "replace", "retire"])
+def test_a_gate_on_a_figure_not_recomputed_is_not_evaluated_and_exits_3(
+    tmp_path: Path, verb: str
+) -> None:
+    job, _, out = three_segments(tmp_path, more=verb == "update")
+    args = {
+        "update": ["update", str(job), "--inline"],
+        "replace": ["replace", str(job), "rows-100-199", "--inline"],
+        "retire": ["retire", str(job), "rows-0-99"],
+    }[verb]
+    assert main(["--quiet", *args, "--set", "gates.orthogonality=1.0e-12"]) == 3
+    report = report_of(out)
+    gate = report["gates"]["orthogonality"]
+    assert gate["evaluated"] is False and gate["held"] is None
+    assert report["exit_status"] == 3 and report["orthogonality_loss"] is None
+    assert set(report["segments"]["not_recomputed"]) >= {
+        "orthogonality_loss",
+        "factorization_residual",
+        "residual_screening",
+    }
+    assert report["gates"]["gram"]["held"] is True  # recomputed from the segments
