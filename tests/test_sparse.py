@@ -484,6 +484,11 @@ def test_levelling_demo_recovers_its_true_heights(tmp_path: Path) -> None:
     assert np.max(z) < 5.0
     sigma = demo.NOISE_M_PER_ROOT_KM
     assert abs(outcome.report["residual_std"] - sigma) < 0.1 * sigma
+    # The job's a priori sd of unit weight is the noise it was drawn with, so the global
+    # chi-square test of the variance factor sees a ratio s0^2 / sigma0^2 near 1.
+    model = outcome.report["model_test"]
+    assert model["sigma0"] == sigma
+    assert model["lower"] <= model["statistic"] <= model["upper"]
 
 
 def test_update_folds_rows_appended_to_a_csr_input(tmp_path: Path) -> None:

@@ -190,6 +190,8 @@ input:
   parameter_names: network/benchmarks   # a dataset of names, one per benchmark
 method:
   name: cholqr2
+solve:
+  sigma0: 0.0012   # m per root km: the weights are 1 / (length in km)
 output:
   path: results/brackenholt_heights.h5
   overwrite: true
