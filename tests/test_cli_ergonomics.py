@@ -154,3 +154,35 @@ def test_help_and_version_import_no_numerical_library(flag: str) -> None:
         [sys.executable, "-c", code], capture_output=True, text=True, check=True, timeout=60
     )
     assert done.stdout.splitlines()[-1] == "0 []", done.stdout
+
+
+def test_segment_lines_and_warnings_fit_80_columns() -> None:
+    """What a segment verb read, with many labels, and a long warning wrap at 80 columns
+    with later lines indented; numbers carry thousands separators; labels stay whole."""
+    from types import SimpleNamespace
+
+    from rowfold import cli
+
+    labels = [f"2026-11-{day:02d}" for day in range(1, 13)]
+    report = {
+        "segments": {
+            "step": {
+                "verb": "update",
+                "rows_read": [[150_000, 225_000]],
+                "rows_read_count": 75_000,
+                "rows_checked_by_digest": 150_000,
+                "retired": ["2026-10-31"],
+            },
+            "rows_covered": 900_000,
+            "segments_covered": len(labels),
+            "covered": [{"label": label} for label in labels],
+        }
+    }
+    text = cli._segment_line(SimpleNamespace(report=report))  # type: ignore[arg-type]
+    lines = text.splitlines()
+    assert len(lines) > 1 and all(len(line) <= 80 for line in lines)
+    assert all(line.startswith("    ") for line in lines[1:])
+    assert "read 75,000 rows" in text and "hashed 150,000 old rows" in text
+    assert all(label in text.split() or label + "," in text.split() for label in labels)
+    warning = cli._wrapped("  warning: " + "a long warning about the rows " * 8)
+    assert all(len(line) <= 80 for line in warning.splitlines())

@@ -146,19 +146,36 @@ def _segment_verbs(verbs: Any) -> None:
 
 
 def _segment_line(outcome: RunOutcome) -> str:
-    """What a segment verb read and what the answer now covers."""
+    """What a segment verb read and what the answer now covers, wrapped at 80 columns."""
     info = outcome.report.get("segments") or {}
     step = info.get("step") or {}
     ranges = ", ".join(f"{a}..{b - 1}" for a, b in step.get("rows_read", [])) or "none"
-    hashed = step.get("rows_checked_by_digest")
-    checked = f", hashed {hashed} old rows to check them" if hashed else ""
-    retired = f"; retired {', '.join(step['retired'])}" if step.get("retired") else ""
-    return (
-        f"{step.get('verb', 'run')}: read {step.get('rows_read_count', 0)} rows ({ranges})"
-        f"{checked}{retired}; the answer covers {info.get('rows_covered')} rows in "
-        f"{info.get('segments_covered')} segment(s): "
-        + ", ".join(s["label"] for s in info.get("covered", []))
+    read = f"{step.get('verb', 'run')}: read {_rows(step.get('rows_read_count', 0))}"
+    sentences = [f"{read} ({ranges})"]
+    if step.get("rows_checked_by_digest"):
+        sentences.append(f"hashed {_rows(step['rows_checked_by_digest'], 'old row')} to check")
+    if step.get("retired"):
+        sentences.append(f"retired {', '.join(step['retired'])}")
+    labels = ", ".join(s["label"] for s in info.get("covered", []))
+    covered = _count(info.get("segments_covered") or 0, "segment")
+    rows = _rows(info.get("rows_covered") or 0)
+    sentences.append(f"the answer covers {rows} in {covered}: {labels}")
+    return _wrapped("; ".join(sentences))
+
+
+def _rows(number: int, word: str = "row") -> str:
+    """``1 row``, ``75,000 rows``."""
+    return f"{number:,} {word if number == 1 else word + 's'}"
+
+
+def _wrapped(text: str) -> str:
+    """``text`` wrapped at 80 columns, later lines indented; paths and labels stay whole."""
+    import textwrap
+
+    wrapper = textwrap.TextWrapper(
+        width=80, subsequent_indent="    ", break_on_hyphens=False, break_long_words=False
     )
+    return wrapper.fill(text)
 
 
 def _replace(args: argparse.Namespace, progress: Progress) -> int:
@@ -234,7 +251,7 @@ def _summary(outcome: RunOutcome) -> str:
         f"  gram residual {fmt(report['gram_residual'])}",
         f"  wrote {outcome.output}",
     ]
-    lines += [f"  warning: {w}" for w in report.get("warnings", [])]
+    lines += [_wrapped(f"  warning: {w}") for w in report.get("warnings", [])]
     if failed:
         lines.append(f"  quality gate failed: {', '.join(failed)} (see the report)")
     if unknown:
@@ -355,7 +372,7 @@ def _check(args: argparse.Namespace) -> int:
         f"method {summary['method']}, output {summary['output']}"
     )
     for warning in summary["warnings"]:
-        _say(f"  warning: {warning}")
+        _say(_wrapped(f"  warning: {warning}"))
     return 0
 
 
