@@ -403,6 +403,38 @@ def test_tree_reduction_of_factors_equals_the_factor_of_the_stacked_rows() -> No
     assert error <= bounds.r_factor(6, 1e4)
 
 
+@pytest.mark.parametrize("pointers", [True, False], ids=["cython", "f2py"])
+@pytest.mark.parametrize("dtype", ["float32", "float64", "complex64", "complex128"])
+def test_a_tree_node_folds_two_triangles_within_the_gram_bound(
+    dtype: str, pointers: bool, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    """One node (LAPACK tpqrt with L = p on two triangles) gives T with T^H T equal to the
+    sum of the two Gram matrices within the Gram-residual bound of a backward-stable QR of
+    the 2p x p stack (Higham 2002, Thm 19.4; tests/bounds.py gram_residual), triangular with
+    a real non-negative diagonal, through scipy's exported pointer or its f2py wrapper; an
+    integer pair takes the stacked-QR path to the same."""
+    from rowfold.kernels import nogil
+    from rowfold.kernels.tree import combine, triangular
+
+    if not pointers:
+        monkeypatch.setattr(nogil, "_routine", lambda *_: None)
+
+    p = 40
+    A = prescribed(2 * p, p, 1e3, seed=5, dtype=dtype)
+    first, second = triangular(A[:p]), triangular(A[p:])
+    T = combine(first, second)
+    assert T.dtype == np.dtype(dtype)
+    assert np.array_equal(T, np.triu(T))
+    assert np.all(np.diagonal(T).real >= 0) and np.all(np.diagonal(T).imag == 0)
+    wide = A.astype(np.complex128 if A.dtype.kind == "c" else np.float64)
+    gram = wide.conj().T @ wide
+    T_wide = T.astype(wide.dtype)
+    error = np.linalg.norm(T_wide.conj().T @ T_wide - gram) / np.linalg.norm(wide) ** 2
+    assert error <= bounds.gram_residual(2 * p, p, dtype)
+    integers = combine(np.eye(3, dtype=np.int64), 2 * np.eye(3, dtype=np.int64))
+    assert np.allclose(np.diagonal(integers), np.sqrt(5.0), rtol=0, atol=bounds.gamma(6))
+
+
 @pytest.mark.parametrize("verb", ["update", "replace", "retire"])
 def test_a_gate_on_a_figure_not_recomputed_is_not_evaluated_and_exits_3(
     tmp_path: Path, verb: str

@@ -2,8 +2,9 @@
 
 Each factor ``T_i`` (p x p, upper triangular, here the factor of one segment's ``[A | b]``)
 satisfies ``T_i^H T_i = X_i^H X_i`` for that segment's rows ``X_i``. The factor of all the
-segments together is the R of the stacked ``[T_1; T_2; ...]``, found pairwise: two factors
-are stacked (2p x p) and factored by Householder QR, as a TSQR reduction node does.
+segments together is the R of the stacked ``[T_1; T_2; ...]``, found pairwise: the second
+factor is folded into the first by LAPACK ``tpqrt`` (Householder reflectors that skip the
+zeros below both diagonals), a TSQR reduction node for two triangles.
 
 :func:`reduce_factors` consumes an iterable and keeps at most one factor per tree level
 (a binary counter), so ``S`` segments need ``ceil(log2 S) + 2`` factors in memory at a
@@ -17,7 +18,13 @@ from collections.abc import Iterable
 import numpy as np
 
 from rowfold.kernels.householder import stacked_r
+from rowfold.kernels.nogil import tpqrt
 from rowfold.kernels.signs import positive_diagonal
+
+# tpqrt's inner block size for tree nodes; at p = 2000 on 2 cores 16, 32, 64, 128 took
+# 0.45, 0.37, 0.40, 0.48 s a node against 3.06 s for the stacked QR (measured, loaded machine).
+TREE_PANEL = 32
+TPQRT_DTYPES = tuple(np.dtype(code) for code in ("float32", "float64", "complex64", "complex128"))
 
 
 def triangular(factor: np.ndarray) -> np.ndarray:
@@ -35,9 +42,23 @@ def triangular(factor: np.ndarray) -> np.ndarray:
 
 
 def combine(first: np.ndarray, second: np.ndarray) -> np.ndarray:
-    """The triangular factor of two stacked triangular factors (one tree node)."""
-    reduced, _, _ = stacked_r([(first, None), (second, None)], keep_q=False)
-    out, _ = positive_diagonal(reduced)
+    """The triangular factor of two stacked triangular factors (one tree node).
+
+    LAPACK ``tpqrt`` with ``L = p`` folds the second triangle into the first and skips
+    the zeros below both diagonals: about ``2 p^3 / 3`` flops against ``10 p^3 / 3`` for
+    a Householder QR of the stacked ``2p x p`` pair (measured at p = 2000: see
+    ``TREE_PANEL``). Dtypes LAPACK has no ``tpqrt`` for take the stacked QR.
+    """
+    dtype = np.result_type(first, second)
+    if dtype not in TPQRT_DTYPES or first.shape[0] == 0:
+        reduced, _, _ = stacked_r([(first, None), (second, None)], keep_q=False)
+        out, _ = positive_diagonal(reduced)
+        return out
+    p = first.shape[0]
+    triangle = np.array(np.triu(first), dtype=dtype, order="F")
+    piece = np.array(np.triu(second), dtype=dtype, order="F")
+    tpqrt(triangle, piece, max(1, min(TREE_PANEL, p)), trapezoid=p)
+    out, _ = positive_diagonal(np.triu(triangle))
     return out
 
 
