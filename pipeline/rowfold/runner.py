@@ -6,6 +6,7 @@ whole result is ready; the result store and its reports are committed together.
 
 from __future__ import annotations
 
+import json
 import os
 import time
 from collections.abc import Iterator
@@ -377,7 +378,7 @@ def _run_on(
         )
         with clock.stage("write"):
             state = {**fact.sums, **check.sums, "input_digests": inputs}
-            return _commit(writer, job, plan, fact, solution, stats, report, scale, state)
+            return _commit(writer, job, plan, fact, solution, stats, report, scale, state, names)
 
 
 def _commit(
@@ -390,9 +391,12 @@ def _commit(
     report: dict[str, Any],
     scale: np.ndarray | None,
     state_sums: dict[str, Any],
+    names: tuple[str, ...],
 ) -> RunOutcome:
     """Write the store, its update state and the reports, commit them, and say how it went."""
     _write_store(writer, job, plan, fact, solution, stats, report, scale)
+    writer.put_labels("columns", names)
+    writer.put_labels("columns_i", names)
     _write_state(writer, plan, fact, state_sums, scale)
     json_path, html_path = storage.report_paths(job.output.path)
     report = {**report, "commit": writer.commit_id}  # the store records the same id
@@ -551,7 +555,7 @@ def _commit_update(
     with storage.ResultWriter(job.output.path) as writer:
         writer.set_attrs({"q_state": STALE_Q_TEXT})
         scale = folded.column_scale
-        return _commit(writer, job, plan, fact, solution, stats, report, scale, state_sums)
+        return _commit(writer, job, plan, fact, solution, stats, report, scale, state_sums, names)
 
 
 def _update_warnings(job: Job) -> list[str]:
@@ -605,7 +609,7 @@ def _row_sink(
     real = np.zeros(0, dtype=dtype).real.dtype
     shapes = {
         "Q": (plan.rows, plan.cols),
-        "residuals": (plan.rows, plan.rhs_cols),
+        "residuals": _rows_shape(plan),
         "leverage": (plan.rows,),
         "redundancy": (plan.rows,),
     }
@@ -615,9 +619,22 @@ def _row_sink(
 
     def sink(start: int, rows: dict[str, np.ndarray]) -> None:
         for name, block in rows.items():
-            writer.write_rows(name, start, block)
+            writer.write_rows(name, start, _row_shaped(plan, name, block))
 
     return sink
+
+
+_PER_RHS_ROWS = ("residuals", "standardized_residuals", "studentized_residuals")
+
+
+def _rows_shape(plan: BlockPlan) -> tuple[int, ...]:
+    """The stored shape of a per-rhs row array: (m,) for a 1-D rhs, (m, k) otherwise."""
+    return (plan.rows,) if plan.rhs_1d else (plan.rows, plan.rhs_cols)
+
+
+def _row_shaped(plan: BlockPlan, name: str, block: np.ndarray) -> np.ndarray:
+    """A block of a row array in its stored shape (a 1-D rhs drops the rhs axis)."""
+    return block[:, 0] if plan.rhs_1d and name in _PER_RHS_ROWS and block.ndim == 2 else block
 
 
 def _screen(
@@ -628,12 +645,16 @@ def _screen(
     total and the per-observation test."""
     chunk = plan.per_block
     for name in ("standardized_residuals", "studentized_residuals"):
-        writer.create(name, (plan.rows, plan.rhs_cols), np.float64, chunk)
+        writer.create(name, _rows_shape(plan), np.float64, chunk)
 
     def write(name: str, start: int, rows: np.ndarray) -> None:
-        writer.write_rows(name, start, np.real(rows))
+        writer.write_rows(name, start, _row_shaped(plan, name, np.real(rows)))
 
-    screening = quality.screen_residuals(writer.read_rows, write, plan, setup)
+    def read(name: str, start: int, stop: int) -> np.ndarray:
+        rows = writer.read_rows(name, start, stop)
+        return rows[:, None] if name in _PER_RHS_ROWS and rows.ndim == 1 else rows
+
+    screening = quality.screen_residuals(read, write, plan, setup)
     summary = {
         "flag_above": screening.flag_above,
         "flagged": screening.flagged[0] if plan.rhs_1d else screening.flagged,
@@ -719,7 +740,7 @@ def _write_store(
             "rows": plan.rows,
             "cols": plan.input_cols,
             "fixed_columns": list(plan.fixed_columns),
-            "job": job.resolved_json(),
+            "job": json.loads(job.resolved_json()),
             "inputs": report["inputs"],
             "provenance": report["provenance"],
         }
