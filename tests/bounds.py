@@ -243,6 +243,22 @@ def triangular_solve(n: int, kappa: float, dtype: Any = np.float64) -> float:
     return 2 * e / (1 - e) if e < 1 else np.inf
 
 
+def triangular_backward(n: int, dtype: Any = np.float64) -> float:
+    """Componentwise backward error of a computed ``X = B T^-1`` (or ``T^-1 B``) for an n x n
+    triangular T: each row (column) x of X solves ``x (T + dT) = b`` with ``|dT| <= c |T|``,
+    so ``|B - X T| <= c |X| |T|`` entry by entry; this returns c.
+
+    Source: Higham 2002, Thm 8.5 (substitution, any order of the inner sums: c = gamma_n),
+    with one more rounding for BLAS kernels that multiply by a computed reciprocal of the
+    diagonal instead of dividing (gamma_{n+1}). Complex data: each complex operation errs by
+    at most sqrt(2) gamma_4 (division; multiplication sqrt(2) gamma_2), Higham 2002 Lemma 3.5,
+    which is below 6 real roundings, so gamma_{6(n+1)} (our reading; rigorous to first order).
+    No safety factor.
+    """
+    steps = n + 1
+    return gamma(6 * steps if np.dtype(dtype).kind == "c" else steps, dtype)
+
+
 @dataclass(frozen=True)
 class LstsqErrors:
     """First-order error bounds of one least-squares solve with a columnwise backward error.

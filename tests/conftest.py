@@ -37,6 +37,7 @@ NUMERICAL_MODULES = {
     "test_nist_strd.py",
     "test_numerics.py",
     "test_operations.py",
+    "test_segments.py",
     "test_sparse.py",
     "test_strategies.py",
     "test_update_guards.py",

@@ -66,8 +66,14 @@ def test_demo_reports_render_without_errors_in_chromium(tmp_path: Path, browser:
         "zero_points_tsqr": 4,  # parameters, refinement, residuals, spectrum
         "zero_points_cholqr2": 2,  # parameters, spectrum
         "levelling_cholqr2": 2,
+        "zero_points_nightly": 2,  # parameters, spectrum
     }
-    columns = {"zero_points_tsqr": 40, "zero_points_cholqr2": 40, "levelling_cholqr2": 240}
+    columns = {
+        "zero_points_tsqr": 40,
+        "zero_points_cholqr2": 40,
+        "levelling_cholqr2": 240,
+        "zero_points_nightly": 40,
+    }
     for name, page in pages.items():
         shot = tmp_path / f"{name}.png"
         result = browser.load(page.as_uri(), shot, FACTS, width=WIDTH)
@@ -101,3 +107,20 @@ def test_the_checker_sees_errors_on_a_broken_page(tmp_path: Path, browser: Any) 
     assert any("boom" in e for e in result.errors)
     assert any(e.startswith("exception") for e in result.errors)
     assert any(e.startswith("log") for e in result.errors), result.errors
+
+
+def test_a_windowed_nightly_report_renders_its_segments(tmp_path: Path, browser: Any) -> None:
+    """After the nightly demo's last step (an update whose window retired the first night),
+    the page loads cleanly and shows what the answer covers in its Segments section."""
+    from rowfold import demo, runner
+
+    folder = tmp_path / "demo"
+    demo.write_scenario(folder, rows=6000)
+    *_, last = runner.run_nights(folder / "zero_points_nightly.yaml", demo.night_rows(6000))
+    assert last.status == 0
+    page = last.output.with_name(last.output.with_suffix("").name + ".report.html")
+    result = browser.load(page.as_uri(), tmp_path / "nightly.png", FACTS, width=WIDTH)
+    assert result.errors == [], result.errors
+    assert "Segments" in result.facts["headings"]
+    assert result.facts["sideways"] is False
+    assert "2026-11-28" in page.read_text(encoding="utf-8")  # the retired night is named

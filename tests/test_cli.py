@@ -379,7 +379,7 @@ def test_inspect_result_store(
     """inspect prints JSON listing R (n x n) and x (n)."""
     job = setup_job(tmp_path, output={"path": f"out{suffix}"})
     assert run(capsys, "--quiet", "run", str(job), "--inline")[0] == 0
-    status, out, _ = run(capsys, "inspect", str(tmp_path / f"out{suffix}"))
+    status, out, _ = run(capsys, "inspect", "--json", str(tmp_path / f"out{suffix}"))
     assert status == 0
     info = json.loads(out)
     assert info["arrays"]["R"]["shape"] == [COLS, COLS]

@@ -27,6 +27,7 @@ def test_example_jobs_parse(job: Path) -> None:
         ("tarnholm_zero_points_tsqr.yaml", demo.JOB_TSQR),
         ("tarnholm_zero_points_cholqr2.yaml", demo.JOB_CHOLQR2),
         ("brackenholt_levelling_cholqr2.yaml", demo.JOB_LEVELLING),
+        ("tarnholm_zero_points_nightly.yaml", demo.JOB_NIGHTLY),
     ],
 )
 def test_demo_jobs_match_the_examples(example: str, text: str) -> None:

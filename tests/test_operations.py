@@ -152,6 +152,8 @@ def test_update_without_earlier_result_is_refused(
 def test_several_jobs_run_on_and_exit_with_the_worst_status(
     tmp_path: Path, capsys: pytest.CaptureFixture[str]
 ) -> None:
+    """A job that fails while running (a gate: exit 3) does not stop the others; an invalid
+    job stops the whole run before anything computes (exit 2)."""
     A = prescribed(300, 3, 10.0, seed=45)
     data = make_input(tmp_path, A, A[:, 0].copy(), ".h5")
     jobs = tmp_path / "jobs"
@@ -159,7 +161,7 @@ def test_several_jobs_run_on_and_exit_with_the_worst_status(
     good = {"input": {"path": str(data), "matrix": "A"}, "output": {"overwrite": True}}
     for name, extra in [
         ("a_good", {}),
-        ("b_missing_dataset", {"input": {"path": str(data), "matrix": "nope"}}),
+        ("b_gate_fails", {"gates": {"orthogonality": 1e-300}}),
         ("c_good", {}),
     ]:
         spec = {
@@ -168,13 +170,19 @@ def test_several_jobs_run_on_and_exit_with_the_worst_status(
             "output": {"path": str(tmp_path / f"{name}.h5"), "overwrite": True},
         }
         (jobs / f"{name}.yaml").write_text(yaml.safe_dump(spec), encoding="utf-8")
-    assert main(["--quiet", "run", str(jobs), "--inline"]) == 2
+    assert main(["--quiet", "run", str(jobs), "--inline"]) == 3
     out = capsys.readouterr().out
     assert "job summary:" in out
     assert (tmp_path / "a_good.h5").exists() and (tmp_path / "c_good.h5").exists()
     (tmp_path / "c_good.h5").unlink()
-    assert main(["--quiet", "run", str(jobs), "--inline", "--fail-fast"]) == 2
+    assert main(["--quiet", "run", str(jobs), "--inline", "--fail-fast"]) == 3
     assert not (tmp_path / "c_good.h5").exists()
+    spec = {**good, "input": {"path": str(data), "matrix": "nope"}}
+    (jobs / "b_gate_fails.yaml").write_text(yaml.safe_dump(spec), encoding="utf-8")
+    (tmp_path / "a_good.h5").unlink()
+    assert main(["--quiet", "run", str(jobs), "--inline"]) == 2
+    assert "none was run" in capsys.readouterr().err
+    assert not (tmp_path / "a_good.h5").exists()
 
 
 def test_inspect_shows_provenance(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
@@ -182,7 +190,7 @@ def test_inspect_shows_provenance(tmp_path: Path, capsys: pytest.CaptureFixture[
     job = write_job(tmp_path, make_input(tmp_path, A, A[:, 0].copy(), ".h5"))
     assert main(["--quiet", "run", str(job), "--inline"]) == 0
     capsys.readouterr()
-    assert main(["inspect", str(tmp_path / "result.h5")]) == 0
+    assert main(["inspect", "--json", str(tmp_path / "result.h5")]) == 0
     shown = json.loads(capsys.readouterr().out)
     prov = shown["attrs"]["provenance"]
     for key in ("rowfold", "numpy", "scipy", "dask", "h5py", "zarr", "blas", "host", "started"):

@@ -42,7 +42,8 @@ def test_threads_scheduler_forms_q_and_r_like_lapack(job_folder: Path, method: s
     assert_thin_qr(A, store["Q"], store["R"], limit)
     r_error = np.linalg.norm(store["R"] - lapack_r(A)) / np.linalg.norm(A, 2)
     assert r_error <= bounds.r_factor(6, 1e4)
-    finished = re.findall(r"^(.+): (\d+)/(\d+) tasks", log.getvalue(), flags=re.M)
+    line = r"^\S+ test-job: (.+): \d+% \((\d+)/(\d+) tasks\)"
+    finished = re.findall(line, log.getvalue(), flags=re.M)
     assert any(done == total for _, done, total in finished), log.getvalue()
     stages = {label for label, done, total in finished if done == total}
     assert {"fingerprint inputs", "verify and write rows"} < stages, stages  # and a factor stage
@@ -78,3 +79,24 @@ def test_threads_scheduler_does_not_start_distributed(job_folder: Path) -> None:
     )
     done = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=False)
     assert done.stdout.split()[-2:] == ["0", "False"], done.stderr
+
+
+@pytest.mark.parametrize("scheduler", ["threads", "distributed"])
+def test_a_run_leaves_the_callers_process_as_it_was(job_folder: Path, scheduler: str) -> None:
+    """BLAS thread limits and the ``distributed`` logger's level are the caller's again
+    after a run (rowfold limits BLAS and quiets distributed only while it runs)."""
+    import logging
+
+    from threadpoolctl import threadpool_info
+
+    def blas_threads() -> list[int]:
+        return [pool["num_threads"] for pool in threadpool_info()]
+
+    job_path = write_job(
+        job_folder, prescribed(400, 4, 10.0, seed=3), cluster={"scheduler": scheduler}
+    )
+    logging.getLogger("distributed").setLevel(logging.INFO)
+    before = blas_threads()
+    runner.run_job(runner.load_job(job_path), Progress())
+    assert blas_threads() == before
+    assert logging.getLogger("distributed").level == logging.INFO

@@ -16,16 +16,15 @@ import argparse
 import json
 import logging
 import sys
-import time
 import traceback
 from collections.abc import Sequence
 from pathlib import Path
 from typing import TYPE_CHECKING, Any, TextIO
 
 from rowfold import __version__, interrupts, testhooks
+from rowfold.progress import Progress, local_stamp
 
 if TYPE_CHECKING:
-    from rowfold.cluster import Progress
     from rowfold.runner import RunOutcome
 
 EXIT_INVALID, EXIT_RUN_FAILED = 2, 4  # as in rowfold.errors (imported later, it needs numpy)
@@ -37,15 +36,10 @@ def _parser() -> argparse.ArgumentParser:
         description="Out-of-core QR and least squares for tall-skinny matrices on disk.",
     )
     parser.add_argument("--version", action="version", version=f"rowfold {__version__}")
-    parser.add_argument("--debug", action="store_true", help="show tracebacks on errors")
-    parser.add_argument("--quiet", action="store_true", help="no progress, only errors")
-    parser.add_argument(
-        "--log-file",
-        type=Path,
-        default=None,
-        help="also append time-stamped progress, summaries and errors to this file",
-    )
-    verbs = parser.add_subparsers(dest="verb", required=True, metavar="VERB")
+    _global_options(parser, defaults=True)
+    common = argparse.ArgumentParser(add_help=False)
+    _global_options(common, defaults=False)
+    verbs = _Verbs(parser.add_subparsers(dest="verb", required=True, metavar="VERB"), common)
     run = verbs.add_parser("run", help="run jobs; write their result stores and reports")
     run.add_argument("jobs", type=Path, nargs="+", metavar="JOB", help="job files or folders")
     run.add_argument("--set", dest="overrides", action="append", default=[], metavar="KEY=VALUE")
@@ -78,7 +72,9 @@ def _parser() -> argparse.ArgumentParser:
     update.add_argument(
         "--inline", action="store_true", help="run in this process without a Dask cluster"
     )
+    update.add_argument("--label", default=None, help="label of the new segment (update.label)")
     _wait_lock_option(update)
+    _segment_verbs(verbs)
     check = verbs.add_parser("check", help="validate a job file and its inputs, compute nothing")
     check.add_argument("job", type=Path)
     check.add_argument("--set", dest="overrides", action="append", default=[], metavar="KEY=VALUE")
@@ -87,7 +83,100 @@ def _parser() -> argparse.ArgumentParser:
     demo.add_argument("--rows", type=int, default=None, help="observations (default 300000)")
     inspect = verbs.add_parser("inspect", help="describe an input file or a result store")
     inspect.add_argument("path", type=Path)
+    inspect.add_argument(
+        "--json", action="store_true", help="print every array, attribute and the report as JSON"
+    )
     return parser
+
+
+def _global_options(parser: argparse.ArgumentParser, defaults: bool) -> None:
+    """Add the options every verb takes, before or after the verb.
+
+    The copy after the verb has no defaults (``SUPPRESS``), so that it only overrides what
+    was given before the verb when it is given itself.
+    """
+
+    def default(value: Any) -> Any:
+        return value if defaults else argparse.SUPPRESS
+
+    parser.add_argument(
+        "--debug", action="store_true", default=default(False), help="show tracebacks on errors"
+    )
+    parser.add_argument(
+        "--quiet", action="store_true", default=default(False), help="no progress, only errors"
+    )
+    parser.add_argument(
+        "--log-file",
+        type=Path,
+        default=default(None),
+        help="also append time-stamped progress, summaries and errors to this file",
+    )
+
+
+class _Verbs:
+    """The verbs' sub-parsers, each taking the global options too."""
+
+    def __init__(self, actions: Any, common: argparse.ArgumentParser) -> None:
+        self.actions, self.common = actions, common
+
+    def add_parser(self, name: str, help: str) -> argparse.ArgumentParser:
+        """Add one verb."""
+        parser: argparse.ArgumentParser = self.actions.add_parser(
+            name, help=help, parents=[self.common]
+        )
+        return parser
+
+
+def _segment_verbs(verbs: Any) -> None:
+    """``replace`` and ``retire``: change one segment of an earlier result (rowfold.segments)."""
+    replace = verbs.add_parser("replace", help="read one segment's rows again and refactor them")
+    replace.add_argument("job", type=Path)
+    replace.add_argument("label", help="the segment's label")
+    retire = verbs.add_parser("retire", help="drop segments from the answer; reads no rows")
+    retire.add_argument("job", type=Path)
+    retire.add_argument("labels", nargs="+", metavar="LABEL", help="labels of the segments")
+    for parser in (replace, retire):
+        parser.add_argument(
+            "--set", dest="overrides", action="append", default=[], metavar="KEY=VALUE"
+        )
+        _wait_lock_option(parser)
+    replace.add_argument(
+        "--inline", action="store_true", help="run in this process without a Dask cluster"
+    )
+
+
+def _segment_line(outcome: RunOutcome) -> str:
+    """What a segment verb read and what the answer now covers."""
+    info = outcome.report.get("segments") or {}
+    step = info.get("step") or {}
+    ranges = ", ".join(f"{a}..{b - 1}" for a, b in step.get("rows_read", [])) or "none"
+    hashed = step.get("rows_checked_by_digest")
+    checked = f", hashed {hashed} old rows to check them" if hashed else ""
+    retired = f"; retired {', '.join(step['retired'])}" if step.get("retired") else ""
+    return (
+        f"{step.get('verb', 'run')}: read {step.get('rows_read_count', 0)} rows ({ranges})"
+        f"{checked}{retired}; the answer covers {info.get('rows_covered')} rows in "
+        f"{info.get('segments_covered')} segment(s): "
+        + ", ".join(s["label"] for s in info.get("covered", []))
+    )
+
+
+def _replace(args: argparse.Namespace, progress: Progress) -> int:
+    from rowfold import runner
+
+    job = runner.load_job(args.job, tuple(args.overrides))
+    outcome = runner.replace_job(job, args.label, progress, args.inline, args.wait_lock)
+    _say(_segment_line(outcome) + "\n" + _summary(outcome))
+    return outcome.status
+
+
+def _retire(args: argparse.Namespace, progress: Progress) -> int:
+    from rowfold import runner
+
+    job = runner.load_job(args.job, tuple(args.overrides))
+    outcome = runner.retire_job(job, list(args.labels), progress, args.wait_lock)
+    _say(_segment_line(outcome) + "\n" + _summary(outcome))
+    return outcome.status
 
 
 def _wait_lock_option(parser: argparse.ArgumentParser) -> None:
@@ -103,8 +192,13 @@ def _wait_lock_option(parser: argparse.ArgumentParser) -> None:
 _LOG: list[TextIO] = []  # the open --log-file, if any
 
 
+def _count(number: int, word: str, plural: str | None = None) -> str:
+    """``1 block``, ``3 blocks``."""
+    return f"{number} {word if number == 1 else plural or word + 's'}"
+
+
 def _log(message: str) -> None:
-    stamp = time.strftime("%Y-%m-%dT%H:%M:%S")
+    stamp = local_stamp()
     for handle in _LOG:
         handle.write("".join(f"{stamp} {line}\n" for line in message.splitlines()))
         handle.flush()
@@ -131,11 +225,13 @@ def _summary(outcome: RunOutcome) -> str:
     failed = [name for name, gate in report["gates"].items() if gate["held"] is False]
     unknown = [name for name, gate in report["gates"].items() if gate["held"] is None]
     lines = [
-        f"{report['name']}: {report['method']} on {report['rows']} x {report['cols']} "
-        f"in {report['blocks']} blocks, {report['passes_over_input']} passes over A",
+        f"{report['name']}:",
+        f"  {report['method']} on {report['rows']:,} x {report['cols']} "
+        f"in {_count(report['blocks'], 'block')}, "
+        f"{_count(report['passes_over_input'], 'pass', 'passes')} over A",
         f"  rank {report['rank']}, cond(R) {fmt(report['r_condition'])}, "
-        f"orthogonality loss {fmt(report['orthogonality_loss'])}, "
-        f"gram residual {fmt(report['gram_residual'])}",
+        f"orthogonality loss {fmt(report['orthogonality_loss'])}",
+        f"  gram residual {fmt(report['gram_residual'])}",
         f"  wrote {outcome.output}",
     ]
     lines += [f"  warning: {w}" for w in report.get("warnings", [])]
@@ -172,6 +268,10 @@ def _run(args: argparse.Namespace, progress: Progress) -> int:
     files = _job_files(args.jobs)
     if len(files) == 1:
         return _run_one(files[0], args, progress)
+    invalid = _invalid_jobs(files, args)
+    if invalid:
+        _error(f"rowfold: {_count(len(invalid), 'job')} of {len(files)} invalid; none was run")
+        return max(invalid)
     statuses: list[tuple[Path, int, str]] = []
     for path in files:
         status, note = _guarded(lambda p=path: _run_one(p, args, progress), args)
@@ -180,6 +280,18 @@ def _run(args: argparse.Namespace, progress: Progress) -> int:
             break
     _say("\n".join(["job summary:", *(f"  {s}  {p}  {n}".rstrip() for p, s, n in statuses)]))
     return max(status for _, status, _ in statuses)
+
+
+def _invalid_jobs(files: list[Path], args: argparse.Namespace) -> list[int]:
+    """Validate every job before the first computes; return the statuses of those that fail."""
+    from rowfold import runner
+
+    def validate(path: Path) -> int:
+        runner.validate_job(runner.load_job(path, tuple(args.overrides)))
+        return 0
+
+    statuses = [_guarded(lambda p=path: validate(p), args)[0] for path in files]
+    return [status for status in statuses if status != 0]
 
 
 def _guarded(action: Any, args: argparse.Namespace) -> tuple[int, str]:
@@ -219,14 +331,16 @@ def _compare(args: argparse.Namespace, progress: Progress) -> int:
 def _update(args: argparse.Namespace, progress: Progress) -> int:
     from rowfold import runner
 
-    job = runner.load_job(args.job, tuple(args.overrides))
+    label = () if args.label is None else (f"update.label={args.label}",)
+    job = runner.load_job(args.job, (*args.overrides, *label))
     try:
         outcome = runner.update_job(job, progress, inline=args.inline, wait_lock=args.wait_lock)
     except runner.NoNewRowsError as exc:
         _say(f"{exc}; nothing to do")
         return 0
     added = outcome.report["update"]["rows_added"]
-    _say(f"folded {added} new rows into the earlier result\n" + _summary(outcome))
+    _say(f"folded {added} new rows into the earlier result\n{_segment_line(outcome)}")
+    _say(_summary(outcome))
     return outcome.status
 
 
@@ -237,9 +351,11 @@ def _check(args: argparse.Namespace) -> int:
     summary = runner.check_job(job)
     _say(
         f"{args.job}: ok: {summary['rows']} x {summary['cols']} {summary['dtype']}, "
-        f"{summary['blocks']} blocks of {summary['rows_per_block']} rows, "
+        f"{_count(summary['blocks'], 'block')} of {_count(summary['rows_per_block'], 'row')}, "
         f"method {summary['method']}, output {summary['output']}"
     )
+    for warning in summary["warnings"]:
+        _say(f"  warning: {warning}")
     return 0
 
 
@@ -248,7 +364,7 @@ def _demo(args: argparse.Namespace, progress: Progress) -> int:
 
     worst = 0
     for outcome in runner.run_demo(args.dir, progress, rows=args.rows):
-        _say(_summary(outcome))
+        _say(_segment_line(outcome) + "\n" + _summary(outcome))
         worst = max(worst, outcome.status)
     return worst
 
@@ -256,7 +372,13 @@ def _demo(args: argparse.Namespace, progress: Progress) -> int:
 def _inspect(args: argparse.Namespace) -> int:
     from rowfold import runner
 
-    _say(json.dumps(runner.inspect_path(args.path), indent=2, default=str))
+    info = runner.inspect_path(args.path)
+    if args.json:
+        _say(json.dumps(info, indent=2, default=str))
+    else:
+        from rowfold.inspection import human_summary
+
+        _say(human_summary(info))
     return 0
 
 
@@ -296,8 +418,6 @@ def _main(argv: Sequence[str] | None) -> int:
         except OSError as exc:
             print(f"rowfold: error: --log-file {args.log_file}: {exc.strerror}", file=sys.stderr)
             return EXIT_INVALID
-    from rowfold.cluster import Progress
-
     progress = Progress(stream=None if args.quiet else sys.stderr, log=_LOG[0] if _LOG else None)
     notes = _NoteHandler(quiet=args.quiet)
     logging.getLogger("rowfold").addHandler(notes)
@@ -307,6 +427,7 @@ def _main(argv: Sequence[str] | None) -> int:
         _error(_interrupted_line(exc))
         return exc.exit_status
     finally:
+        progress.close()
         logging.getLogger("rowfold").removeHandler(notes)
         while _LOG:
             _LOG.pop().close()
@@ -335,6 +456,8 @@ def _dispatch(args: argparse.Namespace, progress: Progress) -> int:
             return _run(args, progress)
         if args.verb == "update":
             return _update(args, progress)
+        if args.verb in ("replace", "retire"):
+            return (_replace if args.verb == "replace" else _retire)(args, progress)
         if args.verb == "compare":
             return _compare(args, progress)
         if args.verb == "check":

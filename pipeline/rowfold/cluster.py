@@ -22,7 +22,6 @@ otherwise the run fails with :class:`RunError` naming what stopped answering.
 
 from __future__ import annotations
 
-import asyncio
 import collections
 import concurrent.futures
 import functools
@@ -32,15 +31,16 @@ import resource
 import sys
 import time
 from collections.abc import Awaitable, Callable, Iterator, Sequence
-from contextlib import contextmanager, suppress
+from contextlib import ExitStack, contextmanager, suppress
 from dataclasses import dataclass
-from typing import Any, TextIO
+from typing import Any
 
 import dask
 import dask.threaded
 from dask.callbacks import Callback
 
 from rowfold.errors import RowfoldError, RunError
+from rowfold.progress import REDRAW_SECONDS, Progress
 from rowfold.spec import ClusterSpec
 
 # Q blocks in flight at once when streaming (bounds client and worker memory).
@@ -61,55 +61,40 @@ def peak_rss_bytes() -> int:
 
 
 def limit_blas_threads(threads: int) -> None:
-    """Limit BLAS/OpenMP threads of this process (run inside each worker)."""
+    """Limit BLAS/OpenMP threads of this process (run inside each worker *process*)."""
     from threadpoolctl import threadpool_limits
 
     threadpool_limits(limits=threads)
 
 
-@dataclass
-class Progress:
-    """Progress display: a bar on a terminal, a plain line every ``interval`` s otherwise.
+@contextmanager
+def blas_limited(threads: int) -> Iterator[None]:
+    """Limit BLAS/OpenMP threads of this process while inside, then restore the caller's."""
+    from threadpoolctl import threadpool_limits
 
-    ``log``, when given, also receives a time-stamped plain line every ``interval`` s (and
-    at the end of each stage), whatever ``stream`` is (``--log-file``).
-    """
+    with threadpool_limits(limits=threads):
+        yield
 
-    stream: TextIO | None = None
-    interval: float = 10.0
-    log: TextIO | None = None
-    _last_log: float = 0.0
-    _finished: str = ""
 
-    def show(self, label: str, done: int, total: int, started: float) -> None:
-        """Print one progress update (a finished stage only once)."""
-        if done >= total:
-            if self._finished == f"{label}/{total}":
-                return
-            self._finished = f"{label}/{total}"
-        elapsed = time.monotonic() - started
-        self._log(label, done, total, elapsed)
-        if self.stream is None:
-            return
-        if self.stream.isatty():
-            width = 30
-            filled = int(width * done / max(total, 1))
-            bar = "#" * filled + "." * (width - filled)
-            self.stream.write(f"\r{label:<34} [{bar}] {done}/{total} {elapsed:6.1f}s")
-            if done >= total:
-                self.stream.write("\n")
-        else:
-            self.stream.write(f"{label}: {done}/{total} tasks, {elapsed:.1f}s\n")
-        self.stream.flush()
+@contextmanager
+def distributed_logs_quiet() -> Iterator[None]:
+    """Keep ``distributed``'s own log quiet while inside (rowfold reports task failures as
+    one line), then give the caller its level back."""
+    logger = logging.getLogger("distributed")
+    level = logger.level
+    logger.setLevel(logging.CRITICAL)
+    try:
+        yield
+    finally:
+        logger.setLevel(level)
 
-    def _log(self, label: str, done: int, total: int, elapsed: float) -> None:
-        now = time.monotonic()
-        if self.log is None or (done < total and now - self._last_log < self.interval):
-            return
-        self._last_log = now
-        stamp = time.strftime("%Y-%m-%dT%H:%M:%S")
-        self.log.write(f"{stamp} {label}: {done}/{total} tasks, {elapsed:.1f}s\n")
-        self.log.flush()
+
+def cpu_count() -> int:
+    """Cores this process may use: Dask's count, which honours CPU affinity and cgroup
+    quotas (``dask.system.CPU_COUNT``)."""
+    from dask.system import CPU_COUNT
+
+    return max(1, int(CPU_COUNT))
 
 
 class InlineEngine:
@@ -216,9 +201,7 @@ class _TaskProgress(Callback):
     def _posttask(self, key: Any, result: Any, dsk: Any, state: Any, worker_id: Any) -> None:
         self.done += 1
         now = time.monotonic()
-        stream = self.progress.stream
-        pause = 0.2 if stream is not None and stream.isatty() else self.progress.interval
-        if self.done >= self.total or now - self.shown >= pause:
+        if self.done >= self.total or now - self.shown >= REDRAW_SECONDS:
             self.shown = now
             self.progress.show(self.label, self.done, max(self.total, self.done), self.started)
 
@@ -292,6 +275,7 @@ class DistributedEngine:
         # worker address -> (last heartbeat time the scheduler reported, when we first saw it)
         self._heard: dict[str, tuple[Any, float]] = {}
         self._silent_workers: set[str] = set()
+        self._tally_name: str | None = None
 
     @property
     def address(self) -> str:
@@ -350,19 +334,82 @@ class DistributedEngine:
                 lambda: self.client.run(function, workers=targets),
             )
 
-    def _wait(self, futures: list[Any], label: str) -> None:
-        """Wait for futures, showing progress over every task of their graphs."""
-        if self.progress.stream is None:
+    def _wait(self, futures: list[Any], label: str, before: tuple[int, int] | None) -> None:
+        """Wait for futures, showing progress over every task of their graphs.
+
+        ``before`` is the scheduler's (received, finished) count for this client before
+        the graph was sent (:mod:`rowfold.tally`); without it, finished futures count.
+        """
+        if self.progress.stream is None and self.progress.log is None:
             self._wait_for_workers(futures)
             return
-        bar = _start_task_bar(futures, label, self.progress, self.client)
-        try:
-            self._wait_for_workers(futures)
-        finally:
-            _stop_task_bar(bar)
+        started = time.monotonic()
 
-    def _wait_for_workers(self, futures: list[Any]) -> None:
-        """Block until the futures finish, watching the cluster between short waits.
+        def tick() -> None:
+            done, total = self._counted(futures, before)
+            self.progress.show(label, done, total, started)
+
+        self._wait_for_workers(futures, tick)
+        if time.monotonic() - started > 0.05:
+            total = self._counted(futures, before)[1]
+            self.progress.show(label, total, total, started)
+
+    def _tally(self) -> tuple[int, int] | None:
+        """(tasks received, tasks finished) for this client, or None without the plugin."""
+        if self._tally_name is None:
+            return None
+        from rowfold.tally import tally_of
+
+        name, client = self._tally_name, self.client.id
+        try:
+            counts = self.ask(
+                "counting finished tasks",
+                lambda: self.client.run_on_scheduler(tally_of, name=name, client=client),
+            )
+        except RowfoldError:
+            raise
+        except Exception:
+            self._tally_name = None
+            return None
+        return int(counts[0]), int(counts[1])
+
+    def _counted(self, futures: list[Any], before: tuple[int, int] | None) -> tuple[int, int]:
+        """(done, total) tasks of the graph being waited for."""
+        now = self._tally() if before is not None else None
+        if now is None or before is None or now[0] <= before[0]:
+            return sum(future.done() for future in futures), len(futures)
+        total = now[0] - before[0]
+        return min(now[1] - before[1], total), total
+
+    def install_tally(self) -> None:
+        """Install :class:`rowfold.tally.TaskTally` on the scheduler (best effort)."""
+        from rowfold.tally import TaskTally
+
+        name = f"rowfold-tally-{self.client.id}"
+        try:
+            self.ask(
+                "installing the task counter",
+                lambda: self.client.register_plugin(TaskTally(), name=name),
+            )
+        except RowfoldError:
+            raise
+        except Exception:
+            return  # e.g. a scheduler that cannot import rowfold: count futures instead
+        self._tally_name = name
+
+    def remove_tally(self) -> None:
+        """Remove the task counter from the scheduler (best effort)."""
+        name, self._tally_name = self._tally_name, None
+        if name is not None and not self.scheduler_silent:
+            with suppress(Exception):
+                self.ask(
+                    "removing the task counter",
+                    lambda: self.client.unregister_scheduler_plugin(name),
+                )
+
+    def _wait_for_workers(self, futures: list[Any], tick: Callable[[], None] | None = None) -> None:
+        """Block until the futures finish, watching the cluster between short waits
+        (and calling ``tick`` after each, for progress).
 
         Raises
         ------
@@ -395,6 +442,8 @@ class DistributedEngine:
                     f"{self.patience.no_worker:g} s; start workers (or set "
                     f"{NO_WORKER_TIMEOUT_ENV} to wait longer) and run the job again"
                 )
+            if tick is not None:
+                tick()
             now_mark = (running, sum(future.done() for future in futures))
             if now_mark != mark:
                 mark, moved = now_mark, now
@@ -460,8 +509,10 @@ class DistributedEngine:
 
     def compute(self, tasks: Sequence[Any], label: str) -> list[Any]:
         """Compute on the cluster and gather the values."""
+        shown = self.progress.stream is not None or self.progress.log is not None
+        before = self._tally() if shown else None
         futures = self.client.compute(list(tasks))
-        self._wait(futures, label)
+        self._wait(futures, label, before)
         return self._gather(futures)
 
     def persist(self, tasks: Sequence[Any]) -> list[Any]:
@@ -488,16 +539,11 @@ class DistributedEngine:
             if nxt is not None:
                 pending.append(self.client.compute(nxt))
             done += 1
-            if time.monotonic() - last > (0.5 if self._tty else self.progress.interval):
+            if time.monotonic() - last > REDRAW_SECONDS:
                 self.progress.show(label, done, total, started)
                 last = time.monotonic()
             yield value
-        if time.monotonic() - started > 1.0:
-            self.progress.show(label, done, total, started)
-
-    @property
-    def _tty(self) -> bool:
-        return self.progress.stream is not None and self.progress.stream.isatty()
+        self.progress.show(label, done, total, started)
 
     def peak_memory_bytes(self) -> int:
         """Peak RSS of the client plus every worker process (each counted once)."""
@@ -505,45 +551,6 @@ class DistributedEngine:
         by_pid = {pid: peak for pid, peak in peaks.values()}
         by_pid[os.getpid()] = peak_rss_bytes()
         return int(sum(by_pid.values()))
-
-
-def _start_task_bar(
-    futures: list[Any], label: str, progress: Progress, client: Any
-) -> concurrent.futures.Future[None]:
-    """Start drawing progress over all tasks the futures depend on, on the client's loop.
-
-    The bar listens to the scheduler in the background, so the caller can keep watching
-    the workers while it waits.
-    """
-    from distributed.diagnostics.progressbar import ProgressBar
-
-    started = time.monotonic()
-    state = {"last": 0.0}
-
-    class _Bar(ProgressBar):
-        def _draw_bar(self, remaining: int, all: int, **kwargs: Any) -> None:
-            now = time.monotonic()
-            tty = progress.stream is not None and progress.stream.isatty()
-            wait = 0.2 if tty else progress.interval
-            if now - started > 1.0 and now - state["last"] >= wait:
-                state["last"] = now
-                progress.show(label, all - remaining, all, started)
-
-        def _draw_stop(self, **kwargs: Any) -> None:
-            if state["last"] and kwargs.get("status") == "finished":
-                total = int(kwargs.get("all", 1))
-                progress.show(label, total, total, started)
-
-    bar = _Bar(futures, scheduler=client.scheduler.address, interval="200ms")
-    return asyncio.run_coroutine_threadsafe(bar.listen(), client.loop.asyncio_loop)
-
-
-def _stop_task_bar(bar: concurrent.futures.Future[None]) -> None:
-    """Let the bar draw its last line, or stop it when the wait ended without the tasks."""
-    try:
-        bar.result(timeout=2.0)
-    except Exception:
-        bar.cancel()
 
 
 def _process_peak() -> tuple[int, int]:
@@ -627,33 +634,53 @@ def open_engine(spec: ClusterSpec, progress: Progress) -> Iterator[DistributedEn
         When the scheduler at ``cluster.address`` cannot be reached within
         ``cluster.timeout`` seconds.
     """
+    with distributed_logs_quiet():
+        if spec.address:
+            yield from _remote_engine(spec, progress)
+        else:
+            yield from _embedded_engine(spec, progress)
+
+
+def _remote_engine(spec: ClusterSpec, progress: Progress) -> Iterator[DistributedEngine]:
+    """An engine on the scheduler at ``cluster.address``."""
     from distributed import Client
 
-    # Task failures are reported by rowfold as one line; keep distributed's own logs quiet.
-    logging.getLogger("distributed").setLevel(logging.CRITICAL)
-    patience = Patience.of(spec)
-    if spec.address:
+    try:
+        client = Client(spec.address, timeout=f"{spec.timeout}s")
+    except OSError as exc:
+        raise RunError(
+            f"cluster.address {spec.address}: cannot connect to the Dask scheduler ({exc}); "
+            "check that it is running and reachable"
+        ) from None
+    engine = DistributedEngine(client, progress, Patience.of(spec))
+    try:
+        announce_dashboard(engine, progress)
+        engine.install_tally()
+        yield engine
+    finally:
+        engine.remove_tally()
+        _close(engine)
+
+
+def _embedded_engine(spec: ClusterSpec, progress: Progress) -> Iterator[DistributedEngine]:
+    """An engine on the embedded cluster; BLAS limited in its workers (worker threads share
+    this process: limited here only while the cluster runs)."""
+    from distributed import Client
+
+    with _embedded_cluster(spec) as (cluster, blas), ExitStack() as stack:
+        engine = DistributedEngine(Client(cluster), progress, Patience.of(spec))
         try:
-            client = Client(spec.address, timeout=f"{spec.timeout}s")
-        except OSError as exc:
-            raise RunError(
-                f"cluster.address {spec.address}: cannot connect to the Dask scheduler ({exc}); "
-                "check that it is running and reachable"
-            ) from None
-        engine = DistributedEngine(client, progress, patience)
-        try:
+            if spec.processes:
+                engine.ask(
+                    "limiting BLAS threads", lambda: engine.client.run(limit_blas_threads, blas)
+                )
+            else:
+                stack.enter_context(blas_limited(blas))
             announce_dashboard(engine, progress)
+            engine.install_tally()
             yield engine
         finally:
-            _close(engine)
-        return
-    with _embedded_cluster(spec) as (cluster, blas):
-        engine = DistributedEngine(Client(cluster), progress, patience)
-        try:
-            engine.ask("limiting BLAS threads", lambda: engine.client.run(limit_blas_threads, blas))
-            announce_dashboard(engine, progress)
-            yield engine
-        finally:
+            engine.remove_tally()
             _close(engine)
 
 
@@ -669,7 +696,7 @@ def _embedded_cluster(spec: ClusterSpec) -> Iterator[tuple[Any, int]]:
     """A ``LocalCluster`` on the loopback; yields it and the BLAS threads per worker."""
     from distributed import LocalCluster
 
-    cores = os.cpu_count() or 1
+    cores = cpu_count()
     workers, threads = local_layout(spec, cores)
     processes = bool(spec.processes)  # None (auto) is decided by the runner; threads here
     config: dict[str, Any] = {

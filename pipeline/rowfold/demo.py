@@ -14,6 +14,12 @@ distance. The board's datum benchmark (column 0) is held fixed at height 0
 are a dataset beside the network (``input.parameter_names``); the calibration's parameter
 names are a list in its job files.
 
+The Tarnholm office also keeps a nightly fit over its last two nights
+(:data:`JOB_NIGHTLY`): each night's observations are appended to one file and folded in as
+a segment (``update``); when a night is re-calibrated in place, only its rows are read
+again (``replace``); ``update.window: 2`` retires the oldest night as a new one arrives
+(:func:`write_nights`, the steps in :data:`NIGHT_STEPS`).
+
 The numbers of both are synthetic, drawn from fixed seeds, with known true parameters.
 """
 
@@ -89,6 +95,62 @@ gates:
   orthogonality: 1.0e-12
   gram: 1.0e-12
 """
+
+
+JOB_NIGHTLY = """\
+# Zero points over the last two nights, Tarnholm Ridge Survey Office (invented demo scenario).
+# Each night is one segment: `update --label NIGHT` adds it, `replace JOB NIGHT` reads a
+# re-calibrated night again, and the window retires the oldest night as a new one arrives.
+name: tarnholm-zero-points-nightly
+input:
+  path: data/tarnholm_nights.h5
+  matrix: calibration/design
+  rhs: calibration/offsets
+  rows_per_block: 5000
+method:
+  name: tsqr
+output:
+  path: results/zero_points_nightly.h5
+  overwrite: true
+update:
+  label: 2026-11-28
+  window: 2
+gates:
+  gram: 1.0e-12
+"""
+
+# The nightly demo: (verb, night label, nights in the file, nights re-calibrated).
+NIGHT_STEPS = (
+    ("run", "2026-11-28", 1, ()),
+    ("update", "2026-11-29", 2, ()),
+    ("replace", "2026-11-29", 2, ("2026-11-29",)),
+    ("update", "2026-11-30", 3, ("2026-11-29",)),
+)
+NIGHT_LABELS = ("2026-11-28", "2026-11-29", "2026-11-30")
+# A re-calibrated night: its offsets corrected by this many magnitudes (a revised
+# photometric standard), in place, the same rows.
+RECALIBRATION_MAG = -0.004
+
+
+def night_rows(rows: int | None) -> int:
+    """Observations per night: a quarter of the main calibration's (75,000 by default)."""
+    return max(2_000, (rows or DEFAULT_ROWS) // 4000 * 1000)
+
+
+def write_nights(folder: Path, nights: int, rows: int, recalibrated: tuple[str, ...] = ()) -> Path:
+    """Write the first ``nights`` nights into ``data/tarnholm_nights.h5`` (each night drawn
+    from its own seed; a re-calibrated night has its offsets corrected in place)."""
+    matrices, offsets = [], []
+    for night in range(nights):
+        matrix, offset = design(rows, seed=100 + night)
+        if NIGHT_LABELS[night] in recalibrated:
+            offset = offset + RECALIBRATION_MAG
+        matrices.append(matrix)
+        offsets.append(offset)
+    path = folder / "data" / "tarnholm_nights.h5"
+    arrays = {"calibration/design": np.vstack(matrices), "calibration/offsets": np.hstack(offsets)}
+    write_arrays(path, arrays, chunk_rows=5000)
+    return path
 
 
 def true_parameters() -> np.ndarray:
@@ -249,11 +311,13 @@ def write_scenario(folder: Path, rows: int | None = None) -> list[Path]:
     write_csr(
         levelling, "network/A", A, {"network/dh": dh, "network/w": w, "network/benchmarks": names}
     )
+    write_nights(folder, 1, night_rows(rows))  # the nightly job's first night
     jobs = []
     for name, text in (
         ("zero_points_tsqr.yaml", JOB_TSQR),
         ("zero_points_cholqr2.yaml", JOB_CHOLQR2),
         ("levelling_cholqr2.yaml", JOB_LEVELLING),
+        ("zero_points_nightly.yaml", JOB_NIGHTLY),
     ):
         path = folder / name
         path.write_text(text, encoding="utf-8")

@@ -127,7 +127,8 @@ def refine(
             task(refine_block, plan, i, x, dx, residual, fact.q_kernel, fact.q_recipes[i])
             for i in range(plan.blocks)
         ]
-        (sums,) = engine.compute([sum_tree(tasks, metrics.add_sums)], "refine")
+        label = f"refine pass {passes + 1} (at most {max_iterations})"
+        (sums,) = engine.compute([sum_tree(tasks, metrics.add_sums)], label)
         passes += 1
         if dx is not None:
             x = x + dx

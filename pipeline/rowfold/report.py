@@ -234,6 +234,40 @@ def _inputs(report: dict[str, Any]) -> str:
     )
 
 
+def _coverage(report: dict[str, Any]) -> str:
+    """Which segments and rows the answer covers, what this step read, and which figures
+    were not recomputed (after update, replace or retire; a run's one segment is in the
+    JSON report only)."""
+    info = report.get("segments")
+    if not info or (info.get("step") or {}).get("verb") == "run":
+        return ""
+    rows = "".join(
+        f"<tr><td class='mono'>{_esc(s.get('label'))}</td>"
+        f"<td class='num'>{_esc(s.get('first_row'))}..{_esc(int(s.get('stop_row', 0)) - 1)}</td>"
+        f"<td class='num'>{_esc(s.get('rows'))}</td><td>{_esc(s.get('how'))}</td>"
+        f"<td>{_esc(s.get('added'))}</td></tr>"
+        for s in info.get("covered", [])
+    )
+    table = (
+        "<table><tr><th>segment</th><th>rows</th><th>count</th><th>by</th><th>added</th></tr>"
+        f"{rows}</table>"
+    )
+    step = info.get("step") or {}
+    read = ", ".join(f"{a}..{b - 1}" for a, b in step.get("rows_read", [])) or "no rows"
+    retired = ", ".join(str(r.get("label")) for r in info.get("retired", [])) or "none"
+    missing = "".join(
+        f"<li><code>{_esc(name)}</code>: {_esc(why)}</li>"
+        for name, why in (info.get("not_recomputed") or {}).items()
+    )
+    skipped = f"<p>Not recomputed by this step:</p><ul>{missing}</ul>" if missing else ""
+    return (
+        f"<h2 id='segments'>Segments</h2><p>The answer covers {_esc(info.get('rows_covered'))} "
+        f"rows in {_esc(info.get('segments_covered'))} segments. This step "
+        f"(<code>{_esc(step.get('verb', 'run'))}</code>) read {_esc(read)}. "
+        f"Retired: {_esc(retired)}.</p>{table}{skipped}"
+    )
+
+
 def _first_hash(records: dict[str, Any]) -> str:
     return next((str(r.get("hash")) for r in records.values() if r.get("hash")), "digest")
 
@@ -537,6 +571,7 @@ def render_html(report: dict[str, Any]) -> str:
             _answer(report) + _figure(drawn, "answer"),
             _refinement(report) + _figure(drawn, "refinement"),
             _inputs(report),
+            _coverage(report),
             _quality(report),
             _model_test(report),
             _screening(report) + _figure(drawn, "screening"),

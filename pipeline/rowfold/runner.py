@@ -7,7 +7,6 @@ whole result is ready; the result store and its reports are committed together.
 from __future__ import annotations
 
 import json
-import os
 import time
 from collections.abc import Iterator
 from contextlib import ExitStack, contextmanager
@@ -17,13 +16,14 @@ from typing import Any
 
 import numpy as np
 
-from rowfold import __version__, quality, storage
+from rowfold import __version__, quality, segments, storage
 from rowfold.blocks import BlockPlan, expand_columns, plan_blocks
 from rowfold.cluster import (
     InlineEngine,
     Progress,
     ThreadedEngine,
-    limit_blas_threads,
+    blas_limited,
+    cpu_count,
     local_layout,
     open_engine,
 )
@@ -35,7 +35,7 @@ from rowfold.errors import (
     RowfoldError,
 )
 from rowfold.kernels import metrics
-from rowfold.methods import get_method
+from rowfold.methods import get_method, tsqr
 from rowfold.methods._graph import task
 from rowfold.methods.base import Context, Engine, Factorization
 from rowfold.provenance import provenance
@@ -61,6 +61,8 @@ __all__ = [
     "check_job",
     "inspect_path",
     "load_job",
+    "replace_job",
+    "retire_job",
     "run_job",
     "update_job",
 ]
@@ -125,6 +127,25 @@ def plan_job(job: Job) -> BlockPlan:
     return plan
 
 
+# Fewer rows per block than this many times the columns draws a warning (common practice:
+# a block's QR costs about 2 b n^2 flops and leaves an n x n factor to reduce, so below a
+# few n rows per block the reduction tree does as much work as the blocks).
+MIN_BLOCK_ROWS_PER_COLUMN = 4
+
+
+def block_warnings(plan: BlockPlan) -> list[str]:
+    """Warnings about the block size (too few rows per block for the columns)."""
+    least = MIN_BLOCK_ROWS_PER_COLUMN * plan.cols
+    if plan.blocks <= 1 or plan.per_block >= least:
+        return []
+    return [
+        f"input.rows_per_block: {plan.per_block} rows per block for {plan.cols} columns "
+        f"({plan.blocks} blocks) is fewer than {MIN_BLOCK_ROWS_PER_COLUMN}n = {least}; "
+        f"the reduction of the blocks' factors then costs as much as the blocks themselves; "
+        f"use at least {least} (or auto)"
+    ]
+
+
 def parameter_names(job: Job, plan: BlockPlan) -> tuple[str, ...]:
     """The name of every input column: from ``input.parameter_names`` (a list, or a 1-D
     dataset of text in the input file), else ``x0 .. x{n-1}``.
@@ -151,10 +172,22 @@ def parameter_names(job: Job, plan: BlockPlan) -> tuple[str, ...]:
     return given
 
 
-def check_job(job: Job) -> dict[str, Any]:
-    """Validate a job's inputs and output path without computing; return a summary."""
+def validate_job(job: Job) -> BlockPlan:
+    """Check what a job reads (shapes, types, names) without computing; return its plan.
+
+    Raises
+    ------
+    JobError, InputError
+        When a key or an input does not fit (exit 2).
+    """
     plan = plan_job(job)
     parameter_names(job, plan)
+    return plan
+
+
+def check_job(job: Job) -> dict[str, Any]:
+    """Validate a job's inputs and output path without computing; return a summary."""
+    plan = validate_job(job)
     with storage.open_output(job.output.path, job.output.overwrite, _inputs(job)):
         pass  # takes the lock and recovers an interrupted commit, like a run would
     return {
@@ -168,6 +201,7 @@ def check_job(job: Job) -> dict[str, Any]:
         "rows_per_block": plan.per_block,
         "method": job.method.name,
         "output": str(job.output.path),
+        "warnings": block_warnings(plan),
     }
 
 
@@ -218,6 +252,7 @@ def run_job(
     with clock.stage("plan"):
         plan = plan_job(job)
         names = parameter_names(job, plan)
+    progress.begin_job(job.name, plan.rows)
     with storage.open_output(job.output.path, job.output.overwrite, _inputs(job), wait_lock):
         try:
             outcome = _run_with_engine(job, plan, names, progress, inline, resume, clock, started)
@@ -301,11 +336,11 @@ def _engine(job: Job, progress: Progress, inline: bool) -> Iterator[Any]:
 @contextmanager
 def _threaded_engine(spec: ClusterSpec, progress: Progress) -> Iterator[ThreadedEngine]:
     """Dask's threaded scheduler in this process, one BLAS thread per worker thread."""
-    workers, threads = local_layout(spec, os.cpu_count() or 1)
-    limit_blas_threads(1)
+    workers, threads = local_layout(spec, cpu_count())
     engine = ThreadedEngine(progress, workers * threads)
     try:
-        yield engine
+        with blas_limited(1):
+            yield engine
     finally:
         engine.close()
         storage.close_open_inputs()
@@ -322,7 +357,7 @@ def _run_on(
 ) -> RunOutcome:
     """The part of a run that needs the engine."""
     engine = ctx.engine
-    extra: dict[str, Any] = {"warnings": []}
+    extra: dict[str, Any] = {"warnings": block_warnings(plan)}
     if plan.fixed_columns:
         extra["fixed_columns"] = _fixed_note(plan)
     scale = None
@@ -358,6 +393,10 @@ def _run_on(
         if scale is not None:
             extra["column_scaling"] = _scaling_figures(fact.R, scale)
         extra.update(_answer(plan, solution, stats, scale, names))
+        state = {**fact.sums, **check.sums, "input_digests": inputs}
+        state["segments"] = _run_segment(plan, fact, state, job.update.label)
+        step = {"verb": "run", "rows_read": [[0, plan.rows]], "rows_read_count": plan.rows}
+        extra["segments"] = segments.coverage(state["segments"], [], step, recomputed=True)
         report = quality.assemble_report(
             job=job,
             plan=plan,
@@ -377,7 +416,6 @@ def _run_on(
             },
         )
         with clock.stage("write"):
-            state = {**fact.sums, **check.sums, "input_digests": inputs}
             return _commit(writer, job, plan, fact, solution, stats, report, scale, state, names)
 
 
@@ -428,7 +466,9 @@ def compare_job(
 
     plan = plan_job(job)
     names = parameter_names(job, plan)
-    with _engine(job, progress or Progress(), inline) as engine:
+    progress = progress or Progress()
+    progress.begin_job(job.name, plan.rows)
+    with _engine(job, progress, inline) as engine:
         inputs = _fingerprints(job, plan, engine)
 
         def run(method_job: Job) -> RunOutcome:
@@ -449,17 +489,55 @@ def compare_job(
 def update_job(
     job: Job, progress: Progress | None = None, inline: bool = False, wait_lock: float = 0.0
 ) -> RunOutcome:
-    """Fold the rows appended since the earlier result into it (see :mod:`rowfold.update`).
+    """Fold the rows appended since the earlier result into it as a new segment (see
+    :mod:`rowfold.update` and :mod:`rowfold.segments`); with ``update.window`` retire the
+    segments older than the last ``window``.
 
     Raises
     ------
     InputError
         When there is no earlier result, a key that changes the answer differs from the
-        stored one, or the input no longer starts with the rows it consumed (run ``run``
-        instead).
+        stored one, the input no longer starts with the rows its live segments consumed, or
+        the label is taken (run ``run`` instead).
     """
     with storage.open_output(job.output.path, True, _inputs(job), wait_lock):
         return _update_held(job, progress, inline)
+
+
+@dataclass
+class _Earlier:
+    """An earlier result, read for update, replace or retire (its small arrays only)."""
+
+    state: dict[str, np.ndarray]
+    attrs: dict[str, Any]
+    plan: BlockPlan
+    names: tuple[str, ...]
+    rows_done: int
+    entries: list[segments.Entry]
+    retired: list[dict[str, Any]]
+
+
+def _earlier(job: Job, verb: str) -> _Earlier:
+    """Read the earlier result and check that this job may change it (reads no rows)."""
+    out = job.output.path
+    if not out.exists():
+        raise InputError(f"{out}: no earlier result to {verb}; run `rowfold run` first")
+    state, attrs = storage.read_state(out)
+    from rowfold import update
+
+    update.check_answer_keys(job, attrs, out)
+    plan = plan_job(job)
+    names = parameter_names(job, plan)
+    rows_done = int(attrs.get("rows_done", -1))
+    # replace checks the row count itself (more plainly); retire reads no rows at all
+    rows_ok = verb != "update" or 0 <= rows_done <= plan.rows
+    if "R" not in state or state["R"].shape[0] != plan.cols or not rows_ok:
+        raise InputError(
+            f"{out}: the earlier result does not match the input ({plan.rows} x {plan.cols}); "
+            f"run `rowfold run` instead of {verb}"
+        )
+    entries = segments.live_entries(out, state, attrs, plan.rhs is not None)
+    return _Earlier(state, attrs, plan, names, rows_done, entries, segments.retired_records(attrs))
 
 
 def _update_held(job: Job, progress: Progress | None, inline: bool) -> RunOutcome:
@@ -467,34 +545,188 @@ def _update_held(job: Job, progress: Progress | None, inline: bool) -> RunOutcom
     from rowfold import update
 
     out = job.output.path
-    if not out.exists():
-        raise InputError(f"{out}: no earlier result to update; run `rowfold run` first")
     started = time.time()
     clock = _Clock()
-    state, attrs = storage.read_state(out)
-    update.check_answer_keys(job, attrs, out)
-    plan = plan_job(job)
-    names = parameter_names(job, plan)
-    rows_done = int(attrs.get("rows_done", -1))
-    if "R" not in state or state["R"].shape[0] != plan.cols or not 0 <= rows_done <= plan.rows:
-        raise InputError(
-            f"{out}: the earlier result does not match the input ({plan.rows} x {plan.cols}); "
-            "run `rowfold run` instead of update"
-        )
+    old = _earlier(job, "update")
+    plan, rows_done = old.plan, old.rows_done
+    live = [(e.segment.first_row, e.segment.stop_row) for e in old.entries]
+    progress = progress or Progress()
+    progress.begin_job(job.name, 0)  # stages read old and new rows: no one rate
     with ExitStack() as stack:
-        engine = stack.enter_context(_engine(job, progress or Progress(), inline))
+        engine = stack.enter_context(_engine(job, progress, inline))
         with clock.stage("prefix_check"):
-            check = update.verify_prefix(plan, state, attrs, job.update, engine, out)
+            check = update.verify_prefix(plan, old.state, old.attrs, job.update, engine, out, live)
         if rows_done == plan.rows:
             raise NoNewRowsError(
                 f"{out}: no rows added since the earlier result ({rows_done} rows)"
             )
+        label = job.update.label or segments.default_label(rows_done, plan.rows)
+        segments.check_new_label(label, old.entries, old.retired)
         with clock.stage("factor"):
-            folded = update.fold(plan, state, attrs, engine)
+            scale = old.state["column_scale"]
+            rows = update.rows_plan(plan, rows_done, plan.rows, scale)
+            new = update.factor_rows(rows, engine, "update")
         with clock.stage("fingerprint"):
             added = _fingerprints(job, replace(plan, first_row=rows_done), engine)
         inputs = storage.extend_records(check.records, added)
-        return _commit_update(job, plan, names, folded, engine, clock, started, check, inputs)
+        segment = segments.Segment(
+            label=label,
+            first_row=rows_done,
+            stop_row=plan.rows,
+            rows_used=new.rows_used,
+            fingerprint=segments.fingerprint(inputs, rows_done, plan.rows),
+            added=segments.now(),
+            how="update",
+        )
+        entries = [*old.entries, segments.fresh_entry(segment, new.factor, new.gram)]
+        kept, dropped = segments.windowed(entries, job.update.window)
+        when = segments.now()
+        why = f"update.window: {job.update.window}"
+        retired = [*old.retired, *(segments.retire_record(e.segment, when, why) for e in dropped)]
+        step = {
+            "verb": "update",
+            "added": label,
+            "retired": [e.segment.label for e in dropped],
+            "rows_read": [[rows_done, plan.rows]],
+            "rows_read_count": plan.rows - rows_done,
+            "rows_checked_by_digest": check.report["rows_checked"],
+        }
+        extra = {
+            "update": {"rows_before": rows_done, "rows_added": plan.rows - rows_done},
+            "prefix_check": check.report,
+            "warnings": list(check.warnings),
+        }
+        change = _Change(kept, retired, step, inputs, plan.rows, extra, passes=1)
+        return _commit_segments(job, old, change, engine, clock, started)
+
+
+def replace_job(
+    job: Job,
+    label: str,
+    progress: Progress | None = None,
+    inline: bool = False,
+    wait_lock: float = 0.0,
+) -> RunOutcome:
+    """Read the rows of one segment again (changed in place) and refactor only them.
+
+    Raises
+    ------
+    InputError
+        When there is no earlier result, no live segment has the label, a key that changes
+        the answer differs, or the input's row count changed (a replacement keeps the
+        segment's rows where they were; rows appended since must wait for the next update).
+    """
+    with storage.open_output(job.output.path, True, _inputs(job), wait_lock):
+        return _replace_held(job, label, progress, inline)
+
+
+def _replace_held(job: Job, label: str, progress: Progress | None, inline: bool) -> RunOutcome:
+    """``replace_job`` while it holds the output."""
+    from rowfold import update
+
+    out = job.output.path
+    started = time.time()
+    clock = _Clock()
+    old = _earlier(job, "replace")
+    plan = old.plan
+    (index,) = segments.find(old.entries, [label], out)
+    segment = old.entries[index].segment
+    first, stop = segment.first_row, segment.stop_row
+    if plan.rows != old.rows_done:
+        raise InputError(
+            f"{plan.matrix.describe()}: holds {plan.rows} rows, the earlier result consumed "
+            f"{old.rows_done}; replace reads segment {label!r} (rows {first}..{stop - 1}) "
+            f"again in place, so its {segment.rows} rows and every later row must stay where "
+            "they were; run `rowfold run` for rows inserted or removed"
+        )
+    records = storage.stored_records(old.state, old.attrs)
+    if records is None:
+        raise InputError(
+            f"{out}: the earlier result holds no row-block digests; run `rowfold run` instead"
+        )
+    update.check_replace_records(plan, records, old.rows_done)
+    bounds = records["matrix"]["bounds"]
+    positions = update.block_range(bounds, first, stop, f"segment {label!r}")
+    with ExitStack() as stack:
+        engine = stack.enter_context(_engine(job, progress or Progress(), inline))
+        with clock.stage("factor"):
+            rows = update.rows_plan(plan, first, stop, old.state["column_scale"])
+            new = update.factor_rows(rows, engine, "replace")
+        with clock.stage("fingerprint"):
+            found = update.digest_blocks(plan, [tuple(bounds[i]) for i in positions], engine)
+        inputs = storage.replace_blocks(records, positions, found)
+        fingerprint = segments.fingerprint(inputs, first, stop)
+        renewed = segments.relabelled(
+            segment,
+            rows_used=new.rows_used,
+            fingerprint=fingerprint,
+            added=segments.now(),
+            how="replace",
+        )
+        entry = segments.fresh_entry(renewed, new.factor, new.gram)
+        kept = segments.with_segment(old.entries, index, entry)
+        step = {
+            "verb": "replace",
+            "replaced": label,
+            "rows_read": [[first, stop]],
+            "rows_read_count": stop - first,
+            "rows_changed": fingerprint != segment.fingerprint,
+            "other_segments_checked": False,
+        }
+        extra = {
+            "warnings": [
+                f"replace: only the rows of segment {label!r} were read; the rows of the "
+                "other segments were neither read nor checked (the next update checks them)"
+            ]
+        }
+        change = _Change(kept, old.retired, step, inputs, old.rows_done, extra, passes=1)
+        return _commit_segments(job, old, change, engine, clock, started)
+
+
+def retire_job(
+    job: Job,
+    labels: list[str],
+    progress: Progress | None = None,
+    wait_lock: float = 0.0,
+) -> RunOutcome:
+    """Drop segments from the answer, reading no rows: the store's R, x and statistics are
+    reduced again from the factors of the segments that remain.
+
+    Raises
+    ------
+    InputError
+        When there is no earlier result, a label names no live segment, or every live
+        segment would be retired.
+    """
+    with storage.open_output(job.output.path, True, _inputs(job), wait_lock):
+        return _retire_held(job, labels, progress)
+
+
+def _retire_held(job: Job, labels: list[str], progress: Progress | None) -> RunOutcome:
+    """``retire_job`` while it holds the output."""
+    out = job.output.path
+    started = time.time()
+    clock = _Clock()
+    old = _earlier(job, "retire")
+    indices = set(segments.find(old.entries, labels, out))
+    if len(indices) == len(old.entries):
+        raise InputError(
+            f"{out}: retiring {', '.join(repr(x) for x in labels)} would retire every live "
+            "segment and leave no rows; keep one, or run `rowfold run` on new rows"
+        )
+    kept = [e for i, e in enumerate(old.entries) if i not in indices]
+    when = segments.now()
+    gone = [segments.retire_record(old.entries[i].segment, when, "retire") for i in indices]
+    records = storage.stored_records(old.state, old.attrs) or {}
+    step = {
+        "verb": "retire",
+        "retired": [old.entries[i].segment.label for i in sorted(indices)],
+        "rows_read": [],
+        "rows_read_count": 0,
+    }
+    with _engine(job, progress or Progress(), True) as engine:
+        change = _Change(kept, [*old.retired, *gone], step, records, old.rows_done, {}, passes=0)
+        return _commit_segments(job, old, change, engine, clock, started)
 
 
 class NoNewRowsError(RowfoldError):
@@ -503,68 +735,106 @@ class NoNewRowsError(RowfoldError):
     exit_status = EXIT_OK
 
 
-def _commit_update(
-    job: Job,
-    plan: BlockPlan,
-    names: tuple[str, ...],
-    folded: Any,
-    engine: Engine,
-    clock: _Clock,
-    started: float,
-    check: Any,
-    inputs: dict[str, Any],
+@dataclass
+class _Change:
+    """What update, replace or retire makes of an earlier result's segments."""
+
+    kept: list[segments.Entry]
+    retired: list[dict[str, Any]]
+    step: dict[str, Any]
+    inputs: dict[str, Any]
+    rows_done: int
+    extra: dict[str, Any]
+    passes: int
+
+    @property
+    def verb(self) -> str:
+        """The verb making the change."""
+        return str(self.step["verb"])
+
+
+def _commit_segments(
+    job: Job, old: _Earlier, change: _Change, engine: Engine, clock: _Clock, started: float
 ) -> RunOutcome:
-    """Solve, report and commit an updated result (with what the prefix check proved and
-    the input digests extended by the new rows)."""
-    fact = folded.fact
+    """Reduce the live segments, solve, report and commit (the earlier result stays whole
+    until the commit completes)."""
+    plan = old.plan
+    with clock.stage("reduce"):
+        reduced = segments.reduce(change.kept)
+    n = plan.cols
+    whole = reduced.factor
+    qhb = whole[:n, n:] if plan.rhs is not None else None
+    factor = None if qhb is None else whole[n:, n:]
+    gram = reduced.gram
+    sums: dict[str, Any] = {"gram": gram, "a_fro2": float(np.real(np.trace(gram)))}
+    fact = Factorization(
+        R=whole[:n, :n],
+        qhb=qhb,
+        q_kernel=tsqr.q_block,
+        q_recipes=[],
+        passes=change.passes,
+        sums=sums,
+        details={"segments_reduced": reduced.segments, "reduction": "binary tree of QRs"},
+    )
+    view = replace(plan, first_row=0, rows=reduced.rows)  # the rows the answer covers
+    residual_sq = None if factor is None else np.sum(np.abs(factor) ** 2, axis=0)
     solution = stats = None
-    if fact.qhb is not None:
+    if fact.qhb is not None and residual_sq is not None:
         solution = solve(fact.R, fact.qhb, job.solve.rank_tolerance)
-        stats = statistics(solution, folded.residual_sq, folded.rows_used)
-    sums = {**fact.sums, "res2": folded.residual_sq}
+        stats = statistics(solution, residual_sq, reduced.rows_used)
+    scale = old.state["column_scale"]
+    coverage = segments.coverage(change.kept, change.retired, change.step, recomputed=False)
     extra = {
-        "warnings": [*check.warnings, *_update_warnings(job)],
-        "update": fact.details["update"],
-        "prefix_check": check.report,
+        **change.extra,
+        "warnings": [*change.extra.get("warnings", []), *_update_warnings(job, change.verb)],
+        "segments": coverage,
         "q_state": STALE_Q_TEXT,
-        "inputs": storage.public_record(inputs),
+        "inputs": storage.public_record(change.inputs),
         "provenance": provenance(started, time.time()),
         "caution": CAUTION,
-        **_answer(plan, solution, stats, folded.column_scale, names),
+        **_answer(plan, solution, stats, scale, old.names),
     }
     if plan.fixed_columns:
         extra["fixed_columns"] = _fixed_note(plan)
     report = quality.assemble_report(
         job=job,
-        plan=plan,
+        plan=view,
         fact=fact,
         solution=solution,
         stats=stats,
-        sums=sums,
+        sums={**sums, "res2": residual_sq},
         formed_q=False,
         seconds=clock.seconds,
         peak_memory=engine.peak_memory_bytes(),
-        passes=1,
+        passes=change.passes,
         extra=extra,
         unmeasured={"orthogonality_loss": UPDATE_NO_Q, "factorization_residual": UPDATE_NO_Q},
     )
-    state_sums = {**fact.sums, "rows_used": folded.rows_used, "input_digests": inputs}
-    if folded.residual_factor is not None:
-        factor = folded.residual_factor
+    state_sums = {
+        **sums,
+        "rows_used": reduced.rows_used,
+        "rows_done": change.rows_done,
+        "input_digests": change.inputs,
+        "segments": change.kept,
+        "retired_segments": change.retired,
+    }
+    if factor is not None:
         state_sums["rtr"] = factor.conj().T @ factor
     with storage.ResultWriter(job.output.path) as writer:
         writer.set_attrs({"q_state": STALE_Q_TEXT})
-        scale = folded.column_scale
-        return _commit(writer, job, plan, fact, solution, stats, report, scale, state_sums, names)
+        return _commit(
+            writer, job, view, fact, solution, stats, report, scale, state_sums, old.names
+        )
 
 
-def _update_warnings(job: Job) -> list[str]:
-    """What an update leaves out, since it does not read the earlier rows again."""
-    notes = ["update: Q and the orthogonality figures are not formed; see q_state"]
+def _update_warnings(job: Job, verb: str = "update") -> list[str]:
+    """What an update, replace or retire leaves out, since it does not read every covered
+    row again."""
+    notes = [f"{verb}: Q and the orthogonality figures are not formed; see q_state"]
     if job.solve.refine:
-        notes.append("update: solve.refine skipped (it needs a pass over all rows; use run)")
+        notes.append(f"{verb}: solve.refine skipped (it needs a pass over all rows; use run)")
     if job.solve.residuals:
-        notes.append("update: residual screening skipped (it needs all rows; use run)")
+        notes.append(f"{verb}: residual screening skipped (it needs all rows; use run)")
     return notes
 
 
@@ -861,11 +1131,55 @@ def _write_state(
     writer.put("state/column_scale", np.ones(plan.cols) if scale is None else scale)
     for name, array in storage.digest_arrays(sums["input_digests"]).items():
         writer.put(f"state/{name}", array)
+    entries = sums["segments"]
+    _write_segments(writer, entries, sums.get("retired_segments", []))
     writer.set_attrs(
         {
-            "rows_done": plan.rows,
+            "rows_done": int(sums.get("rows_done", plan.rows)),
             "a_fro2": float(sums["a_fro2"]),
             "rows_used": int(sums.get("rows_used", plan.rows)),
+        }
+    )
+
+
+def _run_segment(
+    plan: BlockPlan, fact: Factorization, sums: dict[str, Any], label: str | None
+) -> list[segments.Entry]:
+    """A run's rows as the store's one segment: the factor of ``[A | b]`` from R, ``Q^H b``
+    and the residual Gram the verification pass summed, and the Gram of A."""
+    residual = None
+    if fact.qhb is not None and "rtr" in sums:
+        residual = residual_factor(np.asarray(sums["rtr"]))
+    factor = segments.augmented(fact.R, fact.qhb, residual)
+    segment = segments.Segment(
+        label=label or segments.default_label(plan.first_row, plan.rows),
+        first_row=plan.first_row,
+        stop_row=plan.rows,
+        rows_used=int(sums.get("rows_used", plan.rows)),
+        fingerprint=segments.fingerprint(sums["input_digests"], plan.first_row, plan.rows),
+        added=segments.now(),
+        how="run",
+    )
+    return [segments.fresh_entry(segment, factor, np.asarray(sums["gram"]))]
+
+
+def _write_segments(
+    writer: storage.ResultWriter, entries: list[Any], retired: list[dict[str, Any]]
+) -> None:
+    """Write each live segment's factor and Gram (one item each, read back one at a time)
+    and the segment records (:mod:`rowfold.segments`)."""
+    count = len(entries)
+    for i, entry in enumerate(entries):
+        factor, gram = entry.load()
+        if i == 0:
+            writer.create(segments.FACTORS, (count, *factor.shape), factor.dtype, 1)
+            writer.create(segments.GRAMS, (count, *gram.shape), gram.dtype, 1)
+        writer.write_rows(segments.FACTORS, i, factor[None])
+        writer.write_rows(segments.GRAMS, i, gram[None])
+    writer.set_attrs(
+        {
+            "segments": [e.segment.as_dict() for e in entries],
+            "retired_segments": retired,
         }
     )
 
@@ -887,8 +1201,6 @@ def inspect_path(path: str | Path) -> dict[str, Any]:
     info = storage.describe_path(target)
     json_path, _ = storage.report_paths(target)
     if json_path.exists():
-        import json
-
         info["report"] = json.loads(json_path.read_text(encoding="utf-8"))
     return info
 
@@ -896,8 +1208,28 @@ def inspect_path(path: str | Path) -> dict[str, Any]:
 def run_demo(
     folder: Path, progress: Progress | None = None, rows: int | None = None
 ) -> Iterator[RunOutcome]:
-    """Write the demo scenario into ``folder`` and run each of its jobs in turn."""
-    from rowfold.demo import write_scenario
+    """Write the demo scenario into ``folder`` and run each of its jobs in turn; the
+    nightly job runs its nights (:data:`rowfold.demo.NIGHT_STEPS`): a run, an added night,
+    a replaced night and an added night that the window makes retire the first."""
+    from rowfold import demo
 
-    for path in write_scenario(Path(folder), rows):
+    for path in demo.write_scenario(Path(folder), rows):
+        if path.name == "zero_points_nightly.yaml":
+            yield from run_nights(path, demo.night_rows(rows), progress)
+            continue
         yield run_job(load_job(path), progress)
+
+
+def run_nights(job_path: Path, rows: int, progress: Progress | None = None) -> Iterator[RunOutcome]:
+    """The nightly demo's steps, writing each night's rows before the step that reads them."""
+    from rowfold import demo
+
+    for verb, label, nights, recalibrated in demo.NIGHT_STEPS:
+        demo.write_nights(job_path.parent, nights, rows, recalibrated)
+        job = load_job(job_path, (f"update.label={label}",))
+        if verb == "run":
+            yield run_job(job, progress)
+        elif verb == "update":
+            yield update_job(job, progress)
+        else:
+            yield replace_job(job, label, progress)

@@ -7,6 +7,7 @@ Relative paths resolve against the folder of the job file.
 
 from __future__ import annotations
 
+import datetime
 import json
 import math
 import os
@@ -233,10 +234,17 @@ class UpdateSpec:
         old blocks (always the last), which the report and a warning say.
     sample_fraction : float
         With ``verify: sample``, the share of old row blocks checked, in (0, 1].
+    label : str or None
+        The label of the segment a run or update adds (``update --label``); None gives
+        ``rows-<first>-<last>`` (see :mod:`rowfold.segments`).
+    window : int or None
+        Keep only the last ``window`` segments: ``update`` retires older ones itself.
     """
 
     verify: str = "all"
     sample_fraction: float = 0.1
+    label: str | None = None
+    window: int | None = None
 
 
 @dataclass(frozen=True, slots=True)
@@ -380,11 +388,32 @@ def _key_lines(
             _key_lines(item, path, lines, file, seen)
 
 
+class _Yaml12Loader(yaml.SafeLoader):
+    """PyYAML's safe loader, reading numbers as YAML 1.2 does.
+
+    PyYAML follows YAML 1.1, where a float needs a dot, so ``1e-12`` would be read as a
+    string. YAML 1.2's core schema (section 10.3.2) also takes ``1e-12``, ``5E3`` and
+    ``.5``; this loader adds that pattern to the 1.1 ones, so nothing read before changes.
+    """
+
+
+_Yaml12Loader.add_implicit_resolver(
+    "tag:yaml.org,2002:float",
+    re.compile(r"^[-+]?(?:\.[0-9]+|[0-9]+(?:\.[0-9]*)?)(?:[eE][-+]?[0-9]+)?$"),
+    list("-+0123456789."),
+)
+
+
+def _yaml_value(text: str) -> Any:
+    """Parse YAML text (one document) with :class:`_Yaml12Loader`."""
+    return yaml.load(text, Loader=_Yaml12Loader)
+
+
 def _parse_text(text: str, file: Path) -> tuple[Any, dict[tuple[str, ...], int]]:
     """Parse YAML text with the safe loader; return the data and the key lines."""
     try:
-        root = yaml.compose(text, Loader=yaml.SafeLoader)
-        data = yaml.load(text, Loader=yaml.SafeLoader)
+        root = yaml.compose(text, Loader=_Yaml12Loader)
+        data = _yaml_value(text)
     except yaml.MarkedYAMLError as exc:
         mark = exc.problem_mark
         where = f"line {mark.line + 1} column {mark.column + 1}" if mark else "somewhere"
@@ -421,7 +450,7 @@ def _apply_override(doc: _Doc, override: str) -> None:
     if not sep or not keypath:
         raise JobError(f"--set {override!r}: expected key.path=value, e.g. method.name=cholqr2")
     try:
-        value = yaml.safe_load(raw) if raw.strip() else None
+        value = _yaml_value(raw) if raw.strip() else None
     except yaml.YAMLError:
         value = raw
     node: dict[str, Any] = doc.data
@@ -801,11 +830,24 @@ def _share(value: Any) -> float:
     return float(value)
 
 
+def _label(value: Any) -> str:
+    """A segment label: one line of text (a YAML date or number is taken as its text)."""
+    if isinstance(value, bool) or not isinstance(value, str | int | datetime.date):
+        raise TypeError("expected a label: one line of text, e.g. a night's date")
+    text = str(value).strip()
+    if not text or "\n" in text or len(text) > 100:
+        raise ValueError("expected a label of 1 to 100 characters on one line")
+    return text
+
+
 def _parse_update(doc: _Doc) -> UpdateSpec:
-    section = _Section(doc, ("update",), ("verify", "sample_fraction"))
+    keys = ("verify", "sample_fraction", "label", "window")
+    section = _Section(doc, ("update",), keys)
     return UpdateSpec(
         verify=section.get("verify", _one_of(VERIFY_MODES), "all"),
         sample_fraction=section.get("sample_fraction", _share, 0.1),
+        label=section.get("label", _label),
+        window=section.get("window", _count),
     )
 
 
@@ -886,10 +928,11 @@ def _parse_cluster(doc: _Doc, base: Path) -> ClusterSpec:
 
 
 def usable_cores() -> int:
-    """Cores this process may run on (its CPU affinity, else the machine's count)."""
-    if hasattr(os, "sched_getaffinity"):
-        return max(1, len(os.sched_getaffinity(0)))
-    return os.cpu_count() or 1
+    """Cores this process may use: ``dask.system.CPU_COUNT`` (CPU affinity and cgroup
+    quotas), the count the embedded cluster is sized from."""
+    from dask.system import CPU_COUNT
+
+    return max(1, int(CPU_COUNT))
 
 
 def _check_local_counts(doc: _Doc, spec: ClusterSpec) -> None:

@@ -1,17 +1,18 @@
-"""``rowfold update``: fold newly appended rows into an earlier result.
+"""``rowfold update`` (and ``replace``): factor a range of rows as one segment.
 
-The earlier result keeps, under ``state/``, the augmented triangular factor of ``[A | b]``:
-R, ``Q^H b`` and a residual factor F (``F^H F = r^H r``), plus ``A^H A``. New rows
-``[rows_done, m)`` are factored by Householder TSQR as ``[A_new | b_new]``, and the two
-augmented factors are reduced by one more stacked-R step (the TSQR reduction), so the result
-equals a full refactorization up to rounding, without reading the old rows again.
+The earlier result keeps, per segment, the triangular factor of that segment's ``[A | b]``
+(:mod:`rowfold.segments`). ``update`` factors the new rows ``[rows_done, m)`` by Householder
+TSQR as ``[A_new | b_new]`` (:func:`factor_rows`) into a new segment; ``replace`` factors one
+segment's rows again. The store's answer is then reduced from the live segments' factors
+(a TSQR reduction), so it equals a full refactorization up to rounding, without reading the
+other rows again.
 
-Before that, two things must hold, or the update is refused (exit 2) and ``run`` is the way:
+Before an update, two things must hold, or it is refused (exit 2) and ``run`` is the way:
 
 * every job key that changes the answer (:data:`ANSWER_KEYS`) equals the one the earlier
   result was computed with (:func:`check_answer_keys`);
-* the inputs still start with the rows the earlier result consumed: every old row block of
-  every input is hashed again and compared with the digests the earlier result recorded
+* the inputs still hold the rows the live segments consumed: every such row block of every
+  input is hashed again and compared with the digests the earlier result recorded
   (:func:`verify_prefix`; :mod:`rowfold.storage.digests`). ``update.verify: sample`` checks
   only a share of the blocks, and the report says exactly which.
 
@@ -35,11 +36,12 @@ import numpy as np
 from rowfold import storage
 from rowfold.blocks import BlockPlan
 from rowfold.errors import InputError
-from rowfold.kernels import positive_diagonal, stacked_r
+from rowfold.kernels import positive_diagonal
 from rowfold.methods import tsqr
 from rowfold.methods._graph import task
-from rowfold.methods.base import Engine, Factorization
+from rowfold.methods.base import Engine
 from rowfold.spec import Job, UpdateSpec
+from rowfold.storage.digests import RangeDigest
 
 
 @dataclass(frozen=True)
@@ -152,12 +154,15 @@ def verify_prefix(
     spec: UpdateSpec,
     engine: Engine,
     output: Path,
+    live: list[tuple[int, int]] | None = None,
 ) -> PrefixCheck:
     """Check that the inputs still start with the rows the earlier result consumed.
 
     Every old row block of every input (``update.verify: all``), or a random share of them
     that always holds the last (``sample``), is hashed again on the workers and compared
-    with the digests the earlier result recorded.
+    with the digests the earlier result recorded. With ``live`` (the row ranges of the
+    live segments), blocks of retired segments are not checked: their rows no longer take
+    part in the answer, and may have changed.
 
     Raises
     ------
@@ -177,7 +182,8 @@ def verify_prefix(
     sources = _sources(plan)
     _check_records(sources, records, rows_done)
     bounds = [(int(a), int(b)) for a, b in records["matrix"]["bounds"]]
-    chosen, seed = _chosen_blocks(len(bounds), spec)
+    candidates = _live_blocks(bounds, live)
+    chosen, seed = _chosen_blocks(candidates, spec)
     refs = tuple(sources.values())
     tasks = [task(storage.block_digests, refs, *bounds[i]) for i in chosen]
     found = engine.compute(tasks, "update: check the old rows")
@@ -196,9 +202,11 @@ def verify_prefix(
             tallies[name][1] += digest.decoded
     checked = sum(bounds[i][1] - bounds[i][0] for i in chosen)
     report = _check_report(sources, tallies, spec, bounds, chosen, seed, rows_done, checked)
+    retired = rows_done - sum(bounds[i][1] - bounds[i][0] for i in candidates)
+    report["rows_retired_not_checked"] = retired
     report["seconds"] = round(time.perf_counter() - started, 4)
     warnings = []
-    if checked < rows_done:
+    if checked < rows_done - retired:
         warnings.append(
             f"update.verify: sample: {rows_done - checked} of the {rows_done} old rows were "
             f"not checked ({len(chosen)} of {len(bounds)} row blocks were); a change there "
@@ -240,14 +248,27 @@ def _check_records(
             )
 
 
-def _chosen_blocks(blocks: int, spec: UpdateSpec) -> tuple[list[int], int | None]:
+def _live_blocks(bounds: list[tuple[int, int]], live: list[tuple[int, int]] | None) -> list[int]:
+    """The old blocks that lie in a live segment (every block without segments)."""
+    if live is None:
+        return list(range(len(bounds)))
+    return [
+        i
+        for i, (start, stop) in enumerate(bounds)
+        if any(first <= start and stop <= last for first, last in live)
+    ]
+
+
+def _chosen_blocks(candidates: list[int], spec: UpdateSpec) -> tuple[list[int], int | None]:
     """The old blocks to check: all, or a random share holding the last (and the seed)."""
-    if spec.verify == "all":
-        return list(range(blocks)), None
+    if spec.verify == "all" or not candidates:
+        return list(candidates), None
     seed = secrets.randbits(63)
+    blocks = len(candidates)
     wanted = max(1, math.ceil(spec.sample_fraction * blocks))
     others = np.random.default_rng(seed).permutation(blocks - 1)[: wanted - 1]
-    return sorted({blocks - 1, *(int(i) for i in others)}), seed
+    picked = {blocks - 1, *(int(i) for i in others)}
+    return sorted(candidates[i] for i in picked), seed
 
 
 def _check_report(
@@ -291,66 +312,77 @@ def _check_report(
     return report
 
 
-def new_rows_plan(plan: BlockPlan, rows_done: int, scale: np.ndarray) -> BlockPlan:
-    """The plan restricted to rows ``[rows_done, m)``, with the earlier column scaling."""
+def rows_plan(plan: BlockPlan, first_row: int, stop_row: int, scale: np.ndarray) -> BlockPlan:
+    """The plan restricted to rows ``[first_row, stop_row)``, with the earlier column
+    scaling (a segment's rows are folded exactly as the earlier ones were)."""
     column_scale = None if np.all(scale == 1) else tuple(float(v) for v in scale)
-    return replace(plan, first_row=rows_done, column_scale=column_scale)
-
-
-def augmented(state: dict[str, np.ndarray], n: int) -> np.ndarray:
-    """The stored augmented factor ``[[R, Q^H b], [0, F]]``."""
-    R = state["R"]
-    if "qhb" not in state:
-        return R
-    qhb, factor = state["qhb"], state["residual_factor"]
-    k = qhb.shape[1]
-    out = np.zeros((n + k, n + k), dtype=np.result_type(R, qhb, factor))
-    out[:n, :n], out[:n, n:], out[n:, n:] = R, qhb, factor
-    return out
+    return replace(plan, first_row=first_row, rows=stop_row, column_scale=column_scale)
 
 
 @dataclass(frozen=True)
-class Folded:
-    """The combined factorization and what the report needs about it."""
+class SegmentFactor:
+    """One segment's rows, factored: what :mod:`rowfold.segments` keeps of them.
 
-    fact: Factorization
-    residual_factor: np.ndarray | None
+    Attributes
+    ----------
+    factor : ndarray (n+k, n+k)
+        Upper triangular factor of the rows' ``[A | b]`` (weighted, scaled, fixed columns
+        left out), diagonal real and non-negative.
+    gram : ndarray (n, n)
+        ``A^H A`` of the rows, summed blockwise.
+    rows_used : int
+        Rows with non-zero weight.
+    """
+
+    factor: np.ndarray
+    gram: np.ndarray
     rows_used: int
-    new_rows: int
-    column_scale: np.ndarray
-
-    @property
-    def residual_sq(self) -> np.ndarray | None:
-        """||r_j||^2 per right-hand side, from the residual factor's columns."""
-        if self.residual_factor is None:
-            return None
-        return np.asarray(np.sum(np.abs(self.residual_factor) ** 2, axis=0))
 
 
-def fold(
-    plan: BlockPlan, state: dict[str, np.ndarray], attrs: dict[str, Any], engine: Engine
-) -> Folded:
-    """Factor the new rows and reduce them with the stored factor."""
+def factor_rows(plan: BlockPlan, engine: Engine, label: str) -> SegmentFactor:
+    """Factor the rows of ``plan`` (a row range, :func:`rows_plan`) as ``[A | b]`` by
+    Householder TSQR on the engine; read each of its blocks once (twice with weights,
+    which are counted in a second small pass)."""
     n = plan.cols
-    rows_done = int(attrs["rows_done"])
-    new_plan = new_rows_plan(plan, rows_done, state["column_scale"])
-    new = tsqr.factor_source(AugmentedSource(new_plan), "binary", engine, False, "update")
-    used_tasks = [task(count_used_rows, new_plan, i) for i in range(new_plan.blocks)]
-    used_new = sum(engine.compute(used_tasks, "update: count rows"))
-    combined, _, _ = stacked_r([(augmented(state, n), None), (new.R, None)], keep_q=False)
-    whole, _ = positive_diagonal(combined)
-    R, qhb = whole[:n, :n], (whole[:n, n:] if plan.rhs is not None else None)
-    factor = None if qhb is None else whole[n:, n:]
-    gram = state["gram"] + new.sums["gram"][:n, :n]
-    sums = {"gram": gram, "a_fro2": float(np.real(np.trace(gram)))}
-    fact = Factorization(
-        R=R,
-        qhb=qhb,
-        q_kernel=tsqr.q_block,
-        q_recipes=[],
-        passes=1,
-        sums=sums,
-        details={"update": {"rows_before": rows_done, "rows_added": plan.rows - rows_done}},
-    )
-    used = int(attrs.get("rows_used", rows_done)) + used_new
-    return Folded(fact, factor, used, plan.rows - rows_done, state["column_scale"])
+    new = tsqr.factor_source(AugmentedSource(plan), "binary", engine, False, label)
+    used = plan.rows - plan.first_row
+    if plan.weights is not None:
+        used_tasks = [task(count_used_rows, plan, i) for i in range(plan.blocks)]
+        used = sum(engine.compute(used_tasks, f"{label}: count rows"))
+    factor, _ = positive_diagonal(new.R)
+    return SegmentFactor(factor, np.asarray(new.sums["gram"][:n, :n]), int(used))
+
+
+def block_range(bounds: list[list[int]], first_row: int, stop_row: int, what: str) -> list[int]:
+    """Positions of the recorded row blocks that tile ``[first_row, stop_row)`` exactly.
+
+    Raises
+    ------
+    InputError
+        When the recorded blocks do not fall on the range's ends.
+    """
+    inside = [i for i, (a, b) in enumerate(bounds) if first_row <= a and b <= stop_row]
+    covered = sum(bounds[i][1] - bounds[i][0] for i in inside)
+    if covered != stop_row - first_row:
+        raise InputError(
+            f"{what}: the earlier result's row-block digests do not fall on rows "
+            f"{first_row}..{stop_row - 1}; run `rowfold run` instead"
+        )
+    return inside
+
+
+def check_replace_records(plan: BlockPlan, records: dict[str, Any], rows_done: int) -> None:
+    """Refuse digest records that a replacement could not extend truthfully: missing,
+    incomplete, or taken under another storage layout (as :func:`verify_prefix` does)."""
+    _check_records(_sources(plan), records, rows_done)
+
+
+def digest_blocks(
+    plan: BlockPlan, bounds: list[tuple[int, int]], engine: Engine
+) -> dict[str, list[RangeDigest]]:
+    """Digest the given row blocks of every input of a plan (on the workers), by input."""
+    sources = _sources(plan)
+    refs = tuple(sources.values())
+    tasks = [task(storage.block_digests, refs, start, stop) for start, stop in bounds]
+    found = engine.compute(tasks, "replace: fingerprint the rows")
+    return {name: [digests[i] for digests in found] for i, name in enumerate(sources)}

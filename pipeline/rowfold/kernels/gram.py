@@ -6,6 +6,7 @@ import numpy as np
 from numpy.linalg import LinAlgError
 from scipy.linalg import blas, lapack
 
+from rowfold.kernels import nogil
 from rowfold.kernels.householder import as_columns
 from rowfold.kernels.nogil import rank_k_upper
 
@@ -17,6 +18,16 @@ def block_gram(block: np.ndarray) -> np.ndarray:
     is copied.
     """
     return hermitian_from_upper(gram_upper(block))
+
+
+# syrk/herk, not gemm, for every width: measured on this project's 2-core AMD EPYC machine
+# (OpenBLAS 0.3.31, SkylakeX kernel, one BLAS thread, 4 blocks of 65,536 rows, best of 3,
+# benchmarks/kernel_choices.py, machine shared with other jobs so +-20%), seconds for 4 blocks:
+#   n =  16: syrk 0.015, numpy A.T @ A 0.019, gemm 0.022
+#   n =  64: syrk 0.095, numpy A.T @ A 0.111, gemm 0.134
+#   n = 256: syrk 0.98,  numpy A.T @ A 0.88,  gemm 1.79
+# numpy's A.T @ A is itself syrk for real data (numpy spots the transpose) plus filling the
+# lower triangle; a true gemm does twice the flops and is slower at each width.
 
 
 def gram_upper(block: np.ndarray) -> np.ndarray:
@@ -63,12 +74,29 @@ def cholesky_upper(gram: np.ndarray) -> np.ndarray:
     return np.asarray(factor)
 
 
-def solve_right_upper(block: np.ndarray, R: np.ndarray) -> np.ndarray:
+def solve_right_upper(block: np.ndarray, R: np.ndarray, overwrite: bool = False) -> np.ndarray:
     """Return ``block @ inv(R)`` for upper triangular R, by trsm (no inverse formed).
 
     The result keeps the block's layout: a C-ordered block is solved through its
-    transpose (``R^-T block^T``), so neither layout is copied on the way in.
+    transpose (``R^-T block^T``), so neither layout is transposed. The GIL-released trsm of
+    :func:`rowfold.kernels.nogil.solve_right_upper` is used when it can serve the call
+    (``overwrite`` lets it work in ``block`` itself); scipy's f2py wrapper otherwise.
+
+    Raises
+    ------
+    ValueError
+        When R holds NaN or Inf (the solve would give finite numbers that are wrong).
     """
+    solved = nogil.solve_right_upper(block, R, overwrite=overwrite)
+    if solved is not None:
+        return solved
+    if not np.isfinite(R).all():
+        raise ValueError("triangular factor holds NaN or Inf; refusing to solve with it")
+    return _f2py_solve_right_upper(block, R)
+
+
+def _f2py_solve_right_upper(block: np.ndarray, R: np.ndarray) -> np.ndarray:
+    """``block @ inv(R)`` through scipy's f2py trsm wrapper (holds the GIL while it runs)."""
     dtype = np.result_type(block, R)
     if block.shape[0] == 0:
         return np.zeros(block.shape, dtype=dtype)

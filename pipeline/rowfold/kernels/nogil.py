@@ -110,3 +110,58 @@ def rank_k_upper(matrix: np.ndarray, transpose: bool) -> np.ndarray:
         *(matrix.ctypes.data, _int(matrix.shape[0]), beta.ctypes.data, out.ctypes.data, _int(n)),
     )
     return out
+
+
+def solve_right_upper(
+    block: np.ndarray, R: np.ndarray, overwrite: bool = False
+) -> np.ndarray | None:
+    """Return ``block @ inv(R)`` for an upper triangular ``R``, by trsm with the GIL released.
+
+    The result keeps the block's memory layout: a Fortran-ordered block is solved from the
+    right (``X R = B``), a C-ordered one through its transpose (``R^T X^T = B^T``, the
+    transpose and not the conjugate transpose, also for complex data), so neither layout is
+    transposed or copied beyond the one copy that holds the result (none with ``overwrite``,
+    when ``block`` is contiguous and already of the result's dtype).
+
+    Returns None when this path cannot serve the call (a dtype BLAS has no routine for, or a
+    scipy without the exported pointer); the caller then uses another route.
+
+    Raises
+    ------
+    ValueError
+        When ``R`` holds NaN or Inf: trsm would then return finite numbers for some rows
+        (``x / inf`` is 0), which would be silently wrong.
+    """
+    dtype = np.result_type(block, R)
+    call = _routine("blas", _PREFIX.get(dtype, "?") + "trsm", 11) if dtype in _PREFIX else None
+    if call is None or block.ndim != 2:
+        return None
+    n = R.shape[0]
+    if not np.isfinite(R).all():
+        raise ValueError("triangular factor holds NaN or Inf; refusing to solve with it")
+    factor = np.asfortranarray(R, dtype=dtype)
+    out = _solve_buffer(block, dtype, overwrite)
+    fortran = out.flags.f_contiguous and not out.flags.c_contiguous
+    rows = block.shape[0]
+    if rows == 0 or n == 0:
+        return out
+    alpha = _scalar(1.0, dtype)
+    if fortran:  # X R = B, B rows x n with leading dimension rows
+        shape, side, trans, lead = (rows, n), "R", "N", rows
+    else:  # R^T X^T = B^T, B^T n x rows (Fortran view of the C block), leading dimension n
+        shape, side, trans, lead = (n, rows), "L", "T", n
+    call(
+        *(_char(side), _char("U"), _char(trans), _char("N"), _int(shape[0]), _int(shape[1])),
+        *(alpha.ctypes.data, factor.ctypes.data, _int(n), out.ctypes.data, _int(lead)),
+    )
+    return out
+
+
+def _solve_buffer(block: np.ndarray, dtype: np.dtype, overwrite: bool) -> np.ndarray:
+    """The array trsm overwrites: ``block`` itself when allowed and contiguous in the result's
+    dtype, else a contiguous copy that keeps the block's order of strides (so a row slice of a
+    Fortran array is copied column by column, not transposed)."""
+    contiguous = block.flags.c_contiguous or block.flags.f_contiguous
+    if overwrite and contiguous and block.dtype == dtype and block.flags.writeable:
+        return block
+    return np.array(block, dtype=dtype, order="K", copy=True)

@@ -139,7 +139,7 @@ def banded_gram(
     for start, first, last in bands:
         x = np.asarray(grouped[first:last] @ inverse[:, start:], dtype=dtype)
         for factor in rest:
-            x = solve_right_upper(x, factor[start:, start:])
+            x = solve_right_upper(x, factor[start:, start:], overwrite=True)
         upper[start:, start:] += gram_upper(x)
         if cross is not None and rhs_grouped is not None:
             cross[start:] += x.conj().T @ rhs_grouped[first:last]

@@ -70,10 +70,16 @@ def cholqr2_limit(dtype: np.dtype) -> float:
     return 1.0 / np.sqrt(unit_roundoff(dtype))
 
 
-def apply_factors(block: np.ndarray, factors: Sequence[np.ndarray]) -> np.ndarray:
-    """Return ``block @ inv(F1) @ inv(F2) ...`` by successive triangular solves."""
-    for factor in factors:
-        block = solve_right_upper(block, factor)
+def apply_factors(
+    block: np.ndarray, factors: Sequence[np.ndarray], owned: bool = False
+) -> np.ndarray:
+    """Return ``block @ inv(F1) @ inv(F2) ...`` by successive triangular solves.
+
+    Each solve after the first works in the previous one's result; the first works in
+    ``block`` itself only when the caller ``owned`` it (a temporary nobody reads again).
+    """
+    for step, factor in enumerate(factors):
+        block = solve_right_upper(block, factor, overwrite=owned or step > 0)
     return block
 
 
@@ -139,7 +145,7 @@ def sparse_recipe(factors: Sequence[np.ndarray]) -> SparseRecipe:
 def sparse_apply(block: sp.csr_matrix, recipe: SparseRecipe) -> np.ndarray:
     """Return ``block @ inv(F1)`` followed by triangular solves with ``F2, F3, ...``."""
     inverse, rest = recipe
-    return apply_factors(sparse_kernels.sparse_times(block, inverse), rest)
+    return apply_factors(sparse_kernels.sparse_times(block, inverse), rest, owned=True)
 
 
 def sparse_gram_leaf(plan: BlockPlan, index: int, recipe: SparseRecipe) -> dict[str, Any]:

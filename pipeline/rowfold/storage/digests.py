@@ -376,6 +376,24 @@ def extend_records(old: dict[str, Any], new: dict[str, Any]) -> dict[str, Any]:
     return out
 
 
+def replace_blocks(
+    old: dict[str, Any], positions: list[int], digests: dict[str, list[RangeDigest]]
+) -> dict[str, Any]:
+    """Records with the digests of some blocks (at ``positions``) replaced by new ones
+    (after their rows were replaced in place and read again); bounds stay as they were."""
+    out: dict[str, Any] = {}
+    for name, before in old.items():
+        blocks = list(before["block_digests"])
+        for position, digest in zip(positions, digests[name], strict=True):
+            blocks[position] = digest.digest
+        out[name] = {
+            **before,
+            "content": content_digest(before["bounds"], blocks),
+            "block_digests": blocks,
+        }
+    return out
+
+
 __all__ = [
     "DIGEST_BYTES",
     "HASH",
@@ -392,5 +410,6 @@ __all__ = [
     "layout_change",
     "public_record",
     "range_digest",
+    "replace_blocks",
     "stored_records",
 ]

@@ -13,7 +13,9 @@ the parameter names), ``columns_i`` (the second axis of n x n arrays: R's rows a
 covariance's other axis, labelled too), ``kept_columns`` (the columns left after
 ``input.fixed_columns``: Q's columns) and ``rhs`` (k). The ``state`` group (what ``update``
 needs, in working coordinates) has ``kept_columns``, ``kept_columns_i``, ``rhs``, ``rhs_i``,
-``digest_blocks``, ``bound`` and ``digest_bytes``.
+``digest_blocks``, ``bound`` and ``digest_bytes``. The ``segments`` group (one item per
+live segment, :mod:`rowfold.segments`) has ``segments``, ``augmented`` and ``augmented_i``
+(n+k: the columns of ``[A | b]``), ``kept_columns`` and ``kept_columns_i``.
 """
 
 from __future__ import annotations
@@ -48,6 +50,8 @@ DIMENSIONS: dict[str, tuple[tuple[str, ...], ...]] = {
     "state/residual_factor": ((), ("rhs_i", "rhs")),
     "state/column_scale": (("kept_columns",),),
     "state/digest_bounds": ((), ("digest_blocks", "bound")),
+    "segments/factor": ((), (), ("segments", "augmented_i", "augmented")),
+    "segments/gram": ((), (), ("segments", "kept_columns_i", "kept_columns")),
 }
 _DIGEST_DIMS = ((), ("digest_blocks", "digest_bytes"))
 

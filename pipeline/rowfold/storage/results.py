@@ -499,13 +499,16 @@ def describe_path(path: Path) -> dict[str, Any]:
     if not path.exists():
         raise InputMissingError(f"{path}: not found")
     arrays: dict[str, dict[str, Any]] = {}
+    groups: dict[str, dict[str, Any]] = {}  # groups with a ``shape`` attribute (CSR)
     try:
         if path.suffix.lower() in HDF5_SUFFIXES:
             with _HDF5_LOCK, h5py.File(path, "r") as handle:
 
                 def visit(name: str, obj: Any) -> None:
                     if isinstance(obj, h5py.Dataset) and not layout.is_dimension_only(obj):
-                        arrays[name] = {"shape": list(obj.shape), "dtype": obj.dtype.str}
+                        arrays[name] = _hdf5_array_info(obj)
+                    elif isinstance(obj, h5py.Group) and "shape" in obj.attrs:
+                        groups[name] = {k: _plain(v) for k, v in obj.attrs.items()}
 
                 handle.visititems(visit)
                 attrs = {key: _plain(value) for key, value in handle.attrs.items()}
@@ -513,18 +516,39 @@ def describe_path(path: Path) -> dict[str, Any]:
             import zarr
 
             root = zarr.open_group(str(path), mode="r")
-            for name, array in root.arrays():
-                arrays[name] = {"shape": list(array.shape), "dtype": np.dtype(array.dtype).str}
-            for name, group in root.groups():
-                for sub, array in group.arrays():
-                    arrays[f"{name}/{sub}"] = {
-                        "shape": list(array.shape),
-                        "dtype": np.dtype(array.dtype).str,
-                    }
+            for name, member in root.members(max_depth=None):
+                if isinstance(member, zarr.Array):
+                    arrays[name] = _zarr_array_info(member)
+                elif "shape" in member.attrs:
+                    groups[name] = {k: _plain(v) for k, v in member.attrs.items()}
             attrs = {key: _plain(value) for key, value in root.attrs.items()}
     except Exception as exc:
         raise InputError(f"{path}: cannot read ({exc.__class__.__name__}: {exc})") from None
-    return {"path": str(path), "arrays": arrays, "attrs": attrs}
+    return {"path": str(path), "arrays": arrays, "groups": groups, "attrs": attrs}
+
+
+def _hdf5_array_info(dataset: Any) -> dict[str, Any]:
+    """Shape, dtype, chunks and compression of an HDF5 dataset (no data read)."""
+    return {
+        "shape": list(dataset.shape),
+        "dtype": dataset.dtype.str,
+        "chunks": None if dataset.chunks is None else list(dataset.chunks),
+        "compression": dataset.compression,
+    }
+
+
+def _zarr_array_info(array: Any) -> dict[str, Any]:
+    """Shape, dtype, chunks and compression of a Zarr array (no data read)."""
+    try:
+        codecs = [type(c).__name__ for c in (*array.filters, *array.compressors)]
+    except (AttributeError, TypeError):
+        codecs = []
+    return {
+        "shape": list(array.shape),
+        "dtype": np.dtype(array.dtype).str,
+        "chunks": list(array.chunks),
+        "compression": ", ".join(codecs) or None,
+    }
 
 
 def _plain(value: Any) -> Any:
@@ -580,11 +604,24 @@ def read_result(path: Path) -> dict[str, np.ndarray]:
             out[name] = np.asarray(array[...])
     for group_name, group in root.groups():
         for name, array in group.arrays():
-            out[f"{group_name}/{name}"] = np.asarray(array[...])
+            if f"{group_name}/{name}" not in ROW_ARRAYS:
+                out[f"{group_name}/{name}"] = np.asarray(array[...])
     return out
 
 
-# Arrays with one row per input row: never read whole into memory.
+def read_item(path: Path, name: str, index: int) -> np.ndarray:
+    """Read one item (the sub-array at ``index`` along the first axis) of a stored array,
+    for example one segment's factor, without reading the rest."""
+    if path.suffix.lower() in HDF5_SUFFIXES:
+        with _HDF5_LOCK, h5py.File(path, "r") as handle:
+            return np.asarray(handle[name][index])
+    import zarr
+
+    array: Any = zarr.open_group(str(path), mode="r")[name]
+    return np.asarray(array[index])
+
+
+# Arrays with one row per input row, or one item per segment: never read whole into memory.
 ROW_ARRAYS = (
     "Q",
     "residuals",
@@ -592,4 +629,6 @@ ROW_ARRAYS = (
     "studentized_residuals",
     "leverage",
     "redundancy",
+    "segments/factor",
+    "segments/gram",
 )
