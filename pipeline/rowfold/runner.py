@@ -111,20 +111,26 @@ def plan_job(job: Job) -> BlockPlan:
 
     ``input.matrix`` may name a dense dataset or a CSR group; which one is found by looking.
     """
-    path, missing = str(job.input.path), job.input.missing_chunks
-    matrix = storage.describe_matrix(storage.ArrayRef(path, job.input.matrix, missing))
+    matrix = storage.describe_matrix(input_ref(job, job.input.matrix))
     rhs = None
     if job.input.rhs is not None:
-        rhs = storage.describe_array(storage.ArrayRef(path, job.input.rhs, missing))
+        rhs = storage.describe_array(input_ref(job, job.input.rhs))
     weights = None
     if job.input.weights is not None:
-        weights = storage.describe_array(storage.ArrayRef(path, job.input.weights, missing))
+        weights = storage.describe_array(input_ref(job, job.input.weights))
     native = job.method.precision == "native"
     plan = plan_blocks(
         matrix, rhs, job.input.rows_per_block, native, weights, job.input.fixed_columns
     )
     check_fits_input(job, plan.rows, plan.cols)
     return plan
+
+
+def input_ref(job: Job, name: str) -> storage.ArrayRef:
+    """The reference tasks carry to array ``name`` of the job's input (a path or URL, and
+    the storage options as JSON text: no open handle, no credential object)."""
+    spec = job.input
+    return storage.ArrayRef(str(spec.path), name, spec.missing_chunks, spec.storage_options)
 
 
 # Fewer rows per block than this many times the columns draws a warning (common practice:
@@ -160,7 +166,7 @@ def parameter_names(job: Job, plan: BlockPlan) -> tuple[str, ...]:
     if given is None:
         return tuple(f"x{j}" for j in range(plan.input_cols))
     if isinstance(given, str):
-        ref = storage.ArrayRef(str(job.input.path), given, job.input.missing_chunks)
+        ref = input_ref(job, given)
         found = storage.read_names(ref)
         try:
             names = check_names(found)
@@ -213,9 +219,11 @@ def wants_q(job: Job) -> bool:
     return wanted or gates or job.solve.refine or job.solve.residuals
 
 
-def _inputs(job: Job) -> tuple[Path]:
-    """The input files or stores an output must stay clear of."""
-    return (job.input.path,)
+def _inputs(job: Job) -> tuple[Path, ...]:
+    """The input files or stores an output must stay clear of (a URL input is not on this
+    machine's disk, so no local output can overlap it)."""
+    path = job.input.path
+    return () if isinstance(path, str) else (path,)
 
 
 def run_job(

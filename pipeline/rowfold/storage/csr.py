@@ -23,7 +23,7 @@ from typing import Any
 import h5py
 import numpy as np
 
-from rowfold.errors import InputError, InputMissingError
+from rowfold.errors import InputError
 from rowfold.storage.chunks import require_hdf5_chunks, require_zarr_chunks, row_range
 from rowfold.storage.inputs import (
     _HDF5_LOCK,
@@ -35,10 +35,11 @@ from rowfold.storage.inputs import (
     _kept,
     _log_read,
     _missing,
-    _open_zarr,
+    _open_ref,
     describe_array,
     forget_input,
     open_dataset,
+    require_location,
 )
 
 # Checks that the chunks of one part of a CSR group covering a range are stored:
@@ -99,9 +100,8 @@ def _members_hdf5(handle: Any, name: str) -> dict[str, Any] | None:
     return {"arrays": arrays, "shape": obj.attrs.get("shape")}
 
 
-def _members_zarr(path: str, name: str) -> dict[str, Any] | None:
-    root = _open_zarr(path)
-    obj = root[name] if name not in ("", ".", "/") else root
+def _members_zarr(ref: ArrayRef) -> dict[str, Any] | None:
+    obj = _open_ref(ref)
     if not hasattr(obj, "members"):
         return None
     arrays = {
@@ -114,15 +114,14 @@ def _members_zarr(path: str, name: str) -> dict[str, Any] | None:
 
 def _members(ref: ArrayRef) -> dict[str, Any] | None:
     """Open the file and describe ``ref``: None when it is a dataset (dense input)."""
-    if not Path(ref.path).exists():
-        raise InputMissingError(f"{ref.path}: input file not found")
+    require_location(ref)
     try:
         if ref.is_hdf5:
             with _HDF5_LOCK, h5py.File(ref.path, "r") as handle:
                 return _members_hdf5(handle, ref.name)
         with warnings.catch_warnings():
             warnings.simplefilter("ignore")  # zarr warns about folders it cannot read
-            return _members_zarr(ref.path, ref.name)
+            return _members_zarr(ref)
     except KeyError:
         raise _missing(ref) from None
     except Exception as exc:
@@ -229,7 +228,7 @@ def _read_slice(ref: ArrayRef, last: int) -> tuple[int, int]:
         with _HDF5_LOCK, h5py.File(ref.path, "r") as handle:
             dataset = handle[ref.name]
             return int(dataset[0]), int(dataset[last])
-    array = _open_zarr(ref.path)[ref.name]
+    array = _open_ref(ref)
     return int(array[0]), int(array[last])
 
 
@@ -268,8 +267,7 @@ def read_csr_rows(
             with _HDF5_LOCK:
                 arrays = {part: open_dataset(ref.path, ref.part(part).name) for part in CSR_ARRAYS}
                 return _read_from(arrays, start, stop, _hdf5_check(ref, arrays))
-        root = _open_zarr(ref.path)
-        group = root[ref.name] if ref.name not in ("", ".", "/") else root
+        group = _open_ref(ref)
         return _read_from(group, start, stop, _zarr_check(ref, group))
     except InputError:
         raise
@@ -290,8 +288,7 @@ def require_csr_chunks(ref: ArrayRef, start: int, stop: int) -> None:
             arrays = {part: open_dataset(ref.path, ref.part(part).name) for part in CSR_ARRAYS}
             _check_parts(arrays, start, stop, _hdf5_check(ref, arrays))
         return
-    root = _open_zarr(ref.path)
-    group = root[ref.name] if ref.name not in ("", ".", "/") else root
+    group = _open_ref(ref)
     _check_parts(group, start, stop, _zarr_check(ref, group))
 
 

@@ -1,0 +1,233 @@
+"""Zarr inputs by fsspec URL (``memory://``, ``file://``) and as zip stores (``.zarr.zip``);
+output URLs refused with one line; storage option values never recorded.
+
+``memory://`` is fsspec's in-process file system: it goes through the same code path as
+``s3://`` or ``gs://`` (zarr's fsspec store opened from the URL and the storage options by the
+task that reads), without a server. Each test uses its own memory folder and removes it.
+"""
+
+from __future__ import annotations
+
+import json
+import uuid
+from collections.abc import Iterator
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import pytest
+import yaml
+
+from rowfold.cli import main
+from rowfold.storage import read_result, write_arrays
+
+import bounds
+from support import prescribed
+
+ROWS, COLS, CHUNK = 600, 5, 100
+KAPPA = 1e4
+SECRET = "fake-secret-7f3a9c"  # an invented credential: must appear in no output
+TOKEN = "fake-token-51d2e8"
+
+
+@pytest.fixture
+def memory_folder() -> Iterator[str]:
+    """A fresh folder of fsspec's in-process memory file system, removed afterwards."""
+    import fsspec
+
+    folder = f"/rowfold-tests/{uuid.uuid4().hex[:12]}"
+    fs = fsspec.filesystem("memory")
+    yield folder
+    if fs.exists(folder):
+        fs.rm(folder, recursive=True)
+
+
+def problem(rows: int = ROWS) -> tuple[np.ndarray, np.ndarray]:
+    A = prescribed(ROWS, COLS, KAPPA, seed=11)
+    rng = np.random.default_rng(12)
+    b = A @ rng.standard_normal(COLS) + 1e-3 * rng.standard_normal(ROWS)
+    return A[:rows], b[:rows]
+
+
+def write_zarr_at(location: str, arrays: dict[str, np.ndarray]) -> None:
+    """Write arrays into a Zarr store at a URL or into a zip store (chunked like
+    :func:`rowfold.storage.write_arrays`, every chunk stored)."""
+    import zarr
+    from zarr.storage import ZipStore
+
+    zip_store = ZipStore(location, mode="w") if location.endswith(".zarr.zip") else None
+    group = zarr.open_group(store=zip_store or location, mode="w")
+    for name, array in arrays.items():
+        created = group.create_array(
+            name,
+            shape=array.shape,
+            dtype=array.dtype,
+            chunks=(CHUNK, *array.shape[1:]),
+            config={"write_empty_chunks": True},
+        )
+        created[...] = array
+    if zip_store is not None:
+        zip_store.close()
+
+
+def job_file(folder: Path, path: str, **input_keys: Any) -> Path:
+    job = {
+        "name": "survey-url",
+        "input": {"path": path, "matrix": "obs/A", "rhs": "obs/b", **input_keys},
+        "method": {"name": "tsqr"},
+        "output": {"path": str(folder / "out.zarr"), "overwrite": True},
+    }
+    target = folder / "job.yaml"
+    target.write_text(yaml.safe_dump(job), encoding="utf-8")
+    return target
+
+
+def place_input(kind: str, tmp_path: Path, memory: str, A: np.ndarray, b: np.ndarray) -> str:
+    """Write the input as ``kind`` and return what input.path names."""
+    arrays = {"obs/A": A, "obs/b": b}
+    if kind == "memory":
+        write_zarr_at(f"memory://{memory}/obs.zarr", arrays)
+        return f"memory://{memory}/obs.zarr"
+    if kind == "zip":
+        write_zarr_at(str(tmp_path / "obs.zarr.zip"), arrays)
+        return "obs.zarr.zip"
+    write_arrays(tmp_path / "obs.zarr", arrays, chunk_rows=CHUNK)
+    return (tmp_path / "obs.zarr").as_uri() if kind == "file" else "obs.zarr"
+
+
+def assert_solves(x: np.ndarray, A: np.ndarray, b: np.ndarray) -> None:
+    """x against numpy's LAPACK least squares, within the least-squares perturbation bound
+    (Wedin 1973; Higham 2002, Thm 20.1: tests/bounds.py::lstsq_solution)."""
+    reference = np.linalg.lstsq(A, b, rcond=None)[0]
+    r = b - A @ reference
+    ratio = float(np.linalg.norm(r) / (np.linalg.norm(A, 2) * np.linalg.norm(reference)))
+    assert bounds.relative_error(x, reference) <= bounds.lstsq_solution(COLS, KAPPA, ratio)
+
+
+@pytest.mark.parametrize("kind", ["local", "memory", "file", "zip"])
+def test_url_and_zip_inputs_give_the_least_squares_answer(
+    tmp_path: Path, memory_folder: str, kind: str
+) -> None:
+    A, b = problem()
+    path = place_input(kind, tmp_path, memory_folder, A, b)
+    assert main(["--quiet", "run", str(job_file(tmp_path, path)), "--inline"]) == 0
+    stored = read_result(tmp_path / "out.zarr")
+    assert_solves(stored["x"], A, b)
+    report = json.loads((tmp_path / "out.report.json").read_text(encoding="utf-8"))
+    recorded = {entry["path"] for entry in report["inputs"].values()}
+    if kind == "memory":
+        assert recorded == {path}, "a URL input is recorded as its URL"
+
+
+def test_update_reads_the_old_rows_digests_through_the_url(
+    tmp_path: Path, memory_folder: str
+) -> None:
+    A, b = problem()
+    url = f"memory://{memory_folder}/obs.zarr"
+    write_zarr_at(url, {"obs/A": A[:400], "obs/b": b[:400]})
+    job = job_file(tmp_path, url)
+    assert main(["--quiet", "run", str(job), "--inline"]) == 0
+    write_zarr_at(url, {"obs/A": A, "obs/b": b})  # the same first rows, 200 appended
+    assert main(["--quiet", "update", str(job), "--inline"]) == 0
+    assert_solves(read_result(tmp_path / "out.zarr")["x"], A, b)
+
+
+def one_error_line(capsys: pytest.CaptureFixture[str]) -> str:
+    captured = capsys.readouterr()
+    assert "Traceback" not in captured.err + captured.out
+    lines = [line for line in captured.err.splitlines() if line.strip()]
+    assert len(lines) == 1, captured.err
+    return lines[0]
+
+
+@pytest.mark.parametrize(
+    ("path", "says"),
+    [
+        ("nofs://bucket/obs.zarr", "fsspec knows no file system for nofs://"),
+        ("memory://{memory}/missing.zarr", "input store not found"),
+        ("memory://{memory}/obs.h5", "expected the URL of a Zarr store ending in .zarr"),
+        ("file://elsewhere/obs.zarr", "expected a file URL of an absolute path"),
+        ("missing.zarr.zip", "input file not found"),
+    ],
+)
+def test_bad_input_locations_exit_2_naming_the_url_and_the_key(
+    tmp_path: Path, memory_folder: str, capsys: pytest.CaptureFixture[str], path: str, says: str
+) -> None:
+    path = path.format(memory=memory_folder)
+    assert main(["run", str(job_file(tmp_path, path)), "--inline"]) == 2
+    line = one_error_line(capsys)
+    assert says in line and "input.path" in line
+    assert Path(path).name in line
+    assert not (tmp_path / "out.zarr").exists()
+
+
+@pytest.mark.parametrize("url", ["memory://results/out.zarr", "s3://survey-results/out.zarr"])
+def test_output_urls_are_refused_before_anything_is_read(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str], url: str
+) -> None:
+    job = job_file(tmp_path, "obs.zarr")
+    job.write_text(job.read_text(encoding="utf-8").replace(str(tmp_path / "out.zarr"), url))
+    assert main(["run", str(job), "--inline"]) == 2
+    line = one_error_line(capsys)
+    assert url in line and "output.path" in line and "local paths only" in line
+
+
+def test_credentials_in_a_url_are_refused_without_repeating_them(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    job = job_file(tmp_path, f"s3://surveyor:{SECRET}@bucket/obs.zarr")
+    assert main(["run", str(job), "--inline"]) == 2
+    line = one_error_line(capsys)
+    assert "input.path" in line and SECRET not in line
+
+
+@pytest.mark.parametrize(
+    ("options", "says"),
+    [
+        (SECRET, "expected a mapping of option names to values, found text"),
+        ({"key": "id", "secret": float("nan")}, "expected plain values"),
+    ],
+)
+def test_malformed_storage_options_exit_2_without_their_values(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str], options: Any, says: str
+) -> None:
+    job = job_file(tmp_path, "memory://somewhere/obs.zarr", storage_options=options)
+    assert main(["run", str(job), "--inline"]) == 2
+    line = one_error_line(capsys)
+    assert says in line and "input.storage_options" in line and SECRET not in line
+
+
+def test_storage_options_with_a_local_path_are_refused(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    job = job_file(tmp_path, "obs.zarr", storage_options={"anon": True})
+    assert main(["run", str(job), "--inline"]) == 2
+    assert "input.storage_options" in one_error_line(capsys)
+
+
+def test_storage_option_values_are_never_written(
+    tmp_path: Path,
+    memory_folder: str,
+    capsys: pytest.CaptureFixture[str],
+    monkeypatch: pytest.MonkeyPatch,
+) -> None:
+    A, b = problem()
+    url = place_input("memory", tmp_path, memory_folder, A, b)
+    options = {"secret": SECRET, "client_kwargs": {"token": TOKEN}}
+    job = job_file(tmp_path, url, storage_options=options)
+    log = tmp_path / "read.log"
+    monkeypatch.setenv("ROWFOLD_READ_LOG", str(log))
+    assert main(["run", str(job), "--inline"]) == 0
+    assert main(["inspect", str(tmp_path / "out.zarr")]) == 0
+    captured = capsys.readouterr()
+    assert SECRET not in captured.out + captured.err and TOKEN not in captured.out + captured.err
+    written = [p for p in tmp_path.rglob("*") if p.is_file() and p != job]
+    assert log in written and any(p.name == "zarr.json" for p in written)
+    for path in written:
+        data = path.read_bytes()
+        assert SECRET.encode() not in data and TOKEN.encode() not in data, path
+    import zarr
+
+    recorded = zarr.open_group(str(tmp_path / "out.zarr"), mode="r").attrs["job"]["input"]
+    assert recorded["storage_options"] == ["client_kwargs", "secret"]
+    assert_solves(read_result(tmp_path / "out.zarr")["x"], A, b)
