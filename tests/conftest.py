@@ -41,6 +41,7 @@ NUMERICAL_MODULES = {
     "test_sparse.py",
     "test_strategies.py",
     "test_update_guards.py",
+    "test_urls.py",
 }
 
 

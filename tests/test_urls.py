@@ -231,3 +231,125 @@ def test_storage_option_values_are_never_written(
     recorded = zarr.open_group(str(tmp_path / "out.zarr"), mode="r").attrs["job"]["input"]
     assert recorded["storage_options"] == ["client_kwargs", "secret"]
     assert_solves(read_result(tmp_path / "out.zarr")["x"], A, b)
+
+
+# ---------------------------------------------------------------- a local S3 server
+
+
+@pytest.fixture(scope="module")
+def s3_endpoint() -> Iterator[str]:
+    """An S3-compatible server on 127.0.0.1 (moto's server mode), for this module."""
+    pytest.importorskip("s3fs")
+    server_module = pytest.importorskip("moto.server")
+    import logging
+
+    logging.getLogger("werkzeug").setLevel(logging.ERROR)  # one line per request otherwise
+    server = server_module.ThreadedMotoServer(ip_address="127.0.0.1", port=0, verbose=False)
+    server.start()
+    host, port = server.get_host_and_port()
+    yield f"http://{host}:{port}"
+    server.stop()
+
+
+def s3_options(endpoint: str) -> dict[str, Any]:
+    """s3fs options for the local server (invented key; the secret is the fake one)."""
+    return {
+        "key": "survey-office-key",
+        "secret": SECRET,
+        "client_kwargs": {"endpoint_url": endpoint, "region_name": "us-east-1"},
+    }
+
+
+def s3_bucket(endpoint: str) -> str:
+    import boto3
+
+    name = f"survey-{uuid.uuid4().hex[:10]}"
+    client = boto3.client(
+        "s3",
+        endpoint_url=endpoint,
+        aws_access_key_id="survey-office-key",
+        aws_secret_access_key=SECRET,
+        region_name="us-east-1",
+    )
+    client.create_bucket(Bucket=name)
+    return name
+
+
+def write_s3(url: str, options: dict[str, Any], arrays: dict[str, np.ndarray]) -> None:
+    import zarr
+
+    group = zarr.open_group(url, mode="w", storage_options=options)
+    for name, array in arrays.items():
+        created = group.create_array(
+            name,
+            shape=array.shape,
+            dtype=array.dtype,
+            chunks=(CHUNK, *array.shape[1:]),
+            config={"write_empty_chunks": True},
+        )
+        created[...] = array
+
+
+def test_s3_input_on_a_local_server_gives_the_least_squares_answer(
+    tmp_path: Path, s3_endpoint: str, capsys: pytest.CaptureFixture[str]
+) -> None:
+    A, b = problem()
+    options = s3_options(s3_endpoint)
+    url = f"s3://{s3_bucket(s3_endpoint)}/campaign/obs.zarr"
+    write_s3(url, options, {"obs/A": A, "obs/b": b})
+    job = job_file(tmp_path, url, storage_options=options)
+    assert main(["run", str(job), "--inline"]) == 0
+    assert_solves(read_result(tmp_path / "out.zarr")["x"], A, b)
+    captured = capsys.readouterr()
+    assert SECRET not in captured.out + captured.err
+    for path in (p for p in tmp_path.rglob("*") if p.is_file() and p != job):
+        assert SECRET.encode() not in path.read_bytes(), path
+
+
+def test_s3_missing_bucket_exits_2_naming_the_url_and_the_key(
+    tmp_path: Path, s3_endpoint: str, capsys: pytest.CaptureFixture[str]
+) -> None:
+    url = "s3://no-such-survey-bucket/obs.zarr"
+    job = job_file(tmp_path, url, storage_options=s3_options(s3_endpoint))
+    assert main(["run", str(job), "--inline"]) == 2
+    line = one_error_line(capsys)
+    assert url in line and "input.path" in line and SECRET not in line
+
+
+def readme_s3_job() -> dict[str, Any]:
+    """The s3:// job of the README's "Inputs by URL and zip stores" section."""
+    import re
+
+    text = (Path(__file__).parents[1] / "README.md").read_text(encoding="utf-8")
+    section = text.split("## Inputs by URL and zip stores", 1)[1].split("\n## ", 1)[0]
+    blocks = re.findall(r"```yaml\n(.*?)```", section, re.S)
+    assert len(blocks) == 1, "the section shows one job"
+    job: dict[str, Any] = yaml.safe_load(blocks[0])
+    return job
+
+
+def test_readme_s3_job_runs_against_the_local_server(tmp_path: Path, s3_endpoint: str) -> None:
+    """The README's job as written, its endpoint pointed at the local server."""
+    import boto3
+
+    job = readme_s3_job()
+    url = job["input"]["path"]
+    assert url.startswith("s3://")
+    bucket = url.removeprefix("s3://").split("/", 1)[0]
+    options = job["input"]["storage_options"]
+    options = {**options, **s3_options(s3_endpoint)}
+    boto3.client(
+        "s3",
+        endpoint_url=s3_endpoint,
+        aws_access_key_id="survey-office-key",
+        aws_secret_access_key=SECRET,
+        region_name="us-east-1",
+    ).create_bucket(Bucket=bucket)
+    A, b = problem()
+    write_s3(url, options, {job["input"]["matrix"]: A, job["input"]["rhs"]: b})
+    job["input"]["storage_options"] = options
+    job["output"] = {"path": str(tmp_path / "out.zarr")}
+    path = tmp_path / "job.yaml"
+    path.write_text(yaml.safe_dump(job), encoding="utf-8")
+    assert main(["--quiet", "run", str(path), "--inline"]) == 0
+    assert_solves(read_result(tmp_path / "out.zarr")["x"], A, b)
