@@ -42,6 +42,7 @@ NUMERICAL_MODULES = {
     "test_strategies.py",
     "test_update_guards.py",
     "test_urls.py",
+    "test_csr_encoding.py",
 }
 
 

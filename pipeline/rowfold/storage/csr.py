@@ -2,7 +2,12 @@
 
 A CSR matrix is a group holding three 1-D arrays, ``data`` (the stored values),
 ``indices`` (their column numbers) and ``indptr`` (m + 1 offsets: row i owns
-``data[indptr[i]:indptr[i + 1]]``), and an attribute ``shape = [m, n]``. Rows
+``data[indptr[i]:indptr[i + 1]]``), and an attribute ``shape = [m, n]``. The encoding
+attributes of the scientific-Python ecosystem's on-disk sparse convention
+(``encoding-type: csr_matrix``, ``encoding-version: 0.1.0``) are written too, and groups
+written by other tools in that convention are read as they are; a group that declares
+another encoding (``csc_matrix``: column-compressed, the same three arrays meaning something
+else) or version is refused rather than misread. Rows
 ``[start, stop)`` are read by slicing ``indptr[start:stop + 1]`` and then the matching range
 of ``indices`` and ``data``, so a worker reads only its own rows.
 
@@ -48,6 +53,9 @@ ChunkCheck = Callable[[str, int, int, Callable[[int, int], str]], None]
 
 CSR_ARRAYS = ("data", "indices", "indptr")
 """The arrays a CSR group holds."""
+
+ENCODING = {"encoding-type": "csr_matrix", "encoding-version": "0.1.0"}
+"""The group attributes of the on-disk sparse convention that describe our layout."""
 
 WRITE_CHUNK = 1 << 16
 """Elements (rows, for the arrays beside the group) per on-disk chunk of every array
@@ -97,7 +105,19 @@ def _members_hdf5(handle: Any, name: str) -> dict[str, Any] | None:
         for key, value in obj.items()
         if isinstance(value, h5py.Dataset)
     }
-    return {"arrays": arrays, "shape": obj.attrs.get("shape")}
+    return {"arrays": arrays, "shape": obj.attrs.get("shape"), **_encoding(obj.attrs)}
+
+
+def _encoding(attrs: Any) -> dict[str, Any]:
+    """The group's encoding attributes (text; absent ones left out)."""
+    found = {}
+    for key in ENCODING:
+        value = attrs.get(key)
+        if isinstance(value, bytes | np.bytes_):
+            value = value.decode("utf-8", "replace")
+        if value is not None:
+            found[key] = value
+    return found
 
 
 def _members_zarr(ref: ArrayRef) -> dict[str, Any] | None:
@@ -109,7 +129,7 @@ def _members_zarr(ref: ArrayRef) -> dict[str, Any] | None:
         for key, value in obj.members()
         if not hasattr(value, "members")
     }
-    return {"arrays": arrays, "shape": obj.attrs.get("shape")}
+    return {"arrays": arrays, "shape": obj.attrs.get("shape"), **_encoding(obj.attrs)}
 
 
 def _members(ref: ArrayRef) -> dict[str, Any] | None:
@@ -169,8 +189,25 @@ def describe_csr(ref: ArrayRef) -> CsrInfo:
     return _check_group(ref, members)
 
 
+def _check_encoding(where: str, members: dict[str, Any]) -> None:
+    """Refuse a group that declares an encoding other than ours (it would be misread)."""
+    kind = members.get("encoding-type")
+    if kind is not None and kind != ENCODING["encoding-type"]:
+        raise InputError(
+            f"{where}: attribute encoding-type is {kind!r}; only csr_matrix (row-compressed) "
+            "groups are read; convert it to CSR (e.g. scipy.sparse's tocsr) and write it again"
+        )
+    version = members.get("encoding-version")
+    if kind is not None and version is not None and version != ENCODING["encoding-version"]:
+        raise InputError(
+            f"{where}: attribute encoding-version is {version!r}; csr_matrix version "
+            f"{ENCODING['encoding-version']} is the one read"
+        )
+
+
 def _check_group(ref: ArrayRef, members: dict[str, Any]) -> CsrInfo:
     where = ref.describe()
+    _check_encoding(where, members)
     arrays: dict[str, tuple[tuple[int, ...], str]] = members["arrays"]
     missing = [name for name in CSR_ARRAYS if name not in arrays]
     if missing:
@@ -421,6 +458,7 @@ def _write_hdf5(
                 del handle[name]
         created = handle.create_group(group)
         created.attrs["shape"] = shape
+        created.attrs.update(ENCODING)
         for name, array in {**arrays, **extra}.items():
             if array.dtype.kind in "UO":  # text, e.g. parameter names
                 handle.create_dataset(name, data=array.astype(object), dtype=TEXT)
@@ -444,7 +482,7 @@ def _write_zarr(
         if name in root:
             del root[name]
     created = root.require_group(group)
-    created.attrs["shape"] = [int(v) for v in shape]
+    created.attrs.update({"shape": [int(v) for v in shape], **ENCODING})
     for name, array in {**arrays, **extra}.items():
         out = root.create_array(
             name,
