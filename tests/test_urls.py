@@ -9,6 +9,9 @@ task that reads), without a server. Each test uses its own memory folder and rem
 from __future__ import annotations
 
 import json
+import os
+import subprocess
+import sys
 import uuid
 from collections.abc import Iterator
 from pathlib import Path
@@ -161,15 +164,70 @@ def test_bad_input_locations_exit_2_naming_the_url_and_the_key(
     assert not (tmp_path / "out.zarr").exists()
 
 
-@pytest.mark.parametrize("url", ["memory://results/out.zarr", "s3://survey-results/out.zarr"])
-def test_output_urls_are_refused_before_anything_is_read(
-    tmp_path: Path, capsys: pytest.CaptureFixture[str], url: str
+def url_output_job(folder: Path, data: str, url: str, **output: Any) -> Path:
+    job = job_file(folder, data)
+    spec = yaml.safe_load(job.read_text(encoding="utf-8"))
+    spec["output"] = {"path": url, **output}
+    job.write_text(yaml.safe_dump(spec), encoding="utf-8")
+    return job
+
+
+def pointed_x(url: str, options: dict[str, Any] | None = None) -> tuple[str, np.ndarray]:
+    """The commit the pointer of ``url`` names, and its x (read the way a user follows it)."""
+    import fsspec
+    import zarr
+
+    with fsspec.open(url + ".current.json", "rb", **(options or {})) as handle:
+        pointer = json.loads(handle.read())
+    group = zarr.open_group(pointer["store"], mode="r", storage_options=options)
+    assert group.attrs["rowfold_commit"] == pointer["rowfold_commit"]
+    return pointer["rowfold_commit"], np.asarray(group["x"][...])
+
+
+def commits_under(url: str, options: dict[str, Any] | None = None) -> list[str]:
+    import fsspec
+
+    fs, root = fsspec.core.url_to_fs(url + ".commits", **(options or {}))
+    fs.invalidate_cache()
+    return sorted(p.rstrip("/").rpartition("/")[2] for p in fs.ls(root, detail=False))
+
+
+def test_url_output_is_committed_by_pointer_and_old_prefixes_removed(
+    tmp_path: Path, memory_folder: str, capsys: pytest.CaptureFixture[str]
 ) -> None:
-    job = job_file(tmp_path, "obs.zarr")
-    job.write_text(job.read_text(encoding="utf-8").replace(str(tmp_path / "out.zarr"), url))
-    assert main(["run", str(job), "--inline"]) == 2
+    A, b = problem()
+    data = place_input("local", tmp_path, memory_folder, A, b)
+    url = f"memory://{memory_folder}/results/levelling.zarr"
+    job = url_output_job(tmp_path, data, url, storage_options={"secret": SECRET})
+    assert main(["--quiet", "run", str(job), "--inline"]) == 0
+    first, x = pointed_x(url)
+    assert_solves(x, A, b)
+    assert commits_under(url) == [first]
+    assert main(["run", str(job), "--inline"]) == 2  # no overwrite
     line = one_error_line(capsys)
-    assert url in line and "output.path" in line and "local paths only" in line
+    assert url in line and "output.overwrite" in line and SECRET not in line
+    assert main(["--quiet", "run", str(job), "--inline", "--set", "output.overwrite=true"]) == 0
+    second, x = pointed_x(url)
+    assert second != first and commits_under(url) == [second]
+    assert_solves(x, A, b)
+    assert main(["update", str(job), "--inline"]) == 2
+    line = one_error_line(capsys)
+    assert url in line and "output.path" in line and "run only" in line
+
+
+@pytest.mark.parametrize(
+    ("url", "says"),
+    [
+        ("memory://results/out.h5", "HDF5 results are written to local paths"),
+        ("nofs://results/out.zarr", "fsspec knows no file system for nofs://"),
+    ],
+)
+def test_bad_output_urls_exit_2_naming_the_url_and_the_key(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str], url: str, says: str
+) -> None:
+    assert main(["run", str(url_output_job(tmp_path, "obs.zarr", url)), "--inline"]) == 2
+    line = one_error_line(capsys)
+    assert url in line and "output.path" in line and says in line
 
 
 def test_credentials_in_a_url_are_refused_without_repeating_them(
@@ -317,11 +375,11 @@ def test_s3_missing_bucket_exits_2_naming_the_url_and_the_key(
 
 
 def readme_s3_job() -> dict[str, Any]:
-    """The s3:// job of the README's "Inputs by URL and zip stores" section."""
+    """The s3:// job of the README's "Inputs and results by URL, zip stores" section."""
     import re
 
     text = (Path(__file__).parents[1] / "README.md").read_text(encoding="utf-8")
-    section = text.split("## Inputs by URL and zip stores", 1)[1].split("\n## ", 1)[0]
+    section = text.split("## Inputs and results by URL, zip stores", 1)[1].split("\n## ", 1)[0]
     blocks = re.findall(r"```yaml\n(.*?)```", section, re.S)
     assert len(blocks) == 1, "the section shows one job"
     job: dict[str, Any] = yaml.safe_load(blocks[0])
@@ -353,3 +411,53 @@ def test_readme_s3_job_runs_against_the_local_server(tmp_path: Path, s3_endpoint
     path.write_text(yaml.safe_dump(job), encoding="utf-8")
     assert main(["--quiet", "run", str(path), "--inline"]) == 0
     assert_solves(read_result(tmp_path / "out.zarr")["x"], A, b)
+
+
+def rowfold_killed_at(job: Path, point: str) -> subprocess.CompletedProcess[str]:
+    """Run the job in a real process that ends at ``point`` as a kill would (os._exit, no
+    clean-up; rowfold.testhooks)."""
+    env = {**os.environ, "ROWFOLD_TEST_HOOK": f"{point}=exit"}
+    command = [sys.executable, "-m", "rowfold", "--quiet", "run", str(job), "--inline"]
+    return subprocess.run(command, env=env, capture_output=True, text=True, timeout=300)
+
+
+@pytest.mark.parametrize("point", ["publish:upload:levelling.zarr", "publish:uploaded"])
+def test_s3_output_killed_before_the_pointer_keeps_the_previous_result(
+    tmp_path: Path, s3_endpoint: str, point: str
+) -> None:
+    A, b = problem()
+    data = place_input("local", tmp_path, "", A, b)
+    options = s3_options(s3_endpoint)
+    url = f"s3://{s3_bucket(s3_endpoint)}/results/levelling.zarr"
+    job = url_output_job(tmp_path, data, url, overwrite=True, storage_options=options)
+    assert main(["--quiet", "run", str(job), "--inline"]) == 0
+    before, x_before = pointed_x(url, options)
+    write_arrays(tmp_path / "obs.zarr", {"obs/A": A, "obs/b": 2 * b}, chunk_rows=CHUNK)
+    killed = rowfold_killed_at(job, point)
+    assert killed.returncode == 99, killed.stderr
+    assert SECRET not in killed.stdout + killed.stderr
+    after, x_after = pointed_x(url, options)
+    assert after == before
+    np.testing.assert_array_equal(x_after, x_before)  # the same stored bytes, untouched
+    assert len(commits_under(url, options)) == 2  # the killed run's upload, not yet removed
+    assert main(["--quiet", "run", str(job), "--inline"]) == 0
+    latest, x = pointed_x(url, options)
+    assert latest != before and commits_under(url, options) == [latest]
+    assert_solves(x, A, 2 * b)
+
+
+def test_s3_output_killed_after_the_pointer_has_the_new_result(
+    tmp_path: Path, s3_endpoint: str
+) -> None:
+    A, b = problem()
+    data = place_input("local", tmp_path, "", A, b)
+    options = s3_options(s3_endpoint)
+    url = f"s3://{s3_bucket(s3_endpoint)}/results/levelling.zarr"
+    job = url_output_job(tmp_path, data, url, overwrite=True, storage_options=options)
+    assert main(["--quiet", "run", str(job), "--inline"]) == 0
+    before, _ = pointed_x(url, options)
+    write_arrays(tmp_path / "obs.zarr", {"obs/A": A, "obs/b": 2 * b}, chunk_rows=CHUNK)
+    assert rowfold_killed_at(job, "publish:pointer").returncode == 99
+    after, x = pointed_x(url, options)
+    assert after != before
+    assert_solves(x, A, 2 * b)

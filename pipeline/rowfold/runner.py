@@ -7,6 +7,7 @@ whole result is ready; the result store and its reports are committed together.
 from __future__ import annotations
 
 import json
+import tempfile
 import time
 from collections.abc import Iterator
 from contextlib import ExitStack, contextmanager
@@ -32,6 +33,7 @@ from rowfold.errors import (
     EXIT_INVALID,
     EXIT_OK,
     InputError,
+    OutputError,
     RowfoldError,
 )
 from rowfold.kernels import metrics
@@ -51,6 +53,7 @@ from rowfold.spec import (
     check_parameter_names,
     load_job,
 )
+from rowfold.storage import published
 from rowfold.storage.checkpoints import block_stamp, close_checkpoints, open_checkpoints
 from rowfold.storage.checkpoints import job_digest as job_digest_of
 
@@ -82,13 +85,13 @@ class RunOutcome:
         0 when every gate held, 3 when one failed or could not be evaluated.
     report : dict
         The report as written to JSON.
-    output : Path
-        The committed result store.
+    output : Path or str
+        The committed result store (its URL on an object store).
     """
 
     status: int
     report: dict[str, Any]
-    output: Path
+    output: Path | str
 
 
 @dataclass
@@ -194,7 +197,7 @@ def validate_job(job: Job) -> BlockPlan:
 def check_job(job: Job) -> dict[str, Any]:
     """Validate a job's inputs and output path without computing; return a summary."""
     plan = validate_job(job)
-    with storage.open_output(job.output.path, job.output.overwrite, _inputs(job)):
+    with storage.open_output(job.output.local, job.output.overwrite, _inputs(job)):
         pass  # takes the lock and recovers an interrupted commit, like a run would
     return {
         "job": job.name,
@@ -206,7 +209,7 @@ def check_job(job: Job) -> dict[str, Any]:
         "blocks": plan.blocks,
         "rows_per_block": plan.per_block,
         "method": job.method.name,
-        "output": str(job.output.path),
+        "output": str(job.output.local),
         "warnings": block_warnings(plan),
     }
 
@@ -254,6 +257,8 @@ def run_job(
     RowfoldError
         Subclasses map to exit statuses 2 and 4; nothing is written on error.
     """
+    if job.output.is_url:
+        return _run_to_url(job, progress, inline, resume, wait_lock)
     progress = progress or Progress()
     clock = _Clock()
     started = time.time()
@@ -261,15 +266,46 @@ def run_job(
         plan = plan_job(job)
         names = parameter_names(job, plan)
     progress.begin_job(job.name, plan.rows)
-    with storage.open_output(job.output.path, job.output.overwrite, _inputs(job), wait_lock):
+    with storage.open_output(job.output.local, job.output.overwrite, _inputs(job), wait_lock):
         try:
             outcome = _run_with_engine(job, plan, names, progress, inline, resume, clock, started)
         except RowfoldError as exc:
             if exc.exit_status == EXIT_INVALID:  # a bad input: no checkpoint is worth resuming
-                close_checkpoints(job.output.path)
+                close_checkpoints(job.output.local)
             raise
-        close_checkpoints(job.output.path)
+        close_checkpoints(job.output.local)
     return outcome
+
+
+def _run_to_url(
+    job: Job, progress: Progress | None, inline: bool, resume: bool, wait_lock: float
+) -> RunOutcome:
+    """Run a job whose result goes to an object store: commit it in a private local folder,
+    then publish it by pointer (:mod:`rowfold.storage.published`)."""
+    url, options = str(job.output.path), job.output.storage_options
+    if resume:
+        raise OutputError(f"{url}: run --resume needs a local output.path (its checkpoints)")
+    validate_job(job)  # a bad input fails before the store is touched
+    try:
+        existing = published.current(url, options)
+    except Exception as exc:
+        raise OutputError(
+            f"{url}: cannot read the result's pointer ({exc.__class__.__name__}: {exc}); "
+            "check output.path and output.storage_options"
+        ) from None
+    if existing is not None and not job.output.overwrite:
+        raise OutputError(
+            f"{url}: a result exists (commit {existing.get('rowfold_commit')}); set "
+            "output.overwrite: true to replace it"
+        )
+    published.remove_stale(url, options, None if existing is None else existing["rowfold_commit"])
+    with tempfile.TemporaryDirectory(prefix="rowfold-publish-") as scratch:
+        store = Path(scratch) / url.rpartition("/")[2]
+        local = replace(job, output=replace(job.output, path=store, overwrite=False))
+        outcome = run_job(local, progress, inline, False, wait_lock)
+        parts = [store, *storage.report_paths(store)]
+        record = published.publish(url, options, str(outcome.report["commit"]), parts)
+    return RunOutcome(outcome.status, outcome.report, str(record["store"]))
 
 
 def _run_with_engine(
@@ -284,7 +320,7 @@ def _run_with_engine(
 ) -> RunOutcome:
     """Start the engine and scratch folder, run, and shut them down (before cleanup)."""
     with ExitStack() as stack:
-        workdir = stack.enter_context(storage.scratch_folder(job.output.path))
+        workdir = stack.enter_context(storage.scratch_folder(job.output.local))
         with clock.stage("cluster_start"):
             engine = stack.enter_context(_engine(job, progress, inline))
         with clock.stage("fingerprint"):
@@ -312,7 +348,7 @@ def _checkpoints(job: Job, plan: BlockPlan, inputs: dict[str, Any], resume: bool
             plan.bounds, *(inputs[name]["block_digests"] for name in names), strict=True
         )
     ]
-    folder, _, _ = open_checkpoints(job.output.path, {"job": job_digest, "blocks": blocks}, resume)
+    folder, _, _ = open_checkpoints(job.output.local, {"job": job_digest, "blocks": blocks}, resume)
     return folder
 
 
@@ -382,7 +418,7 @@ def _run_on(
     if job.solve.refine and solution is not None:
         with clock.stage("refine"):
             solution, refine_passes = _refined(job, plan, fact, solution, ctx, extra)
-    with storage.ResultWriter(job.output.path) as writer:
+    with storage.ResultWriter(job.output.local) as writer:
         with clock.stage("verify"):
             outputs = _row_outputs(job, plan)
             sink = _row_sink(writer, plan, outputs) if outputs else None
@@ -444,7 +480,7 @@ def _commit(
     writer.put_labels("columns", names)
     writer.put_labels("columns_i", names)
     _write_state(writer, plan, fact, state_sums, scale)
-    json_path, html_path = storage.report_paths(job.output.path)
+    json_path, html_path = storage.report_paths(job.output.local)
     report = {**report, "commit": writer.commit_id}  # the store records the same id
     drawing = time.perf_counter()
     page = render_html(report)
@@ -453,7 +489,7 @@ def _commit(
     writer.add_file(html_path, page)
     writer.commit()
     held = report["exit_status"] == EXIT_OK
-    return RunOutcome(EXIT_OK if held else EXIT_GATE_FAILED, report, job.output.path)
+    return RunOutcome(EXIT_OK if held else EXIT_GATE_FAILED, report, job.output.local)
 
 
 def comparison_table(records: list[dict[str, Any]]) -> str:
@@ -480,7 +516,7 @@ def compare_job(
         inputs = _fingerprints(job, plan, engine)
 
         def run(method_job: Job) -> RunOutcome:
-            out = method_job.output.path
+            out = method_job.output.local
             with (
                 storage.open_output(out, True, _inputs(job)),
                 storage.scratch_folder(out) as workdir,
@@ -508,7 +544,7 @@ def update_job(
         stored one, the input no longer starts with the rows its live segments consumed, or
         the label is taken (run ``run`` instead).
     """
-    with storage.open_output(job.output.path, True, _inputs(job), wait_lock):
+    with storage.open_output(job.output.local, True, _inputs(job), wait_lock):
         return _update_held(job, progress, inline)
 
 
@@ -527,7 +563,7 @@ class _Earlier:
 
 def _earlier(job: Job, verb: str) -> _Earlier:
     """Read the earlier result and check that this job may change it (reads no rows)."""
-    out = job.output.path
+    out = job.output.local
     if not out.exists():
         raise InputError(f"{out}: no earlier result to {verb}; run `rowfold run` first")
     state, attrs = storage.read_state(out)
@@ -552,7 +588,7 @@ def _update_held(job: Job, progress: Progress | None, inline: bool) -> RunOutcom
     """``update_job`` while it holds the output."""
     from rowfold import update
 
-    out = job.output.path
+    out = job.output.local
     started = time.time()
     clock = _Clock()
     old = _earlier(job, "update")
@@ -624,7 +660,7 @@ def replace_job(
         the answer differs, or the input's row count changed (a replacement keeps the
         segment's rows where they were; rows appended since must wait for the next update).
     """
-    with storage.open_output(job.output.path, True, _inputs(job), wait_lock):
+    with storage.open_output(job.output.local, True, _inputs(job), wait_lock):
         return _replace_held(job, label, progress, inline)
 
 
@@ -632,7 +668,7 @@ def _replace_held(job: Job, label: str, progress: Progress | None, inline: bool)
     """``replace_job`` while it holds the output."""
     from rowfold import update
 
-    out = job.output.path
+    out = job.output.local
     started = time.time()
     clock = _Clock()
     old = _earlier(job, "replace")
@@ -706,13 +742,13 @@ def retire_job(
         When there is no earlier result, a label names no live segment, or every live
         segment would be retired.
     """
-    with storage.open_output(job.output.path, True, _inputs(job), wait_lock):
+    with storage.open_output(job.output.local, True, _inputs(job), wait_lock):
         return _retire_held(job, labels, progress)
 
 
 def _retire_held(job: Job, labels: list[str], progress: Progress | None) -> RunOutcome:
     """``retire_job`` while it holds the output."""
-    out = job.output.path
+    out = job.output.local
     started = time.time()
     clock = _Clock()
     old = _earlier(job, "retire")
@@ -828,7 +864,7 @@ def _commit_segments(
     }
     if factor is not None:
         state_sums["rtr"] = factor.conj().T @ factor
-    with storage.ResultWriter(job.output.path) as writer:
+    with storage.ResultWriter(job.output.local) as writer:
         writer.set_attrs({"q_state": STALE_Q_TEXT})
         return _commit(
             writer, job, view, fact, solution, stats, report, scale, state_sums, old.names

@@ -20,7 +20,7 @@ from typing import Any
 
 import yaml
 
-from rowfold.errors import JobError
+from rowfold.errors import JobError, OutputError
 from rowfold.storage.locations import ZIP_SUFFIX, redacted, scheme
 
 METHOD_NAMES = ("tsqr", "cholqr2", "scholqr3", "bcgs2", "bmgs", "rcholqr", "auto")
@@ -145,8 +145,10 @@ class OutputSpec:
 
     Attributes
     ----------
-    path : Path
-        Result store, ``.h5``/``.hdf5`` or ``.zarr``, absolute.
+    path : Path or str
+        Result store, ``.h5``/``.hdf5`` or ``.zarr``, absolute; or, as text, the fsspec URL
+        of a Zarr result on an object store (committed by pointer,
+        :mod:`rowfold.storage.published`).
     q : bool
         Also write the thin Q (m x n).
     overwrite : bool
@@ -154,12 +156,37 @@ class OutputSpec:
     measure_q : bool
         Form Q in the verification pass to measure its orthogonality and the
         factorization residual, without writing it.
+    storage_options : str
+        The file system's options for a URL ``path`` as JSON text ("" for none); the
+        resolved job keeps only their names.
     """
 
-    path: Path
+    path: Path | str
     q: bool = False
     overwrite: bool = False
     measure_q: bool = False
+    storage_options: str = field(default="", repr=False)
+
+    @property
+    def is_url(self) -> bool:
+        """Whether the result goes to an object store by URL (committed by pointer)."""
+        return isinstance(self.path, str)
+
+    @property
+    def local(self) -> Path:
+        """The local result path.
+
+        Raises
+        ------
+        OutputError
+            For a URL result: only ``run`` writes one (it commits locally, then publishes).
+        """
+        if isinstance(self.path, Path):
+            return self.path
+        raise OutputError(
+            f"{self.path}: a result on an object store is written by run only (key "
+            "output.path); update, replace, retire, compare and check need a local result"
+        )
 
 
 @dataclass(frozen=True, slots=True)
@@ -878,16 +905,16 @@ def _parse_output(doc: _Doc, base: Path) -> OutputSpec:
     keys = ("path", "q", "overwrite", "measure_q", "storage_options")
     section = _Section(doc, ("output",), keys)
     _refuse_url_credentials(doc, ("output", "path"), section.raw.get("path"))
-    _refuse_output_url(doc, section.raw.get("path"))
-    path = section.require("path", _suffixed_path(DATA_SUFFIXES, base))
-    if _storage_options(doc, section, ("output", "storage_options")):
+    _refuse_zip_output(doc, section.raw.get("path"))
+    path = section.require("path", _output_location(base))
+    options = _storage_options(doc, section, ("output", "storage_options"))
+    if options and not isinstance(path, str):
         raise doc.fail(
             ("output", "storage_options"),
-            "applies only to a URL output.path, and results are written to local paths only; "
-            "remove it",
+            "applies only to a URL output.path (s3://, gs://, memory://, ...); remove it",
         )
-    is_zarr = path.suffix.lower() == ".zarr"
-    if path.exists() and path.is_dir() != is_zarr:
+    is_zarr = str(path).lower().endswith(".zarr")
+    if isinstance(path, Path) and path.exists() and path.is_dir() != is_zarr:
         found, wanted = ("a file", "a folder") if is_zarr else ("a folder", "a file")
         raise doc.fail(
             ("output", "path"),
@@ -899,25 +926,33 @@ def _parse_output(doc: _Doc, base: Path) -> OutputSpec:
         q=section.get("q", _flag, False),
         overwrite=section.get("overwrite", _flag, False),
         measure_q=section.get("measure_q", _flag, False),
+        storage_options=options,
     )
 
 
-# Why a result is not written to an object store (see README "Inputs and outputs by URL").
-OUTPUT_URL_REFUSED = (
-    "results are written to local paths only: an object store has no atomic rename, and "
-    "rowfold commits a result only where the previous one stays whole until the new one is "
-    "complete; write to a local path (or file://) and copy the result"
-)
+def _output_location(base: Path) -> Callable[[Any], Path | str]:
+    """A local result path, or the fsspec URL of a Zarr result on an object store."""
+    local = _suffixed_path(DATA_SUFFIXES, base)
+
+    def parse(value: Any) -> Path | str:
+        text = _text(value).strip()
+        protocol = scheme(text)
+        if protocol is None or protocol == "file":
+            return local(text)
+        if not text.rstrip("/").lower().endswith(".zarr"):
+            raise ValueError(
+                "expected the URL of a Zarr result ending in .zarr (HDF5 results are written "
+                "to local paths)"
+            )
+        _require_file_system(protocol)
+        return text.rstrip("/")
+
+    return parse
 
 
-def _refuse_output_url(doc: _Doc, value: Any) -> None:
-    """Refuse an output URL other than ``file://`` (exit 2), naming it and the key."""
-    if not isinstance(value, str):
-        return
-    protocol = scheme(value.strip())
-    if protocol is not None and protocol != "file":
-        raise doc.fail(("output", "path"), f"{value.strip()}: {OUTPUT_URL_REFUSED}")
-    if value.strip().lower().endswith(ZIP_SUFFIX):
+def _refuse_zip_output(doc: _Doc, value: Any) -> None:
+    """Refuse a ``.zarr.zip`` output (zip stores are read as inputs only)."""
+    if isinstance(value, str) and value.strip().lower().endswith(ZIP_SUFFIX):
         raise doc.fail(
             ("output", "path"), "a .zarr.zip store is read as an input only; write a .zarr folder"
         )
@@ -1179,7 +1214,10 @@ def _with_resolved(job: Job) -> Job:
             "storage_options": redacted(json.loads(job.input.storage_options or "{}")),
         },
         "method": asdict(job.method),
-        "output": asdict(job.output),
+        "output": {
+            **asdict(job.output),
+            "storage_options": redacted(json.loads(job.output.storage_options or "{}")),
+        },
         "solve": asdict(job.solve),
         "gates": asdict(job.gates),
         "cluster": asdict(job.cluster),

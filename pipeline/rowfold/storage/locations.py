@@ -72,6 +72,7 @@ def exists(location: str, options: str = "") -> bool:
     import fsspec
 
     fs, root = fsspec.core.url_to_fs(location, **options_of(options))
+    fs.invalidate_cache()  # instances are shared in a process; another may have written
     return bool(fs.exists(root))
 
 
