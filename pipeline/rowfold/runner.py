@@ -298,7 +298,6 @@ def _run_to_url(
             f"{url}: a result exists (commit {existing.get('rowfold_commit')}); set "
             "output.overwrite: true to replace it"
         )
-    published.remove_stale(url, options, None if existing is None else existing["rowfold_commit"])
     with tempfile.TemporaryDirectory(prefix="rowfold-publish-") as scratch:
         store = Path(scratch) / url.rpartition("/")[2]
         local = replace(job, output=replace(job.output, path=store, overwrite=False))

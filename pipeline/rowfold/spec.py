@@ -759,7 +759,9 @@ def _parse_input(doc: _Doc, base: Path) -> InputSpec:
         )
     if spec.is_url:
         return spec
-    link = _broken_link(base / Path(str(spec.path)).expanduser())
+    raw = str(section.raw["path"]).strip()
+    raw = _file_url_path(raw) if scheme(raw) == "file" else raw
+    link = _broken_link(base / Path(raw).expanduser())
     if link is not None:
         name, target = link
         raise doc.fail(
