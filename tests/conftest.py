@@ -41,6 +41,8 @@ NUMERICAL_MODULES = {
     "test_sparse.py",
     "test_strategies.py",
     "test_update_guards.py",
+    "test_urls.py",
+    "test_csr_encoding.py",
 }
 
 

@@ -35,7 +35,7 @@ class Row:
 
 def method_job(job: Job, method: str) -> Job:
     """The job for one method: its own output, Q measured but not written."""
-    out = job.output.path
+    out = job.output.local
     target = out.with_name(out.with_suffix("").name + ".compare") / f"{method}{out.suffix}"
     target.parent.mkdir(parents=True, exist_ok=True)
     output = replace(job.output, path=target, q=False, overwrite=True, measure_q=True)
@@ -44,7 +44,7 @@ def method_job(job: Job, method: str) -> Job:
 
 def compare_paths(job: Job) -> tuple[Path, Path]:
     """Where the comparison JSON and HTML go."""
-    stem = job.output.path.with_suffix("")
+    stem = job.output.local.with_suffix("")
     return stem.with_name(stem.name + ".compare.json"), stem.with_name(stem.name + ".compare.html")
 
 

@@ -685,7 +685,7 @@ def assemble_report(
         "r_diagonal": np.real(np.diagonal(fact.R)),
         "rank": solution.rank if solution else _rank_only(fact.R, job),
         "warnings": [],
-        "output": str(job.output.path),
+        "output": str(job.resolved.get("output", {}).get("path", job.output.path)),
     }
     if solution is not None and stats is not None:
         report.update(_solution_figures(plan, solution, stats, sums, norm_a))

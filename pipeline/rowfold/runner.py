@@ -6,6 +6,8 @@ whole result is ready; the result store and its reports are committed together.
 
 from __future__ import annotations
 
+import json
+import tempfile
 import time
 from collections.abc import Iterator
 from contextlib import ExitStack, contextmanager
@@ -31,6 +33,7 @@ from rowfold.errors import (
     EXIT_INVALID,
     EXIT_OK,
     InputError,
+    OutputError,
     RowfoldError,
 )
 from rowfold.kernels import metrics
@@ -50,6 +53,7 @@ from rowfold.spec import (
     check_parameter_names,
     load_job,
 )
+from rowfold.storage import published
 from rowfold.storage.checkpoints import block_stamp, close_checkpoints, open_checkpoints
 from rowfold.storage.checkpoints import job_digest as job_digest_of
 
@@ -81,13 +85,13 @@ class RunOutcome:
         0 when every gate held, 3 when one failed or could not be evaluated.
     report : dict
         The report as written to JSON.
-    output : Path
-        The committed result store.
+    output : Path or str
+        The committed result store (its URL on an object store).
     """
 
     status: int
     report: dict[str, Any]
-    output: Path
+    output: Path | str
 
 
 @dataclass
@@ -110,20 +114,26 @@ def plan_job(job: Job) -> BlockPlan:
 
     ``input.matrix`` may name a dense dataset or a CSR group; which one is found by looking.
     """
-    path, missing = str(job.input.path), job.input.missing_chunks
-    matrix = storage.describe_matrix(storage.ArrayRef(path, job.input.matrix, missing))
+    matrix = storage.describe_matrix(input_ref(job, job.input.matrix))
     rhs = None
     if job.input.rhs is not None:
-        rhs = storage.describe_array(storage.ArrayRef(path, job.input.rhs, missing))
+        rhs = storage.describe_array(input_ref(job, job.input.rhs))
     weights = None
     if job.input.weights is not None:
-        weights = storage.describe_array(storage.ArrayRef(path, job.input.weights, missing))
+        weights = storage.describe_array(input_ref(job, job.input.weights))
     native = job.method.precision == "native"
     plan = plan_blocks(
         matrix, rhs, job.input.rows_per_block, native, weights, job.input.fixed_columns
     )
     check_fits_input(job, plan.rows, plan.cols)
     return plan
+
+
+def input_ref(job: Job, name: str) -> storage.ArrayRef:
+    """The reference tasks carry to array ``name`` of the job's input (a path or URL, and
+    the storage options as JSON text: no open handle, no credential object)."""
+    spec = job.input
+    return storage.ArrayRef(str(spec.path), name, spec.missing_chunks, spec.storage_options)
 
 
 # Fewer rows per block than this many times the columns draws a warning (common practice:
@@ -159,7 +169,7 @@ def parameter_names(job: Job, plan: BlockPlan) -> tuple[str, ...]:
     if given is None:
         return tuple(f"x{j}" for j in range(plan.input_cols))
     if isinstance(given, str):
-        ref = storage.ArrayRef(str(job.input.path), given, job.input.missing_chunks)
+        ref = input_ref(job, given)
         found = storage.read_names(ref)
         try:
             names = check_names(found)
@@ -187,7 +197,7 @@ def validate_job(job: Job) -> BlockPlan:
 def check_job(job: Job) -> dict[str, Any]:
     """Validate a job's inputs and output path without computing; return a summary."""
     plan = validate_job(job)
-    with storage.open_output(job.output.path, job.output.overwrite, _inputs(job)):
+    with storage.open_output(job.output.local, job.output.overwrite, _inputs(job)):
         pass  # takes the lock and recovers an interrupted commit, like a run would
     return {
         "job": job.name,
@@ -199,7 +209,7 @@ def check_job(job: Job) -> dict[str, Any]:
         "blocks": plan.blocks,
         "rows_per_block": plan.per_block,
         "method": job.method.name,
-        "output": str(job.output.path),
+        "output": str(job.output.local),
         "warnings": block_warnings(plan),
     }
 
@@ -212,9 +222,11 @@ def wants_q(job: Job) -> bool:
     return wanted or gates or job.solve.refine or job.solve.residuals
 
 
-def _inputs(job: Job) -> tuple[Path]:
-    """The input files or stores an output must stay clear of."""
-    return (job.input.path,)
+def _inputs(job: Job) -> tuple[Path, ...]:
+    """The input files or stores an output must stay clear of (a URL input is not on this
+    machine's disk, so no local output can overlap it)."""
+    path = job.input.path
+    return () if isinstance(path, str) else (path,)
 
 
 def run_job(
@@ -245,6 +257,8 @@ def run_job(
     RowfoldError
         Subclasses map to exit statuses 2 and 4; nothing is written on error.
     """
+    if job.output.is_url:
+        return _run_to_url(job, progress, inline, resume, wait_lock)
     progress = progress or Progress()
     clock = _Clock()
     started = time.time()
@@ -252,15 +266,45 @@ def run_job(
         plan = plan_job(job)
         names = parameter_names(job, plan)
     progress.begin_job(job.name, plan.rows)
-    with storage.open_output(job.output.path, job.output.overwrite, _inputs(job), wait_lock):
+    with storage.open_output(job.output.local, job.output.overwrite, _inputs(job), wait_lock):
         try:
             outcome = _run_with_engine(job, plan, names, progress, inline, resume, clock, started)
         except RowfoldError as exc:
             if exc.exit_status == EXIT_INVALID:  # a bad input: no checkpoint is worth resuming
-                close_checkpoints(job.output.path)
+                close_checkpoints(job.output.local)
             raise
-        close_checkpoints(job.output.path)
+        close_checkpoints(job.output.local)
     return outcome
+
+
+def _run_to_url(
+    job: Job, progress: Progress | None, inline: bool, resume: bool, wait_lock: float
+) -> RunOutcome:
+    """Run a job whose result goes to an object store: commit it in a private local folder,
+    then publish it by pointer (:mod:`rowfold.storage.published`)."""
+    url, options = str(job.output.path), job.output.storage_options
+    if resume:
+        raise OutputError(f"{url}: run --resume needs a local output.path (its checkpoints)")
+    validate_job(job)  # a bad input fails before the store is touched
+    try:
+        existing = published.current(url, options)
+    except Exception as exc:
+        raise OutputError(
+            f"{url}: cannot read the result's pointer ({exc.__class__.__name__}: {exc}); "
+            "check output.path and output.storage_options"
+        ) from None
+    if existing is not None and not job.output.overwrite:
+        raise OutputError(
+            f"{url}: a result exists (commit {existing.get('rowfold_commit')}); set "
+            "output.overwrite: true to replace it"
+        )
+    with tempfile.TemporaryDirectory(prefix="rowfold-publish-") as scratch:
+        store = Path(scratch) / url.rpartition("/")[2]
+        local = replace(job, output=replace(job.output, path=store, overwrite=False))
+        outcome = run_job(local, progress, inline, False, wait_lock)
+        parts = [store, *storage.report_paths(store)]
+        record = published.publish(url, options, str(outcome.report["commit"]), parts)
+    return RunOutcome(outcome.status, outcome.report, str(record["store"]))
 
 
 def _run_with_engine(
@@ -275,7 +319,7 @@ def _run_with_engine(
 ) -> RunOutcome:
     """Start the engine and scratch folder, run, and shut them down (before cleanup)."""
     with ExitStack() as stack:
-        workdir = stack.enter_context(storage.scratch_folder(job.output.path))
+        workdir = stack.enter_context(storage.scratch_folder(job.output.local))
         with clock.stage("cluster_start"):
             engine = stack.enter_context(_engine(job, progress, inline))
         with clock.stage("fingerprint"):
@@ -303,7 +347,7 @@ def _checkpoints(job: Job, plan: BlockPlan, inputs: dict[str, Any], resume: bool
             plan.bounds, *(inputs[name]["block_digests"] for name in names), strict=True
         )
     ]
-    folder, _, _ = open_checkpoints(job.output.path, {"job": job_digest, "blocks": blocks}, resume)
+    folder, _, _ = open_checkpoints(job.output.local, {"job": job_digest, "blocks": blocks}, resume)
     return folder
 
 
@@ -373,7 +417,7 @@ def _run_on(
     if job.solve.refine and solution is not None:
         with clock.stage("refine"):
             solution, refine_passes = _refined(job, plan, fact, solution, ctx, extra)
-    with storage.ResultWriter(job.output.path) as writer:
+    with storage.ResultWriter(job.output.local) as writer:
         with clock.stage("verify"):
             outputs = _row_outputs(job, plan)
             sink = _row_sink(writer, plan, outputs) if outputs else None
@@ -415,7 +459,7 @@ def _run_on(
             },
         )
         with clock.stage("write"):
-            return _commit(writer, job, plan, fact, solution, stats, report, scale, state)
+            return _commit(writer, job, plan, fact, solution, stats, report, scale, state, names)
 
 
 def _commit(
@@ -428,11 +472,14 @@ def _commit(
     report: dict[str, Any],
     scale: np.ndarray | None,
     state_sums: dict[str, Any],
+    names: tuple[str, ...],
 ) -> RunOutcome:
     """Write the store, its update state and the reports, commit them, and say how it went."""
     _write_store(writer, job, plan, fact, solution, stats, report, scale)
+    writer.put_labels("columns", names)
+    writer.put_labels("columns_i", names)
     _write_state(writer, plan, fact, state_sums, scale)
-    json_path, html_path = storage.report_paths(job.output.path)
+    json_path, html_path = storage.report_paths(job.output.local)
     report = {**report, "commit": writer.commit_id}  # the store records the same id
     drawing = time.perf_counter()
     page = render_html(report)
@@ -441,7 +488,7 @@ def _commit(
     writer.add_file(html_path, page)
     writer.commit()
     held = report["exit_status"] == EXIT_OK
-    return RunOutcome(EXIT_OK if held else EXIT_GATE_FAILED, report, job.output.path)
+    return RunOutcome(EXIT_OK if held else EXIT_GATE_FAILED, report, job.output.local)
 
 
 def comparison_table(records: list[dict[str, Any]]) -> str:
@@ -468,7 +515,7 @@ def compare_job(
         inputs = _fingerprints(job, plan, engine)
 
         def run(method_job: Job) -> RunOutcome:
-            out = method_job.output.path
+            out = method_job.output.local
             with (
                 storage.open_output(out, True, _inputs(job)),
                 storage.scratch_folder(out) as workdir,
@@ -496,7 +543,7 @@ def update_job(
         stored one, the input no longer starts with the rows its live segments consumed, or
         the label is taken (run ``run`` instead).
     """
-    with storage.open_output(job.output.path, True, _inputs(job), wait_lock):
+    with storage.open_output(job.output.local, True, _inputs(job), wait_lock):
         return _update_held(job, progress, inline)
 
 
@@ -515,7 +562,7 @@ class _Earlier:
 
 def _earlier(job: Job, verb: str) -> _Earlier:
     """Read the earlier result and check that this job may change it (reads no rows)."""
-    out = job.output.path
+    out = job.output.local
     if not out.exists():
         raise InputError(f"{out}: no earlier result to {verb}; run `rowfold run` first")
     state, attrs = storage.read_state(out)
@@ -540,7 +587,7 @@ def _update_held(job: Job, progress: Progress | None, inline: bool) -> RunOutcom
     """``update_job`` while it holds the output."""
     from rowfold import update
 
-    out = job.output.path
+    out = job.output.local
     started = time.time()
     clock = _Clock()
     old = _earlier(job, "update")
@@ -612,7 +659,7 @@ def replace_job(
         the answer differs, or the input's row count changed (a replacement keeps the
         segment's rows where they were; rows appended since must wait for the next update).
     """
-    with storage.open_output(job.output.path, True, _inputs(job), wait_lock):
+    with storage.open_output(job.output.local, True, _inputs(job), wait_lock):
         return _replace_held(job, label, progress, inline)
 
 
@@ -620,7 +667,7 @@ def _replace_held(job: Job, label: str, progress: Progress | None, inline: bool)
     """``replace_job`` while it holds the output."""
     from rowfold import update
 
-    out = job.output.path
+    out = job.output.local
     started = time.time()
     clock = _Clock()
     old = _earlier(job, "replace")
@@ -694,13 +741,13 @@ def retire_job(
         When there is no earlier result, a label names no live segment, or every live
         segment would be retired.
     """
-    with storage.open_output(job.output.path, True, _inputs(job), wait_lock):
+    with storage.open_output(job.output.local, True, _inputs(job), wait_lock):
         return _retire_held(job, labels, progress)
 
 
 def _retire_held(job: Job, labels: list[str], progress: Progress | None) -> RunOutcome:
     """``retire_job`` while it holds the output."""
-    out = job.output.path
+    out = job.output.local
     started = time.time()
     clock = _Clock()
     old = _earlier(job, "retire")
@@ -816,9 +863,11 @@ def _commit_segments(
     }
     if factor is not None:
         state_sums["rtr"] = factor.conj().T @ factor
-    with storage.ResultWriter(job.output.path) as writer:
+    with storage.ResultWriter(job.output.local) as writer:
         writer.set_attrs({"q_state": STALE_Q_TEXT})
-        return _commit(writer, job, view, fact, solution, stats, report, scale, state_sums)
+        return _commit(
+            writer, job, view, fact, solution, stats, report, scale, state_sums, old.names
+        )
 
 
 def _update_warnings(job: Job, verb: str = "update") -> list[str]:
@@ -873,7 +922,7 @@ def _row_sink(
     real = np.zeros(0, dtype=dtype).real.dtype
     shapes = {
         "Q": (plan.rows, plan.cols),
-        "residuals": (plan.rows, plan.rhs_cols),
+        "residuals": _rows_shape(plan),
         "leverage": (plan.rows,),
         "redundancy": (plan.rows,),
     }
@@ -883,9 +932,22 @@ def _row_sink(
 
     def sink(start: int, rows: dict[str, np.ndarray]) -> None:
         for name, block in rows.items():
-            writer.write_rows(name, start, block)
+            writer.write_rows(name, start, _row_shaped(plan, name, block))
 
     return sink
+
+
+_PER_RHS_ROWS = ("residuals", "standardized_residuals", "studentized_residuals")
+
+
+def _rows_shape(plan: BlockPlan) -> tuple[int, ...]:
+    """The stored shape of a per-rhs row array: (m,) for a 1-D rhs, (m, k) otherwise."""
+    return (plan.rows,) if plan.rhs_1d else (plan.rows, plan.rhs_cols)
+
+
+def _row_shaped(plan: BlockPlan, name: str, block: np.ndarray) -> np.ndarray:
+    """A block of a row array in its stored shape (a 1-D rhs drops the rhs axis)."""
+    return block[:, 0] if plan.rhs_1d and name in _PER_RHS_ROWS and block.ndim == 2 else block
 
 
 def _screen(
@@ -896,12 +958,16 @@ def _screen(
     total and the per-observation test."""
     chunk = plan.per_block
     for name in ("standardized_residuals", "studentized_residuals"):
-        writer.create(name, (plan.rows, plan.rhs_cols), np.float64, chunk)
+        writer.create(name, _rows_shape(plan), np.float64, chunk)
 
     def write(name: str, start: int, rows: np.ndarray) -> None:
-        writer.write_rows(name, start, np.real(rows))
+        writer.write_rows(name, start, _row_shaped(plan, name, np.real(rows)))
 
-    screening = quality.screen_residuals(writer.read_rows, write, plan, setup)
+    def read(name: str, start: int, stop: int) -> np.ndarray:
+        rows = writer.read_rows(name, start, stop)
+        return rows[:, None] if name in _PER_RHS_ROWS and rows.ndim == 1 else rows
+
+    screening = quality.screen_residuals(read, write, plan, setup)
     summary = {
         "flag_above": screening.flag_above,
         "flagged": screening.flagged[0] if plan.rhs_1d else screening.flagged,
@@ -987,7 +1053,7 @@ def _write_store(
             "rows": plan.rows,
             "cols": plan.input_cols,
             "fixed_columns": list(plan.fixed_columns),
-            "job": job.resolved_json(),
+            "job": json.loads(job.resolved_json()),
             "inputs": report["inputs"],
             "provenance": report["provenance"],
         }
@@ -1178,8 +1244,6 @@ def inspect_path(path: str | Path) -> dict[str, Any]:
     info = storage.describe_path(target)
     json_path, _ = storage.report_paths(target)
     if json_path.exists():
-        import json
-
         info["report"] = json.loads(json_path.read_text(encoding="utf-8"))
     return info
 

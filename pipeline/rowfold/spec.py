@@ -20,7 +20,8 @@ from typing import Any
 
 import yaml
 
-from rowfold.errors import JobError
+from rowfold.errors import JobError, OutputError
+from rowfold.storage.locations import ZIP_SUFFIX, redacted, scheme
 
 METHOD_NAMES = ("tsqr", "cholqr2", "scholqr3", "bcgs2", "bmgs", "rcholqr", "auto")
 TSQR_TREES = ("flat", "binary")
@@ -58,8 +59,10 @@ class InputSpec:
 
     Attributes
     ----------
-    path : Path
-        HDF5 file (``.h5``/``.hdf5``) or Zarr store (``.zarr``), absolute.
+    path : Path or str
+        HDF5 file (``.h5``/``.hdf5``), Zarr store (``.zarr``) or Zarr zip store
+        (``.zarr.zip``), absolute; or, as text, the fsspec URL of a Zarr store
+        (``s3://bucket/obs.zarr``, ``memory://...``; a ``file://`` URL becomes a path).
     matrix : str
         Dataset (HDF5) or array path (Zarr) of the m x n matrix A.
     rhs : str or None
@@ -78,9 +81,12 @@ class InputSpec:
     parameter_names : tuple of str, str or None
         A name per input column (for the report), or the name of a 1-D dataset of text in
         the input file that holds them; None names them ``x0 .. x{n-1}``.
+    storage_options : str
+        The file system's options for a URL ``path`` (``input.storage_options``) as JSON
+        text, "" for none; the resolved job keeps only their names.
     """
 
-    path: Path
+    path: Path | str
     matrix: str
     rhs: str | None = None
     weights: str | None = None
@@ -88,6 +94,12 @@ class InputSpec:
     fixed_columns: tuple[int, ...] = ()
     missing_chunks: str = "error"
     parameter_names: tuple[str, ...] | str | None = None
+    storage_options: str = field(default="", repr=False)
+
+    @property
+    def is_url(self) -> bool:
+        """Whether the input is read by URL (through fsspec) rather than from a path."""
+        return isinstance(self.path, str)
 
 
 @dataclass(frozen=True, slots=True)
@@ -133,8 +145,10 @@ class OutputSpec:
 
     Attributes
     ----------
-    path : Path
-        Result store, ``.h5``/``.hdf5`` or ``.zarr``, absolute.
+    path : Path or str
+        Result store, ``.h5``/``.hdf5`` or ``.zarr``, absolute; or, as text, the fsspec URL
+        of a Zarr result on an object store (committed by pointer,
+        :mod:`rowfold.storage.published`).
     q : bool
         Also write the thin Q (m x n).
     overwrite : bool
@@ -142,12 +156,37 @@ class OutputSpec:
     measure_q : bool
         Form Q in the verification pass to measure its orthogonality and the
         factorization residual, without writing it.
+    storage_options : str
+        The file system's options for a URL ``path`` as JSON text ("" for none); the
+        resolved job keeps only their names.
     """
 
-    path: Path
+    path: Path | str
     q: bool = False
     overwrite: bool = False
     measure_q: bool = False
+    storage_options: str = field(default="", repr=False)
+
+    @property
+    def is_url(self) -> bool:
+        """Whether the result goes to an object store by URL (committed by pointer)."""
+        return isinstance(self.path, str)
+
+    @property
+    def local(self) -> Path:
+        """The local result path.
+
+        Raises
+        ------
+        OutputError
+            For a URL result: only ``run`` writes one (it commits locally, then publishes).
+        """
+        if isinstance(self.path, Path):
+            return self.path
+        raise OutputError(
+            f"{self.path}: a result on an object store is written by run only (key "
+            "output.path); update, replace, retire, compare and check need a local result"
+        )
 
 
 @dataclass(frozen=True, slots=True)
@@ -621,18 +660,68 @@ def _tree(value: Any) -> str | int:
 
 def _suffixed_path(suffixes: tuple[str, ...], base: Path) -> Callable[[Any], Path]:
     def parse(value: Any) -> Path:
+        text = _text(value)
+        if scheme(text) == "file":
+            text = _file_url_path(text)
         try:
-            path = Path(_text(value)).expanduser()
+            path = Path(text).expanduser()
         except RuntimeError as exc:  # e.g. ~unknownuser
             raise ValueError(f"cannot expand the path ({exc})") from None
-        if path.suffix.lower() not in suffixes:
+        if not _has_suffix(path.name, suffixes):
             raise ValueError(f"expected a path ending in {' or '.join(suffixes)}")
         return path if path.is_absolute() else (base / path).resolve()
 
     return parse
 
 
+def _has_suffix(name: str, suffixes: tuple[str, ...]) -> bool:
+    return any(name.lower().endswith(suffix) for suffix in suffixes)
+
+
+def _file_url_path(url: str) -> str:
+    """The local path of a ``file://`` URL (``file:///data/obs.zarr`` -> ``/data/obs.zarr``)."""
+    from urllib.parse import unquote, urlsplit
+
+    parts = urlsplit(url)
+    if parts.netloc not in ("", "localhost") or not parts.path.startswith("/"):
+        raise ValueError("expected a file URL of an absolute path, file:///folder/name")
+    return unquote(parts.path)
+
+
+def _input_location(base: Path) -> Callable[[Any], Path | str]:
+    """A local path (as :func:`_suffixed_path`) or the fsspec URL of a Zarr store."""
+    local = _suffixed_path(INPUT_SUFFIXES, base)
+
+    def parse(value: Any) -> Path | str:
+        text = _text(value).strip()
+        protocol = scheme(text)
+        if protocol is None or protocol == "file":
+            return local(text)
+        if not text.rstrip("/").lower().endswith(".zarr"):
+            raise ValueError(
+                "expected the URL of a Zarr store ending in .zarr (HDF5, NetCDF and zip "
+                "inputs are read from local paths)"
+            )
+        _require_file_system(protocol)
+        return text.rstrip("/")
+
+    return parse
+
+
+def _require_file_system(protocol: str) -> None:
+    """Refuse a URL scheme fsspec does not know, or whose package is not installed."""
+    import fsspec
+
+    try:
+        fsspec.get_filesystem_class(protocol)
+    except ValueError:
+        raise ValueError(f"fsspec knows no file system for {protocol}://") from None
+    except ImportError as exc:
+        raise ValueError(f"{protocol}:// needs a package that is not installed ({exc})") from None
+
+
 DATA_SUFFIXES = (".h5", ".hdf5", ".zarr")
+INPUT_SUFFIXES = (*DATA_SUFFIXES, ZIP_SUFFIX)
 
 
 INPUT_KEYS = (
@@ -644,22 +733,35 @@ INPUT_KEYS = (
     "fixed_columns",
     "missing_chunks",
     "parameter_names",
+    "storage_options",
 )
 
 
 def _parse_input(doc: _Doc, base: Path) -> InputSpec:
     section = _Section(doc, ("input",), INPUT_KEYS)
+    _refuse_url_credentials(doc, ("input", "path"), section.raw.get("path"))
     spec = InputSpec(
         weights=section.get("weights", _text),
-        path=section.require("path", _suffixed_path(DATA_SUFFIXES, base)),
+        path=section.require("path", _input_location(base)),
         matrix=section.require("matrix", _text),
         rhs=section.get("rhs", _text),
         rows_per_block=section.get("rows_per_block", _auto_or_count),
         fixed_columns=section.get("fixed_columns", _column_list, ()),
         missing_chunks=section.get("missing_chunks", _one_of(MISSING_CHUNKS), "error"),
         parameter_names=section.get("parameter_names", _names_or_dataset),
+        storage_options=_storage_options(doc, section, ("input", "storage_options")),
     )
-    link = _broken_link(base / Path(str(section.raw["path"])).expanduser())
+    if spec.storage_options and not spec.is_url:
+        raise doc.fail(
+            ("input", "storage_options"),
+            "applies only to a URL input.path (s3://, gs://, memory://, ...); "
+            "remove it or give the store's URL",
+        )
+    if spec.is_url:
+        return spec
+    raw = str(section.raw["path"]).strip()
+    raw = _file_url_path(raw) if scheme(raw) == "file" else raw
+    link = _broken_link(base / Path(raw).expanduser())
     if link is not None:
         name, target = link
         raise doc.fail(
@@ -668,6 +770,42 @@ def _parse_input(doc: _Doc, base: Path) -> InputSpec:
             "restore the target or point input.path at the data",
         )
     return spec
+
+
+def _refuse_url_credentials(doc: _Doc, keypath: tuple[str, ...], value: Any) -> None:
+    """Refuse a URL with a user or password in it, without repeating it in the message."""
+    from urllib.parse import urlsplit
+
+    if not isinstance(value, str) or scheme(value.strip()) is None:
+        return
+    try:
+        userinfo = "@" in urlsplit(value.strip()).netloc
+    except ValueError:
+        userinfo = False
+    if userinfo:
+        raise doc.fail(
+            keypath,
+            "a URL with a user or password in it is not accepted (it would be recorded); "
+            "give credentials in storage_options or the file system's own configuration",
+        )
+
+
+def _storage_options(doc: _Doc, section: _Section, keypath: tuple[str, ...]) -> str:
+    """Storage options as JSON text; errors never repeat a value (it may be a credential)."""
+    value = section.raw.get(keypath[-1])
+    if value is None:
+        return ""
+    if not isinstance(value, dict) or not all(isinstance(k, str) for k in value):
+        raise doc.fail(
+            keypath, f"expected a mapping of option names to values, found {_kind(value)}"
+        )
+    try:
+        return json.dumps(value, sort_keys=True, allow_nan=False)
+    except (TypeError, ValueError):
+        raise doc.fail(
+            keypath,
+            "expected plain values (text, numbers, true/false, lists and mappings of them)",
+        ) from None
 
 
 def _broken_link(path: Path) -> tuple[str, str] | None:
@@ -766,10 +904,19 @@ def _parse_method(doc: _Doc) -> MethodSpec:
 
 
 def _parse_output(doc: _Doc, base: Path) -> OutputSpec:
-    section = _Section(doc, ("output",), ("path", "q", "overwrite", "measure_q"))
-    path = section.require("path", _suffixed_path(DATA_SUFFIXES, base))
-    is_zarr = path.suffix.lower() == ".zarr"
-    if path.exists() and path.is_dir() != is_zarr:
+    keys = ("path", "q", "overwrite", "measure_q", "storage_options")
+    section = _Section(doc, ("output",), keys)
+    _refuse_url_credentials(doc, ("output", "path"), section.raw.get("path"))
+    _refuse_zip_output(doc, section.raw.get("path"))
+    path = section.require("path", _output_location(base))
+    options = _storage_options(doc, section, ("output", "storage_options"))
+    if options and not isinstance(path, str):
+        raise doc.fail(
+            ("output", "storage_options"),
+            "applies only to a URL output.path (s3://, gs://, memory://, ...); remove it",
+        )
+    is_zarr = str(path).lower().endswith(".zarr")
+    if isinstance(path, Path) and path.exists() and path.is_dir() != is_zarr:
         found, wanted = ("a file", "a folder") if is_zarr else ("a folder", "a file")
         raise doc.fail(
             ("output", "path"),
@@ -781,7 +928,36 @@ def _parse_output(doc: _Doc, base: Path) -> OutputSpec:
         q=section.get("q", _flag, False),
         overwrite=section.get("overwrite", _flag, False),
         measure_q=section.get("measure_q", _flag, False),
+        storage_options=options,
     )
+
+
+def _output_location(base: Path) -> Callable[[Any], Path | str]:
+    """A local result path, or the fsspec URL of a Zarr result on an object store."""
+    local = _suffixed_path(DATA_SUFFIXES, base)
+
+    def parse(value: Any) -> Path | str:
+        text = _text(value).strip()
+        protocol = scheme(text)
+        if protocol is None or protocol == "file":
+            return local(text)
+        if not text.rstrip("/").lower().endswith(".zarr"):
+            raise ValueError(
+                "expected the URL of a Zarr result ending in .zarr (HDF5 results are written "
+                "to local paths)"
+            )
+        _require_file_system(protocol)
+        return text.rstrip("/")
+
+    return parse
+
+
+def _refuse_zip_output(doc: _Doc, value: Any) -> None:
+    """Refuse a ``.zarr.zip`` output (zip stores are read as inputs only)."""
+    if isinstance(value, str) and value.strip().lower().endswith(ZIP_SUFFIX):
+        raise doc.fail(
+            ("output", "path"), "a .zarr.zip store is read as an input only; write a .zarr folder"
+        )
 
 
 def _parse_solve(doc: _Doc) -> SolveSpec:
@@ -1035,9 +1211,15 @@ def _with_resolved(job: Job) -> Job:
     plain = {
         "name": job.name,
         "source": str(job.source),
-        "input": asdict(job.input),
+        "input": {
+            **asdict(job.input),
+            "storage_options": redacted(json.loads(job.input.storage_options or "{}")),
+        },
         "method": asdict(job.method),
-        "output": asdict(job.output),
+        "output": {
+            **asdict(job.output),
+            "storage_options": redacted(json.loads(job.output.storage_options or "{}")),
+        },
         "solve": asdict(job.solve),
         "gates": asdict(job.gates),
         "cluster": asdict(job.cluster),

@@ -3,8 +3,10 @@
 rowfold calls :func:`reached` at a few named points: ``startup`` (the CLI, before its heavy
 imports), ``writer:staged`` (a result store was created under its staging folder),
 ``writer:rows`` (rows were written into it), ``lock:busy`` (a run found its output held
-by another and is waiting, ``--wait-lock``) and every step of the commit protocol
-(``commit:<step>``, see :mod:`rowfold.storage.commit`). Only tests set the variable::
+by another and is waiting, ``--wait-lock``), every step of the commit protocol
+(``commit:<step>``, see :mod:`rowfold.storage.commit`) and of publishing a result on an
+object store (``publish:upload:<part>``, ``publish:uploaded``, ``publish:pointer``, see
+:mod:`rowfold.storage.published`). Only tests set the variable::
 
     ROWFOLD_TEST_HOOK="commit:journal=exit"     # os._exit(99) right after the journal
     ROWFOLD_TEST_HOOK="writer:rows=pause"       # wait there (see below)

@@ -2,7 +2,12 @@
 
 A CSR matrix is a group holding three 1-D arrays, ``data`` (the stored values),
 ``indices`` (their column numbers) and ``indptr`` (m + 1 offsets: row i owns
-``data[indptr[i]:indptr[i + 1]]``), and an attribute ``shape = [m, n]``. Rows
+``data[indptr[i]:indptr[i + 1]]``), and an attribute ``shape = [m, n]``. The encoding
+attributes of the scientific-Python ecosystem's on-disk sparse convention
+(``encoding-type: csr_matrix``, ``encoding-version: 0.1.0``) are written too, and groups
+written by other tools in that convention are read as they are; a group that declares
+another encoding (``csc_matrix``: column-compressed, the same three arrays meaning something
+else) or version is refused rather than misread. Rows
 ``[start, stop)`` are read by slicing ``indptr[start:stop + 1]`` and then the matching range
 of ``indices`` and ``data``, so a worker reads only its own rows.
 
@@ -23,7 +28,7 @@ from typing import Any
 import h5py
 import numpy as np
 
-from rowfold.errors import InputError, InputMissingError
+from rowfold.errors import InputError
 from rowfold.storage.chunks import require_hdf5_chunks, require_zarr_chunks, row_range
 from rowfold.storage.inputs import (
     _HDF5_LOCK,
@@ -35,10 +40,11 @@ from rowfold.storage.inputs import (
     _kept,
     _log_read,
     _missing,
-    _open_zarr,
+    _open_ref,
     describe_array,
     forget_input,
     open_dataset,
+    require_location,
 )
 
 # Checks that the chunks of one part of a CSR group covering a range are stored:
@@ -47,6 +53,9 @@ ChunkCheck = Callable[[str, int, int, Callable[[int, int], str]], None]
 
 CSR_ARRAYS = ("data", "indices", "indptr")
 """The arrays a CSR group holds."""
+
+ENCODING = {"encoding-type": "csr_matrix", "encoding-version": "0.1.0"}
+"""The group attributes of the on-disk sparse convention that describe our layout."""
 
 WRITE_CHUNK = 1 << 16
 """Elements (rows, for the arrays beside the group) per on-disk chunk of every array
@@ -96,12 +105,23 @@ def _members_hdf5(handle: Any, name: str) -> dict[str, Any] | None:
         for key, value in obj.items()
         if isinstance(value, h5py.Dataset)
     }
-    return {"arrays": arrays, "shape": obj.attrs.get("shape")}
+    return {"arrays": arrays, "shape": obj.attrs.get("shape"), **_encoding(obj.attrs)}
 
 
-def _members_zarr(path: str, name: str) -> dict[str, Any] | None:
-    root = _open_zarr(path)
-    obj = root[name] if name not in ("", ".", "/") else root
+def _encoding(attrs: Any) -> dict[str, Any]:
+    """The group's encoding attributes (text; absent ones left out)."""
+    found = {}
+    for key in ENCODING:
+        value = attrs.get(key)
+        if isinstance(value, bytes | np.bytes_):
+            value = value.decode("utf-8", "replace")
+        if value is not None:
+            found[key] = value
+    return found
+
+
+def _members_zarr(ref: ArrayRef) -> dict[str, Any] | None:
+    obj = _open_ref(ref)
     if not hasattr(obj, "members"):
         return None
     arrays = {
@@ -109,20 +129,19 @@ def _members_zarr(path: str, name: str) -> dict[str, Any] | None:
         for key, value in obj.members()
         if not hasattr(value, "members")
     }
-    return {"arrays": arrays, "shape": obj.attrs.get("shape")}
+    return {"arrays": arrays, "shape": obj.attrs.get("shape"), **_encoding(obj.attrs)}
 
 
 def _members(ref: ArrayRef) -> dict[str, Any] | None:
     """Open the file and describe ``ref``: None when it is a dataset (dense input)."""
-    if not Path(ref.path).exists():
-        raise InputMissingError(f"{ref.path}: input file not found")
+    require_location(ref)
     try:
         if ref.is_hdf5:
             with _HDF5_LOCK, h5py.File(ref.path, "r") as handle:
                 return _members_hdf5(handle, ref.name)
         with warnings.catch_warnings():
             warnings.simplefilter("ignore")  # zarr warns about folders it cannot read
-            return _members_zarr(ref.path, ref.name)
+            return _members_zarr(ref)
     except KeyError:
         raise _missing(ref) from None
     except Exception as exc:
@@ -170,8 +189,25 @@ def describe_csr(ref: ArrayRef) -> CsrInfo:
     return _check_group(ref, members)
 
 
+def _check_encoding(where: str, members: dict[str, Any]) -> None:
+    """Refuse a group that declares an encoding other than ours (it would be misread)."""
+    kind = members.get("encoding-type")
+    if kind is not None and kind != ENCODING["encoding-type"]:
+        raise InputError(
+            f"{where}: attribute encoding-type is {kind!r}; only csr_matrix (row-compressed) "
+            "groups are read; convert it to CSR (e.g. scipy.sparse's tocsr) and write it again"
+        )
+    version = members.get("encoding-version")
+    if kind is not None and version is not None and version != ENCODING["encoding-version"]:
+        raise InputError(
+            f"{where}: attribute encoding-version is {version!r}; csr_matrix version "
+            f"{ENCODING['encoding-version']} is the one read"
+        )
+
+
 def _check_group(ref: ArrayRef, members: dict[str, Any]) -> CsrInfo:
     where = ref.describe()
+    _check_encoding(where, members)
     arrays: dict[str, tuple[tuple[int, ...], str]] = members["arrays"]
     missing = [name for name in CSR_ARRAYS if name not in arrays]
     if missing:
@@ -229,7 +265,7 @@ def _read_slice(ref: ArrayRef, last: int) -> tuple[int, int]:
         with _HDF5_LOCK, h5py.File(ref.path, "r") as handle:
             dataset = handle[ref.name]
             return int(dataset[0]), int(dataset[last])
-    array = _open_zarr(ref.path)[ref.name]
+    array = _open_ref(ref)
     return int(array[0]), int(array[last])
 
 
@@ -268,8 +304,7 @@ def read_csr_rows(
             with _HDF5_LOCK:
                 arrays = {part: open_dataset(ref.path, ref.part(part).name) for part in CSR_ARRAYS}
                 return _read_from(arrays, start, stop, _hdf5_check(ref, arrays))
-        root = _open_zarr(ref.path)
-        group = root[ref.name] if ref.name not in ("", ".", "/") else root
+        group = _open_ref(ref)
         return _read_from(group, start, stop, _zarr_check(ref, group))
     except InputError:
         raise
@@ -290,8 +325,7 @@ def require_csr_chunks(ref: ArrayRef, start: int, stop: int) -> None:
             arrays = {part: open_dataset(ref.path, ref.part(part).name) for part in CSR_ARRAYS}
             _check_parts(arrays, start, stop, _hdf5_check(ref, arrays))
         return
-    root = _open_zarr(ref.path)
-    group = root[ref.name] if ref.name not in ("", ".", "/") else root
+    group = _open_ref(ref)
     _check_parts(group, start, stop, _zarr_check(ref, group))
 
 
@@ -424,6 +458,7 @@ def _write_hdf5(
                 del handle[name]
         created = handle.create_group(group)
         created.attrs["shape"] = shape
+        created.attrs.update(ENCODING)
         for name, array in {**arrays, **extra}.items():
             if array.dtype.kind in "UO":  # text, e.g. parameter names
                 handle.create_dataset(name, data=array.astype(object), dtype=TEXT)
@@ -447,7 +482,7 @@ def _write_zarr(
         if name in root:
             del root[name]
     created = root.require_group(group)
-    created.attrs["shape"] = [int(v) for v in shape]
+    created.attrs.update({"shape": [int(v) for v in shape], **ENCODING})
     for name, array in {**arrays, **extra}.items():
         out = root.create_array(
             name,

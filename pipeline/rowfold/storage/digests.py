@@ -40,7 +40,7 @@ from rowfold.storage.inputs import (
     _HDF5_LOCK,
     ArrayRef,
     _log_read,
-    _open_zarr,
+    _open_ref,
     open_dataset,
     read_rows,
 )
@@ -133,8 +133,7 @@ def layout_change(old: dict[str, Any], new: dict[str, Any]) -> str | None:
 
 
 def _zarr_array(ref: ArrayRef) -> Any:
-    root = _open_zarr(ref.path)
-    return root[ref.name] if ref.name not in ("", ".", "/") else root
+    return _open_ref(ref)
 
 
 class _Chunks:

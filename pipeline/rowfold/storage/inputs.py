@@ -1,7 +1,8 @@
 """Dense inputs in HDF5 or Zarr, read by row range.
 
-Tasks receive an :class:`ArrayRef` (a path and a dataset name, both plain strings) and a row
-range; the worker opens the file itself. Nothing here keeps a file open between calls.
+Tasks receive an :class:`ArrayRef` (a path or URL, a dataset name and any storage options as
+JSON text: plain strings) and a row range; the worker opens the file or store itself (see
+:mod:`rowfold.storage.locations`).
 """
 
 from __future__ import annotations
@@ -9,7 +10,7 @@ from __future__ import annotations
 import os
 import threading
 import warnings
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
@@ -17,6 +18,7 @@ import h5py
 import numpy as np
 
 from rowfold.errors import InputError, InputMissingError
+from rowfold.storage import locations
 from rowfold.storage.chunks import FILL_VALUE, require_hdf5_chunks, require_zarr_chunks
 
 if TYPE_CHECKING:
@@ -50,23 +52,27 @@ class ArrayRef:
     Attributes
     ----------
     path : str
-        Absolute path of the file or store.
+        Absolute path of the file or store, or the URL of a Zarr store.
     name : str
         Dataset path inside it, e.g. ``network/A``.
     missing_chunks : str
         ``"error"``: reading rows whose chunk is absent (Zarr) or never written (HDF5)
         raises InputError; ``"fill_value"``: they read as the fill value
         (``input.missing_chunks``; scratch arrays, which start as zeros).
+    storage_options : str
+        The file system's options for a URL (``input.storage_options``) as JSON text, ""
+        for none. Never written anywhere (stores and reports record only their names).
     """
 
     path: str
     name: str
     missing_chunks: str = "error"
+    storage_options: str = field(default="", repr=False)
 
     def part(self, name: str) -> ArrayRef:
         """The array ``name`` inside this group (e.g. ``indptr`` of a CSR group)."""
         prefix = "" if self.name in ("", ".", "/") else self.name.rstrip("/") + "/"
-        return ArrayRef(self.path, prefix + name, self.missing_chunks)
+        return ArrayRef(self.path, prefix + name, self.missing_chunks, self.storage_options)
 
     @property
     def checks_chunks(self) -> bool:
@@ -105,13 +111,41 @@ class ArrayInfo:
     chunk_rows: int | None
 
 
-def _open_zarr(path: str) -> Any:
-    import zarr
+def _open_zarr(path: str, options: str = "") -> Any:
+    """Open a Zarr store read-only: a local path, a ``.zarr.zip`` or a URL."""
+    return locations.open_zarr(path, options)
 
-    return zarr.open(store=path, mode="r")
+
+def _open_ref(ref: ArrayRef) -> Any:
+    """The Zarr array or group ``ref`` names, opened read-only."""
+    root = _open_zarr(ref.path, ref.storage_options)
+    return root[ref.name] if ref.name not in ("", ".", "/") else root
 
 
-def _list_names(path: str) -> list[str]:
+def require_location(ref: ArrayRef) -> None:
+    """Raise when nothing is stored at ``ref.path`` (a file, a store or a URL).
+
+    Raises
+    ------
+    InputMissingError
+        When the file or store does not exist.
+    InputError
+        When a URL's file system cannot be reached (the message names the URL, never a
+        storage option's value).
+    """
+    try:
+        found = locations.exists(ref.path, ref.storage_options)
+    except Exception as exc:
+        raise InputError(
+            f"{ref.path}: cannot reach the store ({exc.__class__.__name__}: {exc}); "
+            "check input.path and input.storage_options"
+        ) from None
+    if not found:
+        what = "store" if locations.is_url(ref.path) else "file"
+        raise InputMissingError(f"{ref.path}: input {what} not found (input.path)")
+
+
+def _list_names(path: str, options: str = "") -> list[str]:
     """List array names in a file, for 'dataset not found' messages."""
     names: list[str] = []
     if Path(path).suffix.lower() in HDF5_SUFFIXES:
@@ -120,7 +154,7 @@ def _list_names(path: str) -> list[str]:
                 lambda name, obj: names.append(name) if isinstance(obj, h5py.Dataset) else None
             )
         return names
-    root = _open_zarr(path)
+    root = _open_zarr(path, options)
     if hasattr(root, "arrays"):
         for name, _ in root.members(max_depth=None):
             if hasattr(root[name], "shape") and not hasattr(root[name], "members"):
@@ -135,7 +169,7 @@ def _missing(ref: ArrayRef) -> InputMissingError:
     try:
         with warnings.catch_warnings():
             warnings.simplefilter("ignore")  # zarr warns about what it cannot read
-            present = ", ".join(_list_names(ref.path)) or "none"
+            present = ", ".join(_list_names(ref.path, ref.storage_options)) or "none"
     except Exception:  # listing is only a courtesy in an error message
         present = "unknown"
     return InputMissingError(
@@ -192,8 +226,7 @@ def describe_array(ref: ArrayRef) -> ArrayInfo:
     InputError
         When the file cannot be read as HDF5 or Zarr.
     """
-    if not os.path.exists(ref.path):
-        raise InputMissingError(f"{ref.path}: input file not found")
+    require_location(ref)
     try:
         if ref.is_hdf5:
             return _describe_hdf5(ref)
@@ -223,8 +256,7 @@ def _describe_hdf5(ref: ArrayRef) -> ArrayInfo:
 
 
 def _describe_zarr(ref: ArrayRef) -> ArrayInfo:
-    root = _open_zarr(ref.path)
-    obj = root[ref.name] if ref.name not in ("", ".", "/") else root
+    obj = _open_ref(ref)
     if not hasattr(obj, "chunks") or not hasattr(obj, "dtype"):
         raise InputError(f"{ref.describe()}: expected an array, found a group")
     chunks = obj.chunks
@@ -258,8 +290,7 @@ def read_rows(ref: ArrayRef, start: int, stop: int, purpose: str = "data") -> np
                     signature = _kept(ref.path)[0]
                     require_hdf5_chunks(dataset, ref.describe(), start, stop, signature)
                 return np.asarray(dataset[start:stop])
-        root = _open_zarr(ref.path)
-        obj = root[ref.name] if ref.name not in ("", ".", "/") else root
+        obj = _open_ref(ref)
         if ref.checks_chunks:
             require_zarr_chunks(obj, ref.describe(), start, stop)
         return np.asarray(obj[start:stop])
@@ -293,7 +324,7 @@ def read_names(ref: ArrayRef) -> list[str]:
             with _HDF5_LOCK, h5py.File(ref.path, "r") as handle:
                 values = handle[ref.name][...]
         else:
-            values = np.asarray(_open_zarr(ref.path)[ref.name][...])
+            values = np.asarray(_open_ref(ref)[...])
     except Exception as exc:
         raise InputError(
             f"{ref.describe()}: cannot read the parameter names ({exc.__class__.__name__}: {exc})"
@@ -347,6 +378,7 @@ def close_open_inputs() -> None:
     """Close every kept input handle of this process (at the end of a job)."""
     for path in list(_OPEN_INPUTS):
         forget_input(path)
+    locations.close_zips()
 
 
 def _log_read(ref: ArrayRef, start: int, stop: int, purpose: str) -> None:

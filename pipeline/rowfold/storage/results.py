@@ -26,6 +26,7 @@ import numpy as np
 from rowfold import testhooks
 from rowfold.errors import OutputError, RowfoldError, RunError
 from rowfold.storage import commit as protocol
+from rowfold.storage import layout
 from rowfold.storage.inputs import _HDF5_LOCK, HDF5_SUFFIXES
 from rowfold.storage.locks import OutputBusyError, output_lock
 
@@ -254,10 +255,15 @@ def scratch_folder(path: Path) -> Iterator[Path]:
         protocol.remove_entry(folder)
 
 
-def _jsonable(value: Any) -> Any:
-    """Make attribute values storable in both HDF5 and Zarr (JSON text for containers)."""
+def _hdf5_attr(value: Any) -> Any:
+    """An HDF5 attribute value: a list of integers as an integer array, other containers
+    as JSON text (HDF5 attributes hold no nested data)."""
+    if isinstance(value, list | tuple) and all(
+        isinstance(v, int | np.integer) and not isinstance(v, bool) for v in value
+    ):
+        return np.asarray(value, dtype=np.int64)
     if isinstance(value, dict | list | tuple):
-        return json.dumps(value, sort_keys=True, default=str)
+        return layout.to_json_text(value)
     return value
 
 
@@ -280,6 +286,9 @@ class ResultWriter:
         self._staging: protocol.Staging | None = None
         self._files: list[str] = []
         self._claim = ExitStack()
+        self._sizes: dict[str, dict[str, int]] = {}  # group -> dimension -> size
+        self._arrays: dict[str, tuple[str, ...]] = {}  # array -> its dimension names
+        self._labelled: set[str] = set()  # dimensions with a coordinate array
 
     @property
     def commit_id(self) -> str:
@@ -340,11 +349,20 @@ class ResultWriter:
     def create(self, name: str, shape: tuple[int, ...], dtype: Any, chunk_rows: int) -> None:
         """Create an empty array to be filled by :meth:`write_rows`."""
         chunks = (max(1, min(chunk_rows, shape[0] or 1)), *shape[1:])
+        dims = self._dimensions(name, shape)
         if self.is_hdf5:
             with _HDF5_LOCK:
-                self._handle.create_dataset(name, shape=shape, dtype=dtype, chunks=chunks)
+                created = self._handle.create_dataset(name, shape=shape, dtype=dtype, chunks=chunks)
+                created.attrs.update(layout.array_attrs(name))
         else:
-            self._handle.create_array(name, shape=shape, dtype=dtype, chunks=chunks)
+            self._handle.create_array(
+                name,
+                shape=shape,
+                dtype=dtype,
+                chunks=chunks,
+                dimension_names=dims,
+                attributes=layout.array_attrs(name),
+            )
 
     def write_rows(self, name: str, start: int, block: np.ndarray) -> None:
         """Write ``block`` into rows ``start .. start + len(block)`` of array ``name``."""
@@ -363,23 +381,66 @@ class ResultWriter:
         return np.asarray(self._handle[name][start:stop])
 
     def put(self, name: str, array: np.ndarray) -> None:
-        """Write a whole (small) array."""
+        """Write a whole (small) array, with its dimension names and what it holds."""
         array = np.asarray(array)
+        dims = self._dimensions(name, array.shape)
         if self.is_hdf5:
             with _HDF5_LOCK:
-                self._handle.create_dataset(name, data=array)
+                created = self._handle.create_dataset(name, data=array)
+                created.attrs.update(layout.array_attrs(name))
         else:
-            created = self._handle.create_array(name, shape=array.shape, dtype=array.dtype)
+            created = self._handle.create_array(
+                name,
+                shape=array.shape,
+                dtype=array.dtype,
+                dimension_names=dims,
+                attributes=layout.array_attrs(name),
+            )
             created[...] = array
 
-    def set_attrs(self, attrs: dict[str, Any]) -> None:
-        """Set store attributes; containers are stored as JSON text."""
-        clean = {key: _jsonable(value) for key, value in attrs.items()}
+    def put_labels(self, dimension: str, labels: Sequence[str]) -> None:
+        """Write text labels along a dimension (a coordinate: the parameter names)."""
+        self._dimensions(dimension, (len(labels),), (dimension,))
+        self._labelled.add(dimension)
+        values = np.array(list(labels), dtype=object)
+        attrs = {"long_name": f"parameter name along {dimension}"}
         if self.is_hdf5:
+            with _HDF5_LOCK:
+                created = self._handle.create_dataset(
+                    dimension, data=values, dtype=h5py.string_dtype()
+                )
+                created.attrs.update(attrs)
+        else:
+            created = self._handle.create_array(
+                dimension,
+                shape=values.shape,
+                dtype=str,
+                dimension_names=[dimension],
+                attributes=attrs,
+            )
+            created[...] = values.astype(str)
+
+    def _dimensions(
+        self, name: str, shape: tuple[int, ...], dims: tuple[str, ...] | None = None
+    ) -> tuple[str, ...]:
+        """Name the dimensions of array ``name``; record each one's size in its group."""
+        dims = dims or layout.dimension_names(name, len(shape))
+        group = name.rpartition("/")[0]
+        sizes = self._sizes.setdefault(group, {})
+        for dim, size in zip(dims, shape, strict=True):
+            if sizes.setdefault(dim, size) != size:
+                raise ValueError(f"{name}: dimension {dim} is {size} long, elsewhere {sizes[dim]}")
+        self._arrays[name] = dims
+        return dims
+
+    def set_attrs(self, attrs: dict[str, Any]) -> None:
+        """Set store attributes: native JSON values in Zarr, JSON text for containers in HDF5."""
+        if self.is_hdf5:
+            clean = {key: _hdf5_attr(value) for key, value in attrs.items()}
             with _HDF5_LOCK:
                 self._handle.attrs.update(clean)
         else:
-            self._handle.attrs.update(clean)
+            self._handle.attrs.update({key: layout.json_value(v) for key, v in attrs.items()})
 
     def add_file(self, final: Path, text: str) -> None:
         """Stage a text file (a report, beside the store) to be committed with the store."""
@@ -400,7 +461,12 @@ class ResultWriter:
         """
         assert self._staging is not None, "the writer is not open"
         self.set_attrs({"rowfold_commit": self.commit_id})
+        if self.is_hdf5:
+            with _HDF5_LOCK:
+                layout.attach_scales(self._handle, self._sizes, self._arrays, self._labelled)
         self._close()
+        if not self.is_hdf5:
+            layout.consolidate(self._staging.part(self.path.name))
         staging = self._staging
         try:
             staging.commit([self.path.name, *self._files])
@@ -439,7 +505,7 @@ def describe_path(path: Path) -> dict[str, Any]:
             with _HDF5_LOCK, h5py.File(path, "r") as handle:
 
                 def visit(name: str, obj: Any) -> None:
-                    if isinstance(obj, h5py.Dataset):
+                    if isinstance(obj, h5py.Dataset) and not layout.is_dimension_only(obj):
                         arrays[name] = _hdf5_array_info(obj)
                     elif isinstance(obj, h5py.Group) and "shape" in obj.attrs:
                         groups[name] = {k: _plain(v) for k, v in obj.attrs.items()}
@@ -521,7 +587,11 @@ def read_result(path: Path) -> dict[str, np.ndarray]:
         with _HDF5_LOCK, h5py.File(path, "r") as handle:
 
             def visit(name: str, obj: Any) -> None:
-                if isinstance(obj, h5py.Dataset) and name not in ROW_ARRAYS:
+                if (
+                    isinstance(obj, h5py.Dataset)
+                    and name not in ROW_ARRAYS
+                    and not layout.is_dimension_only(obj)
+                ):
                     out[name] = np.asarray(obj[...])
 
             handle.visititems(visit)

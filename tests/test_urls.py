@@ -1,0 +1,463 @@
+"""Zarr inputs by fsspec URL (``memory://``, ``file://``) and as zip stores (``.zarr.zip``);
+output URLs refused with one line; storage option values never recorded.
+
+``memory://`` is fsspec's in-process file system: it goes through the same code path as
+``s3://`` or ``gs://`` (zarr's fsspec store opened from the URL and the storage options by the
+task that reads), without a server. Each test uses its own memory folder and removes it.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import subprocess
+import sys
+import uuid
+from collections.abc import Iterator
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import pytest
+import yaml
+
+from rowfold.cli import main
+from rowfold.storage import read_result, write_arrays
+
+import bounds
+from support import prescribed
+
+ROWS, COLS, CHUNK = 600, 5, 100
+KAPPA = 1e4
+SECRET = "fake-secret-7f3a9c"  # an invented credential: must appear in no output
+TOKEN = "fake-token-51d2e8"
+
+
+@pytest.fixture
+def memory_folder() -> Iterator[str]:
+    """A fresh folder of fsspec's in-process memory file system, removed afterwards."""
+    import fsspec
+
+    folder = f"/rowfold-tests/{uuid.uuid4().hex[:12]}"
+    fs = fsspec.filesystem("memory")
+    yield folder
+    if fs.exists(folder):
+        fs.rm(folder, recursive=True)
+
+
+def problem(rows: int = ROWS) -> tuple[np.ndarray, np.ndarray]:
+    A = prescribed(ROWS, COLS, KAPPA, seed=11)
+    rng = np.random.default_rng(12)
+    b = A @ rng.standard_normal(COLS) + 1e-3 * rng.standard_normal(ROWS)
+    return A[:rows], b[:rows]
+
+
+def write_zarr_at(location: str, arrays: dict[str, np.ndarray]) -> None:
+    """Write arrays into a Zarr store at a URL or into a zip store (chunked like
+    :func:`rowfold.storage.write_arrays`, every chunk stored)."""
+    import zarr
+    from zarr.storage import ZipStore
+
+    zip_store = ZipStore(location, mode="w") if location.endswith(".zarr.zip") else None
+    group = zarr.open_group(store=zip_store or location, mode="w")
+    for name, array in arrays.items():
+        created = group.create_array(
+            name,
+            shape=array.shape,
+            dtype=array.dtype,
+            chunks=(CHUNK, *array.shape[1:]),
+            config={"write_empty_chunks": True},
+        )
+        created[...] = array
+    if zip_store is not None:
+        zip_store.close()
+
+
+def job_file(folder: Path, path: str, **input_keys: Any) -> Path:
+    job = {
+        "name": "survey-url",
+        "input": {"path": path, "matrix": "obs/A", "rhs": "obs/b", **input_keys},
+        "method": {"name": "tsqr"},
+        "output": {"path": str(folder / "out.zarr"), "overwrite": True},
+    }
+    target = folder / "job.yaml"
+    target.write_text(yaml.safe_dump(job), encoding="utf-8")
+    return target
+
+
+def place_input(kind: str, tmp_path: Path, memory: str, A: np.ndarray, b: np.ndarray) -> str:
+    """Write the input as ``kind`` and return what input.path names."""
+    arrays = {"obs/A": A, "obs/b": b}
+    if kind == "memory":
+        write_zarr_at(f"memory://{memory}/obs.zarr", arrays)
+        return f"memory://{memory}/obs.zarr"
+    if kind == "zip":
+        write_zarr_at(str(tmp_path / "obs.zarr.zip"), arrays)
+        return "obs.zarr.zip"
+    write_arrays(tmp_path / "obs.zarr", arrays, chunk_rows=CHUNK)
+    return (tmp_path / "obs.zarr").as_uri() if kind == "file" else "obs.zarr"
+
+
+def assert_solves(x: np.ndarray, A: np.ndarray, b: np.ndarray) -> None:
+    """x against numpy's LAPACK least squares, within the least-squares perturbation bound
+    (Wedin 1973; Higham 2002, Thm 20.1: tests/bounds.py::lstsq_solution)."""
+    reference = np.linalg.lstsq(A, b, rcond=None)[0]
+    r = b - A @ reference
+    ratio = float(np.linalg.norm(r) / (np.linalg.norm(A, 2) * np.linalg.norm(reference)))
+    assert bounds.relative_error(x, reference) <= bounds.lstsq_solution(COLS, KAPPA, ratio)
+
+
+@pytest.mark.parametrize("kind", ["local", "memory", "file", "zip"])
+def test_url_and_zip_inputs_give_the_least_squares_answer(
+    tmp_path: Path, memory_folder: str, kind: str
+) -> None:
+    A, b = problem()
+    path = place_input(kind, tmp_path, memory_folder, A, b)
+    assert main(["--quiet", "run", str(job_file(tmp_path, path)), "--inline"]) == 0
+    stored = read_result(tmp_path / "out.zarr")
+    assert_solves(stored["x"], A, b)
+    report = json.loads((tmp_path / "out.report.json").read_text(encoding="utf-8"))
+    recorded = {entry["path"] for entry in report["inputs"].values()}
+    if kind == "memory":
+        assert recorded == {path}, "a URL input is recorded as its URL"
+
+
+def test_update_reads_the_old_rows_digests_through_the_url(
+    tmp_path: Path, memory_folder: str
+) -> None:
+    A, b = problem()
+    url = f"memory://{memory_folder}/obs.zarr"
+    write_zarr_at(url, {"obs/A": A[:400], "obs/b": b[:400]})
+    job = job_file(tmp_path, url)
+    assert main(["--quiet", "run", str(job), "--inline"]) == 0
+    write_zarr_at(url, {"obs/A": A, "obs/b": b})  # the same first rows, 200 appended
+    assert main(["--quiet", "update", str(job), "--inline"]) == 0
+    assert_solves(read_result(tmp_path / "out.zarr")["x"], A, b)
+
+
+def one_error_line(capsys: pytest.CaptureFixture[str]) -> str:
+    captured = capsys.readouterr()
+    assert "Traceback" not in captured.err + captured.out
+    lines = [line for line in captured.err.splitlines() if line.strip()]
+    assert len(lines) == 1, captured.err
+    return lines[0]
+
+
+@pytest.mark.parametrize(
+    ("path", "says"),
+    [
+        ("nofs://bucket/obs.zarr", "fsspec knows no file system for nofs://"),
+        ("memory://{memory}/missing.zarr", "input store not found"),
+        ("memory://{memory}/obs.h5", "expected the URL of a Zarr store ending in .zarr"),
+        ("file://elsewhere/obs.zarr", "expected a file URL of an absolute path"),
+        ("missing.zarr.zip", "input file not found"),
+    ],
+)
+def test_bad_input_locations_exit_2_naming_the_url_and_the_key(
+    tmp_path: Path, memory_folder: str, capsys: pytest.CaptureFixture[str], path: str, says: str
+) -> None:
+    path = path.format(memory=memory_folder)
+    assert main(["run", str(job_file(tmp_path, path)), "--inline"]) == 2
+    line = one_error_line(capsys)
+    assert says in line and "input.path" in line
+    assert Path(path).name in line
+    assert not (tmp_path / "out.zarr").exists()
+
+
+def url_output_job(folder: Path, data: str, url: str, **output: Any) -> Path:
+    job = job_file(folder, data)
+    spec = yaml.safe_load(job.read_text(encoding="utf-8"))
+    spec["output"] = {"path": url, **output}
+    job.write_text(yaml.safe_dump(spec), encoding="utf-8")
+    return job
+
+
+def pointed_x(url: str, options: dict[str, Any] | None = None) -> tuple[str, np.ndarray]:
+    """The commit the pointer of ``url`` names, and its x (read the way a user follows it)."""
+    import fsspec
+    import zarr
+
+    with fsspec.open(url + ".current.json", "rb", **(options or {})) as handle:
+        pointer = json.loads(handle.read())
+    group = zarr.open_group(pointer["store"], mode="r", storage_options=options)
+    assert group.attrs["rowfold_commit"] == pointer["rowfold_commit"]
+    return pointer["rowfold_commit"], np.asarray(group["x"][...])
+
+
+def commits_under(url: str, options: dict[str, Any] | None = None) -> list[str]:
+    import fsspec
+
+    fs, root = fsspec.core.url_to_fs(url + ".commits", **(options or {}))
+    fs.invalidate_cache()
+    return sorted(p.rstrip("/").rpartition("/")[2] for p in fs.ls(root, detail=False))
+
+
+def test_url_output_is_committed_by_pointer_and_old_prefixes_removed(
+    tmp_path: Path, memory_folder: str, capsys: pytest.CaptureFixture[str]
+) -> None:
+    A, b = problem()
+    data = place_input("local", tmp_path, memory_folder, A, b)
+    url = f"memory://{memory_folder}/results/levelling.zarr"
+    job = url_output_job(tmp_path, data, url, storage_options={"secret": SECRET})
+    assert main(["--quiet", "run", str(job), "--inline"]) == 0
+    first, x = pointed_x(url)
+    assert_solves(x, A, b)
+    assert commits_under(url) == [first]
+    assert main(["run", str(job), "--inline"]) == 2  # no overwrite
+    line = one_error_line(capsys)
+    assert url in line and "output.overwrite" in line and SECRET not in line
+    assert main(["--quiet", "run", str(job), "--inline", "--set", "output.overwrite=true"]) == 0
+    second, x = pointed_x(url)
+    assert second != first and commits_under(url) == [second]
+    assert_solves(x, A, b)
+    assert main(["update", str(job), "--inline"]) == 2
+    line = one_error_line(capsys)
+    assert url in line and "output.path" in line and "run only" in line
+
+
+@pytest.mark.parametrize(
+    ("url", "says"),
+    [
+        ("memory://results/out.h5", "HDF5 results are written to local paths"),
+        ("nofs://results/out.zarr", "fsspec knows no file system for nofs://"),
+    ],
+)
+def test_bad_output_urls_exit_2_naming_the_url_and_the_key(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str], url: str, says: str
+) -> None:
+    assert main(["run", str(url_output_job(tmp_path, "obs.zarr", url)), "--inline"]) == 2
+    line = one_error_line(capsys)
+    assert url in line and "output.path" in line and says in line
+
+
+def test_credentials_in_a_url_are_refused_without_repeating_them(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    job = job_file(tmp_path, f"s3://surveyor:{SECRET}@bucket/obs.zarr")
+    assert main(["run", str(job), "--inline"]) == 2
+    line = one_error_line(capsys)
+    assert "input.path" in line and SECRET not in line
+
+
+@pytest.mark.parametrize(
+    ("options", "says"),
+    [
+        (SECRET, "expected a mapping of option names to values, found text"),
+        ({"key": "id", "secret": float("nan")}, "expected plain values"),
+    ],
+)
+def test_malformed_storage_options_exit_2_without_their_values(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str], options: Any, says: str
+) -> None:
+    job = job_file(tmp_path, "memory://somewhere/obs.zarr", storage_options=options)
+    assert main(["run", str(job), "--inline"]) == 2
+    line = one_error_line(capsys)
+    assert says in line and "input.storage_options" in line and SECRET not in line
+
+
+def test_storage_options_with_a_local_path_are_refused(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    job = job_file(tmp_path, "obs.zarr", storage_options={"anon": True})
+    assert main(["run", str(job), "--inline"]) == 2
+    assert "input.storage_options" in one_error_line(capsys)
+
+
+def test_storage_option_values_are_never_written(
+    tmp_path: Path,
+    memory_folder: str,
+    capsys: pytest.CaptureFixture[str],
+    monkeypatch: pytest.MonkeyPatch,
+) -> None:
+    A, b = problem()
+    url = place_input("memory", tmp_path, memory_folder, A, b)
+    options = {"secret": SECRET, "client_kwargs": {"token": TOKEN}}
+    job = job_file(tmp_path, url, storage_options=options)
+    log = tmp_path / "read.log"
+    monkeypatch.setenv("ROWFOLD_READ_LOG", str(log))
+    assert main(["run", str(job), "--inline"]) == 0
+    assert main(["inspect", str(tmp_path / "out.zarr")]) == 0
+    captured = capsys.readouterr()
+    assert SECRET not in captured.out + captured.err and TOKEN not in captured.out + captured.err
+    written = [p for p in tmp_path.rglob("*") if p.is_file() and p != job]
+    assert log in written and any(p.name == "zarr.json" for p in written)
+    for path in written:
+        data = path.read_bytes()
+        assert SECRET.encode() not in data and TOKEN.encode() not in data, path
+    import zarr
+
+    recorded = zarr.open_group(str(tmp_path / "out.zarr"), mode="r").attrs["job"]["input"]
+    assert recorded["storage_options"] == ["client_kwargs", "secret"]
+    assert_solves(read_result(tmp_path / "out.zarr")["x"], A, b)
+
+
+# ---------------------------------------------------------------- a local S3 server
+
+
+@pytest.fixture(scope="module")
+def s3_endpoint() -> Iterator[str]:
+    """An S3-compatible server on 127.0.0.1 (moto's server mode), for this module."""
+    pytest.importorskip("s3fs")
+    server_module = pytest.importorskip("moto.server")
+    import logging
+
+    logging.getLogger("werkzeug").setLevel(logging.ERROR)  # one line per request otherwise
+    server = server_module.ThreadedMotoServer(ip_address="127.0.0.1", port=0, verbose=False)
+    server.start()
+    host, port = server.get_host_and_port()
+    yield f"http://{host}:{port}"
+    server.stop()
+
+
+def s3_options(endpoint: str) -> dict[str, Any]:
+    """s3fs options for the local server (invented key; the secret is the fake one)."""
+    return {
+        "key": "survey-office-key",
+        "secret": SECRET,
+        "client_kwargs": {"endpoint_url": endpoint, "region_name": "us-east-1"},
+    }
+
+
+def s3_bucket(endpoint: str) -> str:
+    import boto3
+
+    name = f"survey-{uuid.uuid4().hex[:10]}"
+    client = boto3.client(
+        "s3",
+        endpoint_url=endpoint,
+        aws_access_key_id="survey-office-key",
+        aws_secret_access_key=SECRET,
+        region_name="us-east-1",
+    )
+    client.create_bucket(Bucket=name)
+    return name
+
+
+def write_s3(url: str, options: dict[str, Any], arrays: dict[str, np.ndarray]) -> None:
+    import zarr
+
+    group = zarr.open_group(url, mode="w", storage_options=options)
+    for name, array in arrays.items():
+        created = group.create_array(
+            name,
+            shape=array.shape,
+            dtype=array.dtype,
+            chunks=(CHUNK, *array.shape[1:]),
+            config={"write_empty_chunks": True},
+        )
+        created[...] = array
+
+
+def test_s3_input_on_a_local_server_gives_the_least_squares_answer(
+    tmp_path: Path, s3_endpoint: str, capsys: pytest.CaptureFixture[str]
+) -> None:
+    A, b = problem()
+    options = s3_options(s3_endpoint)
+    url = f"s3://{s3_bucket(s3_endpoint)}/campaign/obs.zarr"
+    write_s3(url, options, {"obs/A": A, "obs/b": b})
+    job = job_file(tmp_path, url, storage_options=options)
+    assert main(["run", str(job), "--inline"]) == 0
+    assert_solves(read_result(tmp_path / "out.zarr")["x"], A, b)
+    captured = capsys.readouterr()
+    assert SECRET not in captured.out + captured.err
+    for path in (p for p in tmp_path.rglob("*") if p.is_file() and p != job):
+        assert SECRET.encode() not in path.read_bytes(), path
+
+
+def test_s3_missing_bucket_exits_2_naming_the_url_and_the_key(
+    tmp_path: Path, s3_endpoint: str, capsys: pytest.CaptureFixture[str]
+) -> None:
+    url = "s3://no-such-survey-bucket/obs.zarr"
+    job = job_file(tmp_path, url, storage_options=s3_options(s3_endpoint))
+    assert main(["run", str(job), "--inline"]) == 2
+    line = one_error_line(capsys)
+    assert url in line and "input.path" in line and SECRET not in line
+
+
+def readme_s3_job() -> dict[str, Any]:
+    """The s3:// job of the README's "Inputs and results by URL, zip stores" section."""
+    import re
+
+    text = (Path(__file__).parents[1] / "README.md").read_text(encoding="utf-8")
+    section = text.split("## Inputs and results by URL, zip stores", 1)[1].split("\n## ", 1)[0]
+    blocks = re.findall(r"```yaml\n(.*?)```", section, re.S)
+    assert len(blocks) == 1, "the section shows one job"
+    job: dict[str, Any] = yaml.safe_load(blocks[0])
+    return job
+
+
+def test_readme_s3_job_runs_against_the_local_server(tmp_path: Path, s3_endpoint: str) -> None:
+    """The README's job as written, its endpoint pointed at the local server."""
+    import boto3
+
+    job = readme_s3_job()
+    url = job["input"]["path"]
+    assert url.startswith("s3://")
+    bucket = url.removeprefix("s3://").split("/", 1)[0]
+    options = job["input"]["storage_options"]
+    options = {**options, **s3_options(s3_endpoint)}
+    boto3.client(
+        "s3",
+        endpoint_url=s3_endpoint,
+        aws_access_key_id="survey-office-key",
+        aws_secret_access_key=SECRET,
+        region_name="us-east-1",
+    ).create_bucket(Bucket=bucket)
+    A, b = problem()
+    write_s3(url, options, {job["input"]["matrix"]: A, job["input"]["rhs"]: b})
+    job["input"]["storage_options"] = options
+    job["output"] = {"path": str(tmp_path / "out.zarr")}
+    path = tmp_path / "job.yaml"
+    path.write_text(yaml.safe_dump(job), encoding="utf-8")
+    assert main(["--quiet", "run", str(path), "--inline"]) == 0
+    assert_solves(read_result(tmp_path / "out.zarr")["x"], A, b)
+
+
+def rowfold_killed_at(job: Path, point: str) -> subprocess.CompletedProcess[str]:
+    """Run the job in a real process that ends at ``point`` as a kill would (os._exit, no
+    clean-up; rowfold.testhooks)."""
+    env = {**os.environ, "ROWFOLD_TEST_HOOK": f"{point}=exit"}
+    command = [sys.executable, "-m", "rowfold", "--quiet", "run", str(job), "--inline"]
+    return subprocess.run(command, env=env, capture_output=True, text=True, timeout=300)
+
+
+@pytest.mark.parametrize("point", ["publish:upload:levelling.zarr", "publish:uploaded"])
+def test_s3_output_killed_before_the_pointer_keeps_the_previous_result(
+    tmp_path: Path, s3_endpoint: str, point: str
+) -> None:
+    A, b = problem()
+    data = place_input("local", tmp_path, "", A, b)
+    options = s3_options(s3_endpoint)
+    url = f"s3://{s3_bucket(s3_endpoint)}/results/levelling.zarr"
+    job = url_output_job(tmp_path, data, url, overwrite=True, storage_options=options)
+    assert main(["--quiet", "run", str(job), "--inline"]) == 0
+    before, x_before = pointed_x(url, options)
+    write_arrays(tmp_path / "obs.zarr", {"obs/A": A, "obs/b": 2 * b}, chunk_rows=CHUNK)
+    killed = rowfold_killed_at(job, point)
+    assert killed.returncode == 99, killed.stderr
+    assert SECRET not in killed.stdout + killed.stderr
+    after, x_after = pointed_x(url, options)
+    assert after == before
+    np.testing.assert_array_equal(x_after, x_before)  # the same stored bytes, untouched
+    assert len(commits_under(url, options)) == 2  # the killed run's upload, not yet removed
+    assert main(["--quiet", "run", str(job), "--inline"]) == 0
+    latest, x = pointed_x(url, options)
+    assert latest != before and commits_under(url, options) == [latest]
+    assert_solves(x, A, 2 * b)
+
+
+def test_s3_output_killed_after_the_pointer_has_the_new_result(
+    tmp_path: Path, s3_endpoint: str
+) -> None:
+    A, b = problem()
+    data = place_input("local", tmp_path, "", A, b)
+    options = s3_options(s3_endpoint)
+    url = f"s3://{s3_bucket(s3_endpoint)}/results/levelling.zarr"
+    job = url_output_job(tmp_path, data, url, overwrite=True, storage_options=options)
+    assert main(["--quiet", "run", str(job), "--inline"]) == 0
+    before, _ = pointed_x(url, options)
+    write_arrays(tmp_path / "obs.zarr", {"obs/A": A, "obs/b": 2 * b}, chunk_rows=CHUNK)
+    assert rowfold_killed_at(job, "publish:pointer").returncode == 99
+    after, x = pointed_x(url, options)
+    assert after != before
+    assert_solves(x, A, 2 * b)
