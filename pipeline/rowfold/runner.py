@@ -410,7 +410,10 @@ def _run_on(
             extra={
                 **extra,
                 "inputs": storage.public_record(inputs),
-                "provenance": provenance(started, time.time()),
+                "provenance": {
+                    **provenance(started, time.time()),
+                    "scheduler": getattr(engine, "origin", None),
+                },
                 "caution": CAUTION,
             },
         )
