@@ -673,6 +673,51 @@ def active_client() -> Any:
     return None if client.status in ("closing", "closed") else client
 
 
+def remote_scheduler(spec: ClusterSpec) -> str | None:
+    """The address of a scheduler or worker the job would use on another machine (whose
+    workers then do not share this machine's disk), or None when it all runs here.
+
+    Follows :func:`open_engine`'s order; for the active client its workers count too.
+    """
+    if spec.scheduler == "threads":
+        return None
+    if spec.address:
+        addresses = [spec.address]
+    elif spec.scheduler_file:
+        addresses = [scheduler_file_address(spec)]
+    elif (client := active_client()) is not None:
+        workers = client.scheduler_info(n_workers=-1).get("workers", {})
+        addresses = [str(client.scheduler.address), *map(str, workers)]
+    elif (configured := configured_address()) is not None:
+        addresses = [configured[0]]
+    else:
+        return None
+    return next((a for a in addresses if not on_this_machine(a)), None)
+
+
+def on_this_machine(address: str) -> bool:
+    """Whether a Dask address (``tcp://host:port``, ``inproc://...``) is on this machine."""
+    if address.startswith("inproc://"):
+        return True
+    rest = address.split("://", 1)[-1]
+    host = rest[1 : rest.find("]")] if rest.startswith("[") else rest.rsplit(":", 1)[0]
+    if host in ("", "localhost", "::1") or host.startswith("127."):
+        return True
+    return host in _own_names()
+
+
+@functools.cache
+def _own_names() -> frozenset[str]:
+    """This machine's host names and addresses."""
+    import socket
+
+    names = {socket.gethostname(), socket.getfqdn()}
+    with suppress(OSError):
+        _, aliases, addresses = socket.gethostbyname_ex(socket.gethostname())
+        names.update(aliases, addresses)
+    return frozenset(names)
+
+
 def configured_address() -> tuple[str, str] | None:
     """The scheduler address Dask's configuration names, and where it came from."""
     address = dask.config.get("scheduler-address", None)
