@@ -117,8 +117,11 @@ def lstsq(
     BreakdownError, RunError
         The method broke down, or the run failed.
     """
-    if b is None and not isinstance(A, Mapping):
-        raise JobError("rowfold.lstsq: b: a right-hand side is required (use rowfold.qr for R)")
+    if b is None and not (isinstance(A, Mapping) and A.get("rhs")):
+        raise JobError(
+            "rowfold.lstsq: b: a right-hand side is required (an array, or with A on disk "
+            "a dataset name or A's 'rhs'); use rowfold.qr for R alone"
+        )
     defaults = {"solve": {"covariance": True}}
     result = _factor("rowfold.lstsq", A, b, weights, method, scratch, options, defaults)
     if not isinstance(result, LstsqResult):
@@ -275,8 +278,7 @@ def _source(label: str, A: Any, b: Any, weights: Any) -> _Source:
     names = _column_names(A)
     matrix = _data(A)
     sparse = _is_sparse(matrix)
-    if not sparse:
-        matrix = _floating(matrix)
+    matrix = _floating(matrix)
     if len(matrix.shape) != 2:
         raise JobError(f"{label}: A: expected a 2-D matrix, found shape {tuple(matrix.shape)}")
     arrays: dict[str, Any] = {"matrix": matrix}
@@ -338,7 +340,10 @@ def _is_sparse(value: Any) -> bool:
 
 
 def _column_names(A: Any) -> tuple[str, ...] | None:
-    """A DataArray's column coordinate (its second dimension) as parameter names."""
+    """A DataArray's column coordinate (its second dimension), or a pandas DataFrame's
+    columns, as parameter names."""
+    if type(A).__module__.startswith("pandas.") and hasattr(A, "columns"):
+        return tuple(str(name) for name in A.columns)
     if not _is_xarray(A) or A.ndim != 2:
         return None
     column = A.dims[1]
