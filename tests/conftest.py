@@ -28,6 +28,7 @@ settings.register_profile("explore", derandomize=False, deadline=None, print_blo
 settings.load_profile(os.environ.get("ROWFOLD_HYPOTHESIS_PROFILE", "ci"))
 
 NUMERICAL_MODULES = {
+    "test_api.py",
     "test_factorization.py",
     "test_fold.py",
     "test_gram_schmidt.py",

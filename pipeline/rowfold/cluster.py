@@ -25,6 +25,7 @@ from __future__ import annotations
 import collections
 import concurrent.futures
 import functools
+import json
 import logging
 import os
 import resource
@@ -102,6 +103,7 @@ class InlineEngine:
 
     def __init__(self, progress: Progress | None = None) -> None:
         self.progress = progress or Progress()
+        self.origin = {"how": "inline", "address": "this thread"}
 
     def compute(self, tasks: Sequence[Any], label: str) -> list[Any]:
         """Compute and return values."""
@@ -141,6 +143,7 @@ class ThreadedEngine:
         self.progress = progress
         self.threads = threads
         self.pool = concurrent.futures.ThreadPoolExecutor(threads, "rowfold-worker")
+        self.origin = {"how": "threads", "address": f"this process, {threads} threads"}
 
     def close(self) -> None:
         """Wait for every task still running, then stop the threads."""
@@ -276,6 +279,8 @@ class DistributedEngine:
         self._heard: dict[str, tuple[Any, float]] = {}
         self._silent_workers: set[str] = set()
         self._tally_name: str | None = None
+        # which scheduler this is and how it was found (the report's provenance)
+        self.origin: dict[str, str] = {"how": "client", "address": self.address}
 
     @property
     def address(self) -> str:
@@ -623,36 +628,149 @@ HEALTH_ONLY = ["distributed.http.health"]
 
 @contextmanager
 def open_engine(spec: ClusterSpec, progress: Progress) -> Iterator[DistributedEngine]:
-    """Start (or connect to) a Dask cluster and yield an engine on it.
+    """Connect to a Dask cluster (or start one) and yield an engine on it.
 
-    The embedded cluster listens on 127.0.0.1 only (scheduler, workers, nannies and their
-    HTTP endpoints); it serves Dask's dashboard only with ``cluster.dashboard``.
+    Where the job runs, first match wins: ``cluster.address``; ``cluster.scheduler_file``;
+    the caller's active ``distributed.Client`` (used as it is and left open); Dask's own
+    configuration (``scheduler-address``, which ``DASK_SCHEDULER_ADDRESS`` sets), said on
+    the progress stream and the log; else the embedded cluster, which listens on 127.0.0.1
+    only (scheduler, workers, nannies and their HTTP endpoints) and serves Dask's dashboard
+    only with ``cluster.dashboard``. The engine's ``origin`` records which (for the report).
 
     Raises
     ------
     RunError
-        When the scheduler at ``cluster.address`` cannot be reached within
-        ``cluster.timeout`` seconds.
+        When the scheduler cannot be reached within ``cluster.timeout`` seconds, or the
+        scheduler file does not appear or names no scheduler.
     """
     with distributed_logs_quiet():
         if spec.address:
-            yield from _remote_engine(spec, progress)
+            yield from _remote_engine(spec, progress, spec.address, "cluster.address")
+        elif spec.scheduler_file:
+            address = scheduler_file_address(spec)
+            yield from _remote_engine(spec, progress, address, "cluster.scheduler_file")
+        elif (client := active_client()) is not None:
+            yield from _active_engine(client, spec, progress)
+        elif (configured := configured_address()) is not None:
+            address, source = configured
+            progress.note(f"running on the Dask scheduler at {address} (from {source})")
+            yield from _remote_engine(spec, progress, address, source)
         else:
             yield from _embedded_engine(spec, progress)
 
 
-def _remote_engine(spec: ClusterSpec, progress: Progress) -> Iterator[DistributedEngine]:
-    """An engine on the scheduler at ``cluster.address``."""
+def active_client() -> Any:
+    """The caller's current ``distributed.Client``, or None (distributed not even imported
+    means there is none)."""
+    if "distributed" not in sys.modules:
+        return None
+    from distributed import default_client
+
+    try:
+        client = default_client()
+    except ValueError:
+        return None
+    return None if client.status in ("closing", "closed") else client
+
+
+def remote_scheduler(spec: ClusterSpec) -> str | None:
+    """The address of a scheduler or worker the job would use on another machine (whose
+    workers then do not share this machine's disk), or None when it all runs here.
+
+    Follows :func:`open_engine`'s order; for the active client its workers count too.
+    """
+    if spec.scheduler == "threads":
+        return None
+    if spec.address:
+        addresses = [spec.address]
+    elif spec.scheduler_file:
+        addresses = [scheduler_file_address(spec)]
+    elif (client := active_client()) is not None:
+        workers = client.scheduler_info(n_workers=-1).get("workers", {})
+        addresses = [str(client.scheduler.address), *map(str, workers)]
+    elif (configured := configured_address()) is not None:
+        addresses = [configured[0]]
+    else:
+        return None
+    return next((a for a in addresses if not on_this_machine(a)), None)
+
+
+def on_this_machine(address: str) -> bool:
+    """Whether a Dask address (``tcp://host:port``, ``inproc://...``) is on this machine."""
+    if address.startswith("inproc://"):
+        return True
+    rest = address.split("://", 1)[-1]
+    host = rest[1 : rest.find("]")] if rest.startswith("[") else rest.rsplit(":", 1)[0]
+    if host in ("", "localhost", "::1") or host.startswith("127."):
+        return True
+    return host in _own_names()
+
+
+@functools.cache
+def _own_names() -> frozenset[str]:
+    """This machine's host names and addresses."""
+    import socket
+
+    names = {socket.gethostname(), socket.getfqdn()}
+    with suppress(OSError):
+        _, aliases, addresses = socket.gethostbyname_ex(socket.gethostname())
+        names.update(aliases, addresses)
+    return frozenset(names)
+
+
+def configured_address() -> tuple[str, str] | None:
+    """The scheduler address Dask's configuration names, and where it came from."""
+    address = dask.config.get("scheduler-address", None)
+    if not address:
+        return None
+    from_env = os.environ.get("DASK_SCHEDULER_ADDRESS") == str(address)
+    return str(address), "DASK_SCHEDULER_ADDRESS" if from_env else "dask config scheduler-address"
+
+
+def scheduler_file_address(spec: ClusterSpec) -> str:
+    """The address in ``cluster.scheduler_file``, waiting up to ``cluster.timeout`` seconds
+    for a launcher to write it.
+
+    Raises
+    ------
+    RunError
+        When the file does not appear in time, or holds no ``address``.
+    """
+    path = spec.scheduler_file
+    assert path is not None
+    deadline = time.monotonic() + spec.timeout
+    while not path.exists() and time.monotonic() < deadline:
+        time.sleep(0.1)
+    where = f"cluster.scheduler_file {path}"
+    try:
+        address = json.loads(path.read_text(encoding="utf-8")).get("address")
+    except FileNotFoundError:
+        raise RunError(
+            f"{where}: no scheduler file after {spec.timeout:g} s (cluster.timeout); "
+            "start the scheduler with --scheduler-file, or check the path"
+        ) from None
+    except (OSError, ValueError, AttributeError) as exc:
+        raise RunError(f"{where}: not a Dask scheduler file ({exc})") from None
+    if not isinstance(address, str) or not address:
+        raise RunError(f"{where}: names no scheduler address (no 'address' entry)")
+    return address
+
+
+def _remote_engine(
+    spec: ClusterSpec, progress: Progress, address: str, source: str
+) -> Iterator[DistributedEngine]:
+    """An engine on the scheduler at ``address`` (named by ``source`` in errors)."""
     from distributed import Client
 
     try:
-        client = Client(spec.address, timeout=f"{spec.timeout}s")
+        client = Client(address, timeout=f"{spec.timeout}s")
     except OSError as exc:
         raise RunError(
-            f"cluster.address {spec.address}: cannot connect to the Dask scheduler ({exc}); "
+            f"{source} {address}: cannot connect to the Dask scheduler ({exc}); "
             "check that it is running and reachable"
         ) from None
     engine = DistributedEngine(client, progress, Patience.of(spec))
+    engine.origin = {"how": source, "address": engine.address}
     try:
         announce_dashboard(engine, progress)
         engine.install_tally()
@@ -662,13 +780,28 @@ def _remote_engine(spec: ClusterSpec, progress: Progress) -> Iterator[Distribute
         _close(engine)
 
 
+def _active_engine(
+    client: Any, spec: ClusterSpec, progress: Progress
+) -> Iterator[DistributedEngine]:
+    """An engine on the caller's own client, which stays open (and its default) after."""
+    engine = DistributedEngine(client, progress, Patience.of(spec))
+    engine.origin = {"how": "active client", "address": engine.address}
+    try:
+        engine.install_tally()
+        yield engine
+    finally:
+        engine.remove_tally()
+
+
 def _embedded_engine(spec: ClusterSpec, progress: Progress) -> Iterator[DistributedEngine]:
     """An engine on the embedded cluster; BLAS limited in its workers (worker threads share
     this process: limited here only while the cluster runs)."""
     from distributed import Client
 
     with _embedded_cluster(spec) as (cluster, blas), ExitStack() as stack:
-        engine = DistributedEngine(Client(cluster), progress, Patience.of(spec))
+        client = Client(cluster)
+        engine = DistributedEngine(client, progress, Patience.of(spec))
+        engine.origin = {"how": "embedded cluster", "address": engine.address}
         try:
             if spec.processes:
                 engine.ask(

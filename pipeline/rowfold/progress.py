@@ -115,6 +115,17 @@ class Progress:
             self.stream.write(plain + "\n")
             self.stream.flush()
 
+    def note(self, text: str) -> None:
+        """Say one thing about the run (e.g. where it runs): ``rowfold: text`` on the
+        stream, time-stamped in the log."""
+        self.close()
+        if self.log is not None:
+            self.log.write(f"{local_stamp()} rowfold: {text}\n")
+            self.log.flush()
+        if self.stream is not None:
+            self.stream.write(f"rowfold: {text}\n")
+            self.stream.flush()
+
     def close(self) -> None:
         """End the bar on screen, if one is drawn."""
         if self._bar is not None:

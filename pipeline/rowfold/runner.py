@@ -454,7 +454,10 @@ def _run_on(
             extra={
                 **extra,
                 "inputs": storage.public_record(inputs),
-                "provenance": provenance(started, time.time()),
+                "provenance": {
+                    **provenance(started, time.time()),
+                    "scheduler": getattr(engine, "origin", None),
+                },
                 "caution": CAUTION,
             },
         )
@@ -833,7 +836,10 @@ def _commit_segments(
         "segments": coverage,
         "q_state": STALE_Q_TEXT,
         "inputs": storage.public_record(change.inputs),
-        "provenance": provenance(started, time.time()),
+        "provenance": {
+            **provenance(started, time.time()),
+            "scheduler": getattr(engine, "origin", None),
+        },
         "caution": CAUTION,
         **_answer(plan, solution, stats, scale, old.names),
     }

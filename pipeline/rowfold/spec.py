@@ -294,6 +294,10 @@ class ClusterSpec:
     ----------
     address : str or None
         None for the embedded local cluster, else a scheduler address ``tcp://host:port``.
+    scheduler_file : Path or None
+        A scheduler file as ``dask-mpi``, ``dask scheduler --scheduler-file`` and batch
+        launchers write it (JSON naming the scheduler's address); the job connects to that
+        scheduler. Cannot be combined with ``address``.
     workers : int or None
         Local workers; None means one per core.
     threads_per_worker : int or None
@@ -319,6 +323,7 @@ class ClusterSpec:
     """
 
     address: str | None = None
+    scheduler_file: Path | None = None
     workers: int | None = None
     threads_per_worker: int | None = None
     processes: bool | None = None
@@ -492,13 +497,16 @@ def _apply_override(doc: _Doc, override: str) -> None:
         value = _yaml_value(raw) if raw.strip() else None
     except yaml.YAMLError:
         value = raw
+    _set_value(doc, keypath, value, f"--set {override!r}")
+
+
+def _set_value(doc: _Doc, keypath: tuple[str, ...], value: Any, where: str) -> None:
+    """Set the value at a key path as ``--set`` does (messages then say ``--set``)."""
     node: dict[str, Any] = doc.data
     for depth, part in enumerate(keypath[:-1]):
         child = node.setdefault(part, {})
         if not isinstance(child, dict):
-            raise JobError(
-                f"--set {override!r}: '{'.'.join(keypath[: depth + 1])}' is not a section"
-            )
+            raise JobError(f"{where}: '{'.'.join(keypath[: depth + 1])}' is not a section")
         node = child
     node[keypath[-1]] = value
     doc.lines[keypath] = 0
@@ -722,6 +730,19 @@ def _require_file_system(protocol: str) -> None:
 
 DATA_SUFFIXES = (".h5", ".hdf5", ".zarr")
 INPUT_SUFFIXES = (*DATA_SUFFIXES, ZIP_SUFFIX)
+
+
+def _any_path(base: Path) -> Callable[[Any], Path]:
+    """A path of any name, resolved against ``base`` when relative."""
+
+    def parse(value: Any) -> Path:
+        try:
+            path = Path(_text(value)).expanduser()
+        except RuntimeError as exc:  # e.g. ~unknownuser
+            raise ValueError(f"cannot expand the path ({exc})") from None
+        return path if path.is_absolute() else (base / path).resolve()
+
+    return parse
 
 
 INPUT_KEYS = (
@@ -1029,6 +1050,7 @@ def _parse_update(doc: _Doc) -> UpdateSpec:
 
 CLUSTER_KEYS = (
     "address",
+    "scheduler_file",
     "workers",
     "threads_per_worker",
     "processes",
@@ -1077,6 +1099,7 @@ def _parse_cluster(doc: _Doc, base: Path) -> ClusterSpec:
     section = _Section(doc, ("cluster",), CLUSTER_KEYS)
     spec = ClusterSpec(
         address=section.get("address", _scheduler_address),
+        scheduler_file=section.get("scheduler_file", _any_path(base)),
         workers=section.get("workers", _auto_or_count),
         threads_per_worker=section.get("threads_per_worker", _auto_or_count),
         processes=section.get("processes", _auto_or_flag),
@@ -1086,19 +1109,26 @@ def _parse_cluster(doc: _Doc, base: Path) -> ClusterSpec:
         worker_timeout=section.get("worker_timeout", _seconds, 60.0),
         stall_timeout=section.get("stall_timeout", _seconds, 1800.0),
     )
-    if spec.scheduler == "threads" and (spec.address or spec.processes):
+    if spec.address and spec.scheduler_file:
+        raise doc.fail(
+            ("cluster", "scheduler_file"),
+            "names the scheduler as cluster.address does; give one of the two",
+        )
+    remote = spec.address or spec.scheduler_file
+    if spec.scheduler == "threads" and (remote or spec.processes):
         raise doc.fail(
             ("cluster", "scheduler"),
             "threads runs the job inside this process; it cannot be combined with "
-            "cluster.address or cluster.processes: true (use scheduler: distributed)",
+            "cluster.address, cluster.scheduler_file or cluster.processes: true "
+            "(use scheduler: distributed)",
         )
-    if spec.dashboard is not None and (spec.address or spec.scheduler == "threads"):
+    if spec.dashboard is not None and (remote or spec.scheduler == "threads"):
         raise doc.fail(
             ("cluster", "dashboard"),
             "only the embedded cluster (scheduler: distributed, no address) serves a "
             "dashboard; a remote scheduler has its own",
         )
-    if spec.address is None:
+    if not remote:
         _check_local_counts(doc, spec)
     return spec
 
@@ -1159,7 +1189,11 @@ def check_fits_input(job: Job, rows: int, cols: int) -> None:
 SECTIONS = ("name", "input", "method", "output", "solve", "gates", "cluster", "update")
 
 
-def load_job(path: str | Path, overrides: tuple[str, ...] = ()) -> Job:
+def load_job(
+    path: str | Path,
+    overrides: tuple[str, ...] = (),
+    values: Mapping[str, Any] | None = None,
+) -> Job:
     """Read, override and validate a job file.
 
     Parameters
@@ -1168,6 +1202,10 @@ def load_job(path: str | Path, overrides: tuple[str, ...] = ()) -> Job:
         The YAML job file.
     overrides : tuple of str
         ``key.path=value`` strings from ``--set``, applied in order.
+    values : mapping, optional
+        Dotted key -> value, applied after ``overrides`` exactly as ``--set`` applies them
+        (errors name them as ``--set``), but with the value as given instead of YAML text
+        (the Python API's overrides).
 
     Returns
     -------
@@ -1183,6 +1221,48 @@ def load_job(path: str | Path, overrides: tuple[str, ...] = ()) -> Job:
     doc = _read_yaml(file)
     for override in overrides:
         _apply_override(doc, override)
+    for key, value in (values or {}).items():
+        keypath = tuple(part for part in key.split(".") if part)
+        if not keypath:
+            raise JobError(f"--set {key!r}: expected a dotted key, e.g. method.name")
+        _set_value(doc, keypath, value, f"--set {key!r}")
+    return _job_from_doc(doc, file)
+
+
+def job_from_data(data: Mapping[str, Any], label: str, base: Path) -> Job:
+    """Validate a job given as plain data (a job file's document), as :func:`load_job` does.
+
+    Parameters
+    ----------
+    data : mapping
+        Sections as a job file holds them (``input``, ``method``, ...).
+    label : str
+        What errors name in place of the file and line, e.g. ``rowfold.lstsq``.
+    base : Path
+        The folder relative paths resolve against.
+
+    Raises
+    ------
+    JobError
+        With the same messages as for a job file, ``label`` naming where.
+    """
+    file = base.expanduser().resolve() / label
+    plain = json.loads(json.dumps(dict(data), default=_plain_value))
+    return _job_from_doc(_Doc(file=file, data=plain, lines={}), file)
+
+
+def _plain_value(value: Any) -> Any:
+    """A value JSON cannot hold, as the job file would: paths and numpy scalars."""
+    if isinstance(value, Path):
+        return str(value)
+    tolist = getattr(value, "tolist", None)  # numpy arrays and scalars
+    if callable(tolist):
+        return tolist()
+    raise JobError(f"value {value!r}: expected plain data (text, numbers, lists, mappings)")
+
+
+def _job_from_doc(doc: _Doc, file: Path) -> Job:
+    """Validate a parsed job document."""
     _Section(doc, (), SECTIONS)
     for required in ("input", "output"):
         if required not in doc.data:
