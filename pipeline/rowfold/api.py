@@ -196,7 +196,7 @@ def run(job_or_path: str | Path | Mapping[str, Any], **overrides: Any) -> QRResu
     else:
         job = spec.load_job(job_or_path, values=values)
     outcome = runner.run_job(job)
-    return read(outcome.output, outcome.report)
+    return read(_local_output(outcome.output), outcome.report)
 
 
 def open_result(path: str | Path) -> QRResult:
@@ -443,7 +443,17 @@ def _run_staged(job: spec.Job, source: _Source, folder: tempfile.TemporaryDirect
     outcome = runner.run_job(job)
     temporary = job.output.path == Path(folder.name) / "result.zarr"
     keep = folder if temporary else None
-    result = read(outcome.output, outcome.report, source.names, keep, temporary)
+    result = read(_local_output(outcome.output), outcome.report, source.names, keep, temporary)
     if not temporary or not any(getattr(result, name, None) is not None for name in LAZY_ARRAYS):
         folder.cleanup()
     return result
+
+
+def _local_output(output: Path | str) -> Path:
+    """The result store as a local path; a result written to a URL is not read back here."""
+    if isinstance(output, str):
+        raise OutputError(
+            f"{output}: the result was committed at this URL; the Python API reads back only "
+            "local results (open it with xarray.open_zarr on the URL its pointer names)"
+        )
+    return output
