@@ -698,7 +698,18 @@ def _file_url_path(url: str) -> str:
 
 def _input_location(base: Path) -> Callable[[Any], Path | str]:
     """A local path (as :func:`_suffixed_path`) or the fsspec URL of a Zarr store."""
-    local = _suffixed_path(INPUT_SUFFIXES, base)
+    return _location(
+        INPUT_SUFFIXES,
+        base,
+        "expected the URL of a Zarr store ending in .zarr (HDF5, NetCDF and zip "
+        "inputs are read from local paths)",
+    )
+
+
+def _location(suffixes: tuple[str, ...], base: Path, not_zarr: str) -> Callable[[Any], Path | str]:
+    """A local path with one of ``suffixes``, or the fsspec URL of a Zarr store (``not_zarr``
+    is the message for a URL of anything else)."""
+    local = _suffixed_path(suffixes, base)
 
     def parse(value: Any) -> Path | str:
         text = _text(value).strip()
@@ -706,10 +717,7 @@ def _input_location(base: Path) -> Callable[[Any], Path | str]:
         if protocol is None or protocol == "file":
             return local(text)
         if not text.rstrip("/").lower().endswith(".zarr"):
-            raise ValueError(
-                "expected the URL of a Zarr store ending in .zarr (HDF5, NetCDF and zip "
-                "inputs are read from local paths)"
-            )
+            raise ValueError(not_zarr)
         _require_file_system(protocol)
         return text.rstrip("/")
 
@@ -955,22 +963,12 @@ def _parse_output(doc: _Doc, base: Path) -> OutputSpec:
 
 def _output_location(base: Path) -> Callable[[Any], Path | str]:
     """A local result path, or the fsspec URL of a Zarr result on an object store."""
-    local = _suffixed_path(DATA_SUFFIXES, base)
-
-    def parse(value: Any) -> Path | str:
-        text = _text(value).strip()
-        protocol = scheme(text)
-        if protocol is None or protocol == "file":
-            return local(text)
-        if not text.rstrip("/").lower().endswith(".zarr"):
-            raise ValueError(
-                "expected the URL of a Zarr result ending in .zarr (HDF5 results are written "
-                "to local paths)"
-            )
-        _require_file_system(protocol)
-        return text.rstrip("/")
-
-    return parse
+    return _location(
+        DATA_SUFFIXES,
+        base,
+        "expected the URL of a Zarr result ending in .zarr (HDF5 results are written "
+        "to local paths)",
+    )
 
 
 def _refuse_zip_output(doc: _Doc, value: Any) -> None:
