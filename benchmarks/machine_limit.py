@@ -200,7 +200,7 @@ def run(opts: argparse.Namespace) -> int:
         child_command("gemm", opts.cols, gemm_out, ["--gemm-size", str(opts.gemm_size)]), check=True
     )
     gemm = json.loads(gemm_out.read_text())
-    tasks = [next(t for t in cb.TASKS if t.key == key) for key in TABLE_KEYS]
+    tasks = [next(t for t in cb.TASKS if t.key == key) for key in table_keys(opts.only)]
     rows, cache_notes = time_rows(tasks, data, opts)
     limit = limit_figures(rows, gemm, opts.rows, opts.cols)
     kernels = ", ".join(
@@ -218,6 +218,10 @@ def run(opts: argparse.Namespace) -> int:
     )
     print(format_table(rows, limit, title))
     suffix = "_cold" if opts.cold else ""
+    scaling = None
+    if opts.scaled_from:
+        scaling = scaling_figures(rows, opts, suffix)
+        print(format_scaling(scaling))
     record = {
         "command": [Path(sys.argv[0]).name, *sys.argv[1:]],
         "rows": opts.rows,
@@ -231,12 +235,60 @@ def run(opts: argparse.Namespace) -> int:
         "limit": limit,
         "results": [asdict(r) for r in rows],
         "ratios": ratios(rows, limit),
+        "scaling": scaling,
         "environment": cb.environment(),
     }
     out = cb.RESULTS_DIR / f"machine_limit_{opts.rows}x{opts.cols}{suffix}.json"
     out.write_text(json.dumps(record, indent=2))
     cb._log(f"wrote {out}")
     return 0 if all(r.seconds is not None for r in rows) else 1
+
+
+def table_keys(only: str | None) -> tuple[str, ...]:
+    """The rows to time: ``--only`` (comma separated, from ``TABLE_KEYS``) plus the read, which
+    the limit needs; all of them without it."""
+    if not only:
+        return TABLE_KEYS
+    wanted = {word.strip() for word in only.split(",") if word.strip()} | {"read"}
+    unknown = sorted(wanted - set(TABLE_KEYS))
+    if unknown:
+        raise SystemExit(
+            f"--only: unknown {', '.join(unknown)}; choose from {', '.join(TABLE_KEYS)}"
+        )
+    return tuple(key for key in TABLE_KEYS if key in wanted)
+
+
+def scaling_figures(rows: list[cb.Row], opts: argparse.Namespace, suffix: str) -> dict[str, Any]:
+    """Per row: this run's seconds over ``rows / base rows`` times the earlier run's seconds
+    (the earlier run's JSON at ``--scaled-from`` rows, same columns and cache state)."""
+    base_rows = opts.scaled_from
+    earlier = cb.RESULTS_DIR / f"machine_limit_{base_rows}x{opts.cols}{suffix}.json"
+    if not earlier.exists():
+        raise SystemExit(f"--scaled-from: {earlier} not found; run --rows {base_rows} first")
+    before = {r["key"]: r["seconds"] for r in json.loads(earlier.read_text())["results"]}
+    factor = opts.rows / base_rows
+    out: dict[str, Any] = {"base_rows": base_rows, "factor": factor, "rows": {}}
+    for row in rows:
+        base = before.get(row.key)
+        if row.seconds is None or not base:
+            continue
+        out["rows"][row.key] = {
+            "seconds": row.seconds,
+            "base_seconds": base,
+            "vs_scaled": row.seconds / (factor * base),
+        }
+    return out
+
+
+def format_scaling(scaling: dict[str, Any]) -> str:
+    """The scaling lines: each row's time over ``factor`` times its time at the base size."""
+    lines = [f"against {scaling['factor']:g}x the {scaling['base_rows']}-row run:"]
+    for key, figures in scaling["rows"].items():
+        lines.append(
+            f"  {key}: {figures['seconds']:.2f} s vs {scaling['factor']:g} x "
+            f"{figures['base_seconds']:.2f} s = {figures['vs_scaled']:.2f}x"
+        )
+    return "\n".join(lines)
 
 
 def ratios(rows: list[cb.Row], limit: dict[str, Any]) -> dict[str, dict[str, float | None]]:
@@ -268,6 +320,15 @@ def parse_args(argv: Sequence[str] | None = None) -> argparse.Namespace:
         "--timeout", type=float, default=1800.0, help="seconds before a run is killed"
     )
     parser.add_argument("--workdir", help="put data/ and results/ here instead of benchmarks/")
+    parser.add_argument(
+        "--only", help=f"comma-separated rows from {','.join(TABLE_KEYS)} (read always runs)"
+    )
+    parser.add_argument(
+        "--scaled-from",
+        type=int,
+        metavar="ROWS",
+        help="also print each time over (rows/ROWS) x the time of an earlier run at ROWS",
+    )
     parser.add_argument("--child", choices=["gemm"], help=argparse.SUPPRESS)
     parser.add_argument("--child-out", help=argparse.SUPPRESS)
     return parser.parse_args(argv)

@@ -32,3 +32,19 @@ def test_machine_limit_writes_its_json_fields(tmp_path: Path) -> None:
     assert set(record["ratios"]) == {"read", "tsqr", "cholqr2", "dask"}
     assert all(set(r) == {"vs_limit", "vs_dask"} for r in record["ratios"].values())
     assert record["blas"] and "architecture" in record["blas"][0]
+    _check_scaled_rerun(tmp_path)
+
+
+def _check_scaled_rerun(workdir: Path) -> None:
+    """``--only tsqr --scaled-from 600`` at twice the rows times the read and tsqr only and
+    prints each time against twice the earlier one (no figure is checked)."""
+    command = [sys.executable, str(SCRIPT), "--rows", "1200", "--cols", "3", "--cold"]
+    command += ["--gemm-size", "64", "--workdir", str(workdir), "--only", "tsqr"]
+    command += ["--scaled-from", "600"]
+    done = subprocess.run(command, capture_output=True, text=True, timeout=300)
+    assert done.returncode == 0, done.stderr[-2000:]
+    assert "against 2x the 600-row run" in done.stdout
+    record = json.loads((workdir / "results" / "machine_limit_1200x3_cold.json").read_text())
+    assert {row["key"] for row in record["results"]} == {"read", "tsqr"}
+    assert set(record["scaling"]["rows"]) == {"read", "tsqr"}
+    assert record["scaling"]["factor"] == 2.0
