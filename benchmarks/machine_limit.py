@@ -154,6 +154,11 @@ def work_seconds(row: cb.Row) -> float | None:
     return extra.get("compute_seconds", extra.get("read_seconds"))
 
 
+def dgemm_share(limit: dict[str, Any], work: float) -> float:
+    """The rate ``2 m n^2 / work`` as a share of the measured dgemm rate (1.0 = dgemm speed)."""
+    return float(limit["flop_seconds"]) / work if work > 0 else float("nan")
+
+
 def format_table(rows: list[cb.Row], limit: dict[str, Any], title: str) -> str:
     """The printed table: wall seconds and the run's own work seconds, each as a ratio to the
     limit, the wall ratio to dask, and peak tree memory."""
@@ -161,22 +166,26 @@ def format_table(rows: list[cb.Row], limit: dict[str, Any], title: str) -> str:
     best = limit["limit_seconds"]
     lines = [
         title,
-        "| what | seconds | vs limit | vs dask tsqr | work s | work vs limit | peak tree MB |",
-        "|---|---|---|---|---|---|---|",
+        "| what | seconds | vs limit | vs dask tsqr | work s | work vs limit | work % of dgemm "
+        "| peak tree MB |",
+        "|---|---|---|---|---|---|---|---|",
     ]
     for row in rows:
         if row.seconds is None:
-            lines.append(f"| {row.label} | {row.note} | | | | | |")
+            lines.append(f"| {row.label} | {row.note} | | | | | | |")
             continue
         to_dask = f"{row.seconds / dask:.2f}x" if dask and row.key != "read" else ""
         work = work_seconds(row)
-        work_text = "| |" if work is None else f"| {work:.2f} | {work / best:.2f}x |"
+        work_text = "| | |" if work is None else f"| {work:.2f} | {work / best:.2f}x |"
+        if work is not None:
+            share = "" if row.key == "read" else f"{dgemm_share(limit, work):.0%}"
+            work_text += f" {share} |"
         lines.append(
             f"| {row.label} | {row.seconds:.2f} | {row.seconds / best:.2f}x | {to_dask} "
             f"{work_text} {row.peak_tree_mb:.0f} |"
         )
     flop_text = f"2mn^2 = {limit['flops'] / 1e9:.1f} GFlop at {limit['dgemm_gflops']:.1f} GFlop/s"
-    lines.append(f"| {flop_text} (dgemm, all cores) | | | | {limit['flop_seconds']:.2f} | | |")
+    lines.append(f"| {flop_text} (dgemm, all cores) | | | | {limit['flop_seconds']:.2f} | | | |")
     lines.append(
         f"limit = {best:.2f} s = the larger of the read ({limit['read_seconds']:.2f} s, "
         f"{limit['read_mib_per_s']:.0f} MiB/s) and the flops ({limit['flop_seconds']:.2f} s)"
@@ -301,6 +310,9 @@ def ratios(rows: list[cb.Row], limit: dict[str, Any]) -> dict[str, dict[str, flo
             "vs_limit": None if seconds is None else seconds / limit["limit_seconds"],
             "vs_dask": None if seconds is None or not dask else seconds / dask,
         }
+        work = row.extra.get("work_seconds")
+        if row.key != "read" and work:
+            out[row.key]["work_share_of_dgemm"] = dgemm_share(limit, work)
     return out
 
 

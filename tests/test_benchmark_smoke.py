@@ -30,7 +30,7 @@ def test_machine_limit_writes_its_json_fields(tmp_path: Path) -> None:
         assert key in record["limit"]
     assert {row["key"] for row in record["results"]} == {"read", "tsqr", "cholqr2", "dask"}
     assert set(record["ratios"]) == {"read", "tsqr", "cholqr2", "dask"}
-    assert all(set(r) == {"vs_limit", "vs_dask"} for r in record["ratios"].values())
+    assert all({"vs_limit", "vs_dask"} <= set(r) for r in record["ratios"].values())
     assert record["blas"] and "architecture" in record["blas"][0]
     _check_scaled_rerun(tmp_path)
 
