@@ -19,6 +19,7 @@ from rowfold import __version__, model_tests, summaries
 from rowfold.blocks import BlockPlan, load_block, load_weights
 from rowfold.errors import EXIT_GATE_FAILED, EXIT_OK, RunError
 from rowfold.kernels import metrics, norms
+from rowfold.methods import catalog
 from rowfold.methods._graph import sum_tree, task
 from rowfold.methods.base import Engine, Factorization
 from rowfold.solve import Solution, Statistics, numerical_rank, rank_tolerance
@@ -449,44 +450,12 @@ class _PlotTally:
         )
 
 
-# Published loss-of-orthogonality bounds, as (formula, source); see CHECKS.md. "10 n u"
-# stands for a bound of order u, with a constant that is common practice, not published.
-# Where the constant of a published bound was recalled rather than read again at its
-# source, the source text says so.
-RECALLED = "constant recalled from the literature, not re-checked"
-BOUNDS: dict[str, tuple[str, str]] = {
-    "tsqr": (
-        "10 n u",
-        "O(u) for any tree: Higham 2002 ch. 19; Demmel, Grigori, Hoemmen, Langou, SISC 34(1) 2012",
-    ),
-    "cholqr2": (
-        "6 (m n u + n (n+1) u)",
-        "Yamamoto, Nakatsukasa, Yanagisawa, Fukaya, ETNA 44 (2015), for kappa below ~1e8; "
-        + RECALLED,
-    ),
-    "scholqr3": (
-        "6 (m n u + n (n+1) u)",
-        "O(u): Fukaya, Kannan, Nakatsukasa, Yamamoto, Yanagisawa, SISC 42(1) 2020; " + RECALLED,
-    ),
-    "rcholqr": ("10 n u", "O(u): Higgins, Szyld, Boman, Yamazaki 2023 (arXiv 2309.05868)"),
-    "bcgs2": ("10 n u", "O(u): Barlow & Smoktunowicz, Numer. Math. 123 (2013)"),
-    "bmgs+reorthogonalize": (
-        "10 n u",
-        "O(u) with a second projection: Barlow & Smoktunowicz, Numer. Math. 123 (2013)",
-    ),
-    "bmgs": (
-        "10 n u kappa",
-        "O(u kappa): Jalby & Philippe, SISC 12(5) 1991; " + RECALLED,
-    ),
-}
-
-
 def published_bound(
     method: str, reorthogonalize: bool, rows: int, cols: int, kappa: float, dtype: np.dtype
 ) -> dict[str, Any]:
     """The published loss-of-orthogonality bound of a method at condition ``kappa``."""
-    key = "bmgs+reorthogonalize" if method == "bmgs" and reorthogonalize else method
-    formula, source = BOUNDS.get(key, BOUNDS["tsqr"])
+    key, bound = catalog.bound_of(method, reorthogonalize)
+    formula, source = bound.formula, bound.source
     u = float(np.finfo(dtype).eps) / 2
     values = {
         "10 n u": 10 * cols * u,

@@ -21,9 +21,10 @@ from typing import Any
 import yaml
 
 from rowfold.errors import JobError, OutputError
+from rowfold.methods import catalog
+from rowfold.methods.catalog import METHOD_NAMES
 from rowfold.storage.locations import ZIP_SUFFIX, redacted, scheme
 
-METHOD_NAMES = ("tsqr", "cholqr2", "scholqr3", "bcgs2", "bmgs", "rcholqr", "auto")
 TSQR_TREES = ("flat", "binary")
 INNER_QR = ("householder", "cholqr2", "mgs")
 SKETCHES = ("sparse_sign", "gaussian")
@@ -41,16 +42,8 @@ VERIFY_MODES = ("all", "sample")
 # solve.observation_test: the per-observation test on the residuals (see rowfold.model_tests)
 OBSERVATION_TESTS = ("estimated", "known_sigma0")
 
-# Which method takes which option (every method takes ``precision``).
-METHOD_OPTIONS: dict[str, tuple[str, ...]] = {
-    "tsqr": ("tree",),
-    "cholqr2": (),
-    "scholqr3": (),
-    "bcgs2": ("panel", "inner"),
-    "bmgs": ("panel", "inner", "reorthogonalize"),
-    "rcholqr": ("sketch", "sketch_rows", "seed"),
-    "auto": (),
-}
+# Which method takes which option (every method takes ``precision``): see the catalog.
+METHOD_OPTIONS: dict[str, tuple[str, ...]] = {e.name: e.options for e in catalog.CATALOG}
 
 
 @dataclass(frozen=True, slots=True)

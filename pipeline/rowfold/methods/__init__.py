@@ -1,26 +1,28 @@
-"""Factorization methods: one module per strategy, one shared protocol, one registry.
+"""Factorization methods: one module per strategy, one shared protocol, one catalog.
 
 Each method composes the pure kernels of :mod:`rowfold.kernels` over row blocks as a Dask
-graph and returns a :class:`~rowfold.methods.base.Factorization`.
+graph and returns a :class:`~rowfold.methods.base.Factorization`. Methods are registered in
+:mod:`rowfold.methods.catalog` (name, options, factor function, published bound); this package
+imports a method's module only when it is asked for, so reading the catalog costs nothing.
 """
 
-from rowfold.methods import auto, cholesky, gram_schmidt, rcholqr, tsqr
-from rowfold.methods.base import Engine, Factorization, Method
+from __future__ import annotations
 
-REGISTRY: dict[str, Method] = {
-    "tsqr": tsqr.factor,
-    "cholqr2": cholesky.cholqr2,
-    "scholqr3": cholesky.scholqr3,
-    "bcgs2": gram_schmidt.bcgs2,
-    "bmgs": gram_schmidt.bmgs,
-    "rcholqr": rcholqr.factor,
-    "auto": auto.factor,
-}
+import importlib
+from typing import TYPE_CHECKING
+
+from rowfold.methods.catalog import METHODS
+
+if TYPE_CHECKING:
+    from rowfold.methods.base import Method
 
 
 def get_method(name: str) -> Method:
-    """Return the method registered under ``name`` (names are validated by the spec)."""
-    return REGISTRY[name]
+    """Return the factor function of the method registered under ``name`` (names are
+    validated by the spec against the catalog)."""
+    module, function = METHODS[name].factor.split(":")
+    found: Method = getattr(importlib.import_module(f"rowfold.methods.{module}"), function)
+    return found
 
 
-__all__ = ["REGISTRY", "Engine", "Factorization", "Method", "get_method"]
+__all__ = ["get_method"]
