@@ -294,4 +294,6 @@ def test_work_array_round_trip(tmp_path: Path) -> None:
     expected[4:8, 1:] = first
     expected[8:] = last
     assert np.array_equal(storage.read_rows(ref, 0, 10), expected)
-    assert np.array_equal(work_q_block(np.empty((0, 0)), (ref, 4, 8)), expected[4:8])
+    scratch = storage.ScratchArray(ref)
+    assert np.array_equal(scratch.read(0, 10), expected)
+    assert np.array_equal(work_q_block(np.empty((0, 0)), (scratch, 4, 8)), expected[4:8])

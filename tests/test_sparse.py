@@ -363,7 +363,8 @@ def factor_plan(job: Path, method: str) -> tuple[BlockPlan, np.ndarray]:
     """Plan a job and solve it through the method directly (no result store)."""
     plan = runner.plan_job(runner.load_job(job))
     spec = runner.load_job(job).method
-    fact = get_method(method)(plan, spec, Context(InlineEngine(), False, job.parent))
+    ctx = Context(InlineEngine(), False, storage.ScratchFolder(job.parent))
+    fact = get_method(method)(plan, spec, ctx)
     assert fact.qhb is not None
     return plan, solve(fact.R, fact.qhb, None).x[:, 0]
 

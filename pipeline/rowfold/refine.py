@@ -19,7 +19,6 @@ shrinks by half, when it falls below ``u ||x||``, or after ``max_iterations``.
 from __future__ import annotations
 
 from dataclasses import dataclass
-from pathlib import Path
 from typing import Any
 
 import numpy as np
@@ -29,9 +28,7 @@ from rowfold.blocks import BlockPlan, load_block
 from rowfold.kernels import metrics
 from rowfold.kernels.norms import frobenius
 from rowfold.methods._graph import sum_tree, task
-from rowfold.methods.base import Engine, Factorization
-from rowfold.storage.inputs import ArrayRef, read_rows
-from rowfold.storage.work import create_work_array, write_rows
+from rowfold.methods.base import Engine, Factorization, RowArray, Scratch
 
 
 def _extended(dtype: np.dtype) -> np.dtype:
@@ -43,7 +40,7 @@ def refine_block(
     index: int,
     x: np.ndarray,
     dx: np.ndarray | None,
-    residual: ArrayRef,
+    residual: RowArray,
     q_kernel: Any,
     recipe: Any,
 ) -> dict[str, Any]:
@@ -62,11 +59,11 @@ def refine_block(
         r = b - a @ x_old
         x_new = x_old
     else:
-        r_old = read_rows(residual, start, start + block.shape[0]).astype(wide)
+        r_old = residual.read(start, start + block.shape[0]).astype(wide)
         r = r_old + (b - r_old - a @ x_old) - a @ dx.astype(wide)
         x_new = x_old + dx.astype(wide)
     r_stored = r.astype(block.dtype)
-    write_rows(residual, start, r_stored)
+    residual.write(start, r_stored)
     f = b - r_stored.astype(wide) - a @ x_new
     q = q_kernel(block, recipe)
     return {
@@ -111,12 +108,12 @@ def refine(
     fact: Factorization,
     x: np.ndarray,
     engine: Engine,
-    workdir: Path,
+    scratch: Scratch,
     max_iterations: int,
 ) -> Refinement:
     """Refine ``x`` by augmented-system iterative refinement (see the module docstring)."""
     chunk = plan.per_block
-    residual = create_work_array(workdir, "refine_r", plan.rows, plan.rhs_cols, plan.dtype, chunk)
+    residual = scratch.create("refine_r", plan.rows, plan.rhs_cols, plan.dtype, chunk)
     dx: np.ndarray | None = None
     previous = np.inf
     history: list[float] = []

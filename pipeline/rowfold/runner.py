@@ -319,13 +319,15 @@ def _run_with_engine(
 ) -> RunOutcome:
     """Start the engine and scratch folder, run, and shut them down (before cleanup)."""
     with ExitStack() as stack:
-        workdir = stack.enter_context(storage.scratch_folder(job.output.local))
+        scratch = storage.ScratchFolder(
+            stack.enter_context(storage.scratch_folder(job.output.local))
+        )
         with clock.stage("cluster_start"):
             engine = stack.enter_context(_engine(job, progress, inline))
         with clock.stage("fingerprint"):
             inputs = _fingerprints(job, plan, engine)
         checkpoints = _checkpoints(job, plan, inputs, resume)
-        ctx = Context(engine, wants_q(job), workdir, checkpoints)
+        ctx = Context(engine, wants_q(job), scratch, checkpoints)
         return _run_on(job, plan, names, ctx, inputs, clock, started)
 
 
@@ -523,7 +525,7 @@ def compare_job(
                 storage.open_output(out, True, _inputs(job)),
                 storage.scratch_folder(out) as workdir,
             ):
-                ctx = Context(engine, wants_q(method_job), workdir)
+                ctx = Context(engine, wants_q(method_job), storage.ScratchFolder(workdir))
                 return _run_on(method_job, plan, names, ctx, inputs, _Clock(), time.time())
 
         rows = [compare.run_row(job, method, run) for method in methods]
@@ -899,7 +901,7 @@ def _refined(
     if solution.rank < plan.cols:
         extra["warnings"].append("solve.refine skipped: the problem is rank deficient")
         return solution, 0
-    outcome = refine(plan, fact, solution.x, ctx.engine, ctx.workdir, job.solve.refine_iterations)
+    outcome = refine(plan, fact, solution.x, ctx.engine, ctx.scratch, job.solve.refine_iterations)
     extra["refinement"] = {
         "iterations": outcome.iterations,
         "last_correction": outcome.last_correction,

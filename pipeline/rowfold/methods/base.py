@@ -76,6 +76,28 @@ class Factorization:
     details: dict[str, Any] = field(default_factory=dict)
 
 
+class RowArray(Protocol):
+    """A row array kept between passes; tasks carry it (a small picklable value) and each
+    call opens, reads or writes, and closes (storage implements it)."""
+
+    def read(self, start: int, stop: int) -> np.ndarray:
+        """Rows ``[start, stop)``."""
+        ...
+
+    def write(self, start: int, block: np.ndarray, col_start: int = 0) -> None:
+        """Write ``block`` at rows ``start..`` and columns ``col_start..``."""
+        ...
+
+
+class Scratch(Protocol):
+    """Where a method creates its row arrays (storage implements it; methods import no
+    storage)."""
+
+    def create(self, name: str, rows: int, cols: int, dtype: Any, chunk_rows: int) -> RowArray:
+        """A new zero-filled ``rows x cols`` array, chunked by ``chunk_rows`` rows."""
+        ...
+
+
 @dataclass(frozen=True)
 class Context:
     """What a method gets besides the blocks and its options.
@@ -86,9 +108,9 @@ class Context:
         Runs the Dask graphs.
     want_q : bool
         Whether Q blocks will be formed later (methods may keep what that needs).
-    workdir : Path
-        A scratch folder beside the output that the method may create and fill (e.g.
-        with intermediate Q panels); the runner removes it when the job ends. Workers
+    scratch : Scratch
+        Where the method may keep row arrays between passes (e.g. intermediate Q panels),
+        in a folder beside the output that the runner removes when the job ends. Workers
         write there too, so on a remote cluster it must be on a shared file system.
     checkpoints : Path or None
         Folder for per-block checkpoints of the first pass (tsqr), kept until the result
@@ -97,7 +119,7 @@ class Context:
 
     engine: Engine
     want_q: bool
-    workdir: Path
+    scratch: Scratch
     checkpoints: Path | None = None
 
 

@@ -55,7 +55,7 @@ from rowfold.errors import BreakdownError
 from rowfold.kernels import cross_product, metrics
 from rowfold.methods import tsqr
 from rowfold.methods._graph import sum_tree, task
-from rowfold.methods.base import Context, Engine, Factorization, QKernel
+from rowfold.methods.base import Context, Engine, Factorization, QKernel, RowArray
 from rowfold.methods.cholesky import (
     SECOND_FACTOR_LIMIT,
     check_gram_range,
@@ -67,8 +67,6 @@ from rowfold.methods.cholesky import (
 )
 from rowfold.methods.cholesky import q_block as cholesky_q_block
 from rowfold.spec import MethodSpec
-from rowfold.storage import ArrayRef, read_rows
-from rowfold.storage.work import create_work_array, write_rows
 
 CHOLQR2_ADVICE = "use method.inner: householder"
 
@@ -76,9 +74,9 @@ CHOLQR2_ADVICE = "use method.inner: householder"
 # -- derived block sources -------------------------------------------------------------
 
 
-def read_q(ref: ArrayRef, start: int, stop: int, cols: int, dtype: str) -> np.ndarray:
+def read_q(ref: RowArray, start: int, stop: int, cols: int, dtype: str) -> np.ndarray:
     """Read the first ``cols`` columns of rows ``[start, stop)`` of a scratch Q."""
-    return np.asarray(read_rows(ref, start, stop)[:, :cols], dtype=dtype)
+    return np.asarray(ref.read(start, stop)[:, :cols], dtype=dtype)
 
 
 @dataclass(frozen=True, slots=True)
@@ -93,19 +91,19 @@ class PanelSource:
         The input (row bounds, dtype, and A itself when ``base`` is None).
     cols : tuple of int
         Column range ``(c0, c1)`` of the panel in ``X``.
-    work : ArrayRef
+    work : RowArray
         The scratch array holding Q.
     coeffs : ndarray (j0, c1 - c0)
         Projection coefficients; ``j0 = 0`` means no projection.
-    base : ArrayRef or None
+    base : RowArray or None
         ``X``: None for A, else a scratch array (e.g. the intermediate Y of bcgs2).
     """
 
     plan: BlockPlan
     cols: tuple[int, int]
-    work: ArrayRef
+    work: RowArray
     coeffs: np.ndarray
-    base: ArrayRef | None = None
+    base: RowArray | None = None
 
     @property
     def blocks(self) -> int:
@@ -128,7 +126,7 @@ class PanelSource:
         start, stop = self.plan.bound(index)
         c0, c1 = self.cols
         if self.base is not None:
-            full = read_rows(self.base, start, stop)
+            full = self.base.read(start, stop)
         else:
             full = self.plan.load(index)[0] if a_block is None else a_block
         panel = np.asarray(full[:, c0:c1], dtype=self.plan.dtype)
@@ -140,10 +138,10 @@ class PanelSource:
         return np.asfortranarray(panel)
 
 
-def work_q_block(block: np.ndarray, recipe: tuple[ArrayRef, int, int]) -> np.ndarray:
+def work_q_block(block: np.ndarray, recipe: tuple[RowArray, int, int]) -> np.ndarray:
     """Return rows ``[start, stop)`` of the scratch Q; the block of A is not needed."""
     ref, start, stop = recipe
-    return np.asarray(read_rows(ref, start, stop))
+    return np.asarray(ref.read(start, stop))
 
 
 # -- modified Gram-Schmidt inside a panel ----------------------------------------------
@@ -206,7 +204,7 @@ class PanelWrite:
         The panel whose Q block the kernel forms.
     kernel : QKernel
         The inner QR's kernel (block of the source, recipe) -> Q block.
-    target : ArrayRef
+    target : RowArray
         Scratch array written (Q, or Y for the intermediate basis).
     col_start : int
         First column written in ``target``.
@@ -224,7 +222,7 @@ class PanelWrite:
 
     source: PanelSource
     kernel: QKernel
-    target: ArrayRef
+    target: RowArray
     col_start: int
     panel: tuple[int, int]
     final: bool
@@ -241,7 +239,7 @@ def write_panel(step: PanelWrite, index: int, recipe: Any) -> metrics.Sums:
     a, b = plan.load(index) if reads_a else (None, None)
     q_prev = read_q(step.source.work, start, stop, j0, plan.dtype) if j0 else None
     q = step.kernel(step.source.project(index, a, q_prev), recipe)
-    write_rows(step.target, start, q, step.col_start)
+    step.target.write(start, q, step.col_start)
     if not step.final:
         return {} if q_prev is None else {"s2": cross_product(q_prev, q)}
     return final_sums(step, q, a, b, q_prev)
@@ -418,14 +416,14 @@ class BlockGramSchmidt:
         self.panels = panel_bounds(plan.cols, spec.panel)
         n, dtype = plan.cols, np.dtype(plan.dtype)
         chunk = plan.per_block
-        self.q_ref = create_work_array(ctx.workdir, "Q", plan.rows, n, dtype, chunk)
+        self.q_ref = ctx.scratch.create("Q", plan.rows, n, dtype, chunk)
         # MGS's own Q is orthogonal only to about u * cond(panel) (Björck, BIT 7, 1967), so
         # with reorthogonalization the first panel is factored twice too when inner is mgs.
         self.twice_first = reorthogonalize and spec.inner == "mgs"
-        self.y_ref: ArrayRef | None = None
+        self.y_ref: RowArray | None = None
         if reorthogonalize and (len(self.panels) > 1 or self.twice_first):
             width = self.panels[0][1]
-            self.y_ref = create_work_array(ctx.workdir, "Y", plan.rows, width, dtype, chunk)
+            self.y_ref = ctx.scratch.create("Y", plan.rows, width, dtype, chunk)
         self.R = np.zeros((n, n), dtype=dtype)
         self.proj = np.zeros((n, n), dtype=dtype)
         self.qhb = None if plan.rhs is None else np.zeros((n, plan.rhs_cols), dtype=dtype)

@@ -52,6 +52,7 @@ from rowfold.storage.results import (
     scratch_folder,
     write_text_atomic,
 )
+from rowfold.storage.work import ScratchArray, ScratchFolder
 
 __all__ = [
     "ArrayInfo",
@@ -59,6 +60,8 @@ __all__ = [
     "CsrInfo",
     "OutputBusyError",
     "ResultWriter",
+    "ScratchArray",
+    "ScratchFolder",
     "block_digests",
     "check_output_path",
     "claim_output",

@@ -11,13 +11,14 @@ from __future__ import annotations
 
 import os
 import stat
+from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
 import numpy as np
 
 from rowfold.errors import RunError
-from rowfold.storage.inputs import ArrayRef
+from rowfold.storage.inputs import ArrayRef, read_rows
 
 SCRATCH_GROUP = "scratch.zarr"
 
@@ -108,3 +109,44 @@ def write_rows(ref: ArrayRef, start: int, block: np.ndarray, col_start: int = 0)
             f"{ref.describe()}: rows {start}..{start + rows - 1} cannot be written "
             f"({exc.__class__.__name__}: {exc})"
         ) from None
+
+
+@dataclass(frozen=True, slots=True)
+class ScratchArray:
+    """A scratch row array as a task carries it: its reference, never an open handle.
+
+    Implements :class:`rowfold.methods.base.RowArray`: each call opens the array, reads or
+    writes, and keeps nothing open.
+
+    Attributes
+    ----------
+    ref : ArrayRef
+        The scratch group and the array name.
+    """
+
+    ref: ArrayRef
+
+    def read(self, start: int, stop: int) -> np.ndarray:
+        """Rows ``[start, stop)``."""
+        return np.asarray(read_rows(self.ref, start, stop))
+
+    def write(self, start: int, block: np.ndarray, col_start: int = 0) -> None:
+        """Write ``block`` at rows ``start..`` and columns ``col_start..``."""
+        write_rows(self.ref, start, block, col_start)
+
+
+@dataclass(frozen=True, slots=True)
+class ScratchFolder:
+    """The job's scratch folder as methods see it (:class:`rowfold.methods.base.Scratch`).
+
+    Attributes
+    ----------
+    folder : Path
+        The folder the runner created exclusively beside the output.
+    """
+
+    folder: Path
+
+    def create(self, name: str, rows: int, cols: int, dtype: Any, chunk_rows: int) -> ScratchArray:
+        """A new zero-filled ``rows x cols`` array (see :func:`create_work_array`)."""
+        return ScratchArray(create_work_array(self.folder, name, rows, cols, dtype, chunk_rows))
