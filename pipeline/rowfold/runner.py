@@ -54,7 +54,12 @@ from rowfold.spec import (
     load_job,
 )
 from rowfold.storage import published
-from rowfold.storage.checkpoints import block_stamp, close_checkpoints, open_checkpoints
+from rowfold.storage.checkpoints import (
+    CheckpointFolder,
+    block_stamp,
+    close_checkpoints,
+    open_checkpoints,
+)
 from rowfold.storage.checkpoints import job_digest as job_digest_of
 
 __all__ = [
@@ -331,7 +336,9 @@ def _run_with_engine(
         return _run_on(job, plan, names, ctx, inputs, clock, started)
 
 
-def _checkpoints(job: Job, plan: BlockPlan, inputs: dict[str, Any], resume: bool) -> Path | None:
+def _checkpoints(
+    job: Job, plan: BlockPlan, inputs: dict[str, Any], resume: bool
+) -> CheckpointFolder | None:
     """The checkpoint folder for methods that checkpoint their first pass (tsqr).
 
     Each block's checkpoint is stamped with the digest of the job (without its cluster and
@@ -350,7 +357,7 @@ def _checkpoints(job: Job, plan: BlockPlan, inputs: dict[str, Any], resume: bool
         )
     ]
     folder, _, _ = open_checkpoints(job.output.local, {"job": job_digest, "blocks": blocks}, resume)
-    return folder
+    return CheckpointFolder(folder)
 
 
 @contextmanager

@@ -11,7 +11,6 @@ from __future__ import annotations
 
 from collections.abc import Callable, Iterator, Sequence
 from dataclasses import dataclass, field
-from pathlib import Path
 from typing import Any, Protocol
 
 import numpy as np
@@ -98,6 +97,33 @@ class Scratch(Protocol):
         ...
 
 
+class LeafCheckpoint(Protocol):
+    """One row block's first-pass checkpoint, carried by its leaf task (storage implements
+    it: each call opens, writes or reads, and closes)."""
+
+    @property
+    def saved(self) -> bool:
+        """Whether a checkpoint that still held was there when the run started."""
+        ...
+
+    def save(self, arrays: dict[str, Any]) -> None:
+        """Save the leaf's arrays (None values are left out)."""
+        ...
+
+    def load(self) -> dict[str, np.ndarray]:
+        """The saved arrays; raises :class:`~rowfold.errors.RunError` naming the checkpoint
+        when it changed since the run started."""
+        ...
+
+
+class Checkpoints(Protocol):
+    """The run's checkpoints (storage implements it; methods import no storage)."""
+
+    def leaves(self, blocks: int) -> tuple[Sequence[LeafCheckpoint], list[str]]:
+        """Every block's checkpoint, and notes on those discarded when the run started."""
+        ...
+
+
 @dataclass(frozen=True)
 class Context:
     """What a method gets besides the blocks and its options.
@@ -112,15 +138,15 @@ class Context:
         Where the method may keep row arrays between passes (e.g. intermediate Q panels),
         in a folder beside the output that the runner removes when the job ends. Workers
         write there too, so on a remote cluster it must be on a shared file system.
-    checkpoints : Path or None
-        Folder for per-block checkpoints of the first pass (tsqr), kept until the result
-        is committed; finished blocks found there are not read again (``run --resume``).
+    checkpoints : Checkpoints or None
+        Per-block checkpoints of the first pass (tsqr), kept until the result is
+        committed; finished blocks found there are not read again (``run --resume``).
     """
 
     engine: Engine
     want_q: bool
     scratch: Scratch
-    checkpoints: Path | None = None
+    checkpoints: Checkpoints | None = None
 
 
 class Method(Protocol):

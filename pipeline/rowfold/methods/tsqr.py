@@ -9,27 +9,17 @@ path from the root to leaf i (the tree's factors applied back down).
 
 from __future__ import annotations
 
-import os
-from pathlib import Path
 from typing import Any
 
 import numpy as np
 
 from rowfold.blocks import BlockPlan, BlockSource, load_for_products
-from rowfold.errors import RunError
 from rowfold.kernels import householder_q, householder_r, metrics, positive_diagonal, stacked_r
 from rowfold.kernels import sparse as sparse_kernels
 from rowfold.kernels.fold import folded_r
 from rowfold.methods._graph import task, tree_levels
-from rowfold.methods.base import Context, Engine, Factorization
+from rowfold.methods.base import Checkpoints, Context, Engine, Factorization, LeafCheckpoint
 from rowfold.spec import MethodSpec
-from rowfold.storage.checkpoints import (
-    CheckpointError,
-    block_stamps,
-    leaf_name,
-    load_checkpoint,
-    save_checkpoint,
-)
 
 
 def leaf_factor(
@@ -59,30 +49,22 @@ def leaf_factor(
 
 
 def checkpointed_leaf(
-    source: BlockSource, index: int, path: str, keep_q: bool, stamp: str
+    source: BlockSource, index: int, checkpoint: LeafCheckpoint, keep_q: bool
 ) -> tuple[Any, Any, Any, metrics.Sums]:
-    """:func:`leaf_factor`, saving its result to ``path`` under the block's ``stamp`` (the
-    digest of the job and of the block's rows) for a later resume."""
+    """:func:`leaf_factor`, saving its result to the block's checkpoint for a later resume."""
     result = leaf_factor(source, index, keep_q)
     R, C, _, sums = result
-    arrays = {"R": R, "C": C, "a_fro2": sums["a_fro2"], "gram": sums["gram"]}
-    save_checkpoint(path, arrays, stamp)
+    checkpoint.save({"R": R, "C": C, "a_fro2": sums["a_fro2"], "gram": sums["gram"]})
     return result
 
 
-def resumed_leaf(path: str, stamp: str) -> tuple[Any, Any, Any, metrics.Sums]:
+def resumed_leaf(checkpoint: LeafCheckpoint) -> tuple[Any, Any, Any, metrics.Sums]:
     """A leaf result saved by :func:`checkpointed_leaf` (its block is not read again).
 
     The runner kept only checkpoints that held when the run started; one that no longer
-    does (changed since) fails the run with its name, and the next resume discards it.
+    does fails the run with its name (see :meth:`LeafCheckpoint.load`).
     """
-    try:
-        saved = load_checkpoint(path, stamp)
-    except CheckpointError as exc:
-        raise RunError(
-            f"checkpoint {path}: {exc} (it changed during the run); run `rowfold run "
-            "--resume` again to compute that block again"
-        ) from None
+    saved = checkpoint.load()
     sums = {"a_fro2": float(saved["a_fro2"]), "gram": saved["gram"]}
     return saved["R"], saved.get("C"), None, sums
 
@@ -137,21 +119,18 @@ class _Leaf:
 
 
 def _checkpoint_leaves(
-    plan: BlockPlan, folder: Path, keep_q: bool
+    plan: BlockPlan, checkpoints: Checkpoints, keep_q: bool
 ) -> tuple[list[_Leaf], list[str]]:
     """Leaf tasks that save checkpoints, or load the ones a killed run left (the runner has
     removed those whose rows or job changed, or whose content does not match its digest),
     and the notes on those removed."""
-    stamps, notes = block_stamps(folder)
-    if len(stamps) != plan.blocks:
-        raise RunError(f"{folder}: the checkpoint manifest does not describe this run's blocks")
+    found, notes = checkpoints.leaves(plan.blocks)
     leaves = []
-    for i, stamp in enumerate(stamps):
-        path = str(folder / leaf_name(i))
-        if os.path.isfile(path):
-            leaves.append(_Leaf(task(resumed_leaf, path, stamp), True))
+    for i, checkpoint in enumerate(found):
+        if checkpoint.saved:
+            leaves.append(_Leaf(task(resumed_leaf, checkpoint), True))
         else:
-            leaves.append(_Leaf(task(checkpointed_leaf, plan, i, path, keep_q, stamp), False))
+            leaves.append(_Leaf(task(checkpointed_leaf, plan, i, checkpoint, keep_q), False))
     return leaves, notes
 
 

@@ -24,6 +24,7 @@ import secrets
 import shutil
 import stat
 from collections.abc import Callable
+from dataclasses import dataclass
 from pathlib import Path
 from typing import Any, BinaryIO
 
@@ -260,3 +261,78 @@ def close_checkpoints(output: Path) -> None:
     folder = checkpoint_folder(output)
     if folder.exists() or folder.is_symlink():
         _remove(folder)
+
+
+@dataclass(frozen=True, slots=True)
+class BlockCheckpoint:
+    """One row block's checkpoint, as its leaf task carries it (text only, no handle).
+
+    Implements :class:`rowfold.methods.base.LeafCheckpoint`.
+
+    Attributes
+    ----------
+    path : str
+        The checkpoint file.
+    stamp : str
+        The digest of the job and of the block's rows it must carry.
+    saved : bool
+        Whether the file was there (and kept) when the run started.
+    """
+
+    path: str
+    stamp: str
+    saved: bool
+
+    def save(self, arrays: dict[str, Any]) -> None:
+        """Save the leaf's arrays (see :func:`save_checkpoint`)."""
+        save_checkpoint(self.path, arrays, self.stamp)
+
+    def load(self) -> dict[str, np.ndarray]:
+        """The saved arrays; a checkpoint changed since the run started fails the run with
+        its name (the next resume discards it).
+
+        Raises
+        ------
+        RunError
+            When the file no longer holds what was checked at the start.
+        """
+        try:
+            return load_checkpoint(self.path, self.stamp)
+        except CheckpointError as exc:
+            raise RunError(
+                f"checkpoint {self.path}: {exc} (it changed during the run); run `rowfold run "
+                "--resume` again to compute that block again"
+            ) from None
+
+
+@dataclass(frozen=True, slots=True)
+class CheckpointFolder:
+    """The run's checkpoint folder as a method sees it
+    (:class:`rowfold.methods.base.Checkpoints`).
+
+    Attributes
+    ----------
+    folder : Path
+        The folder :func:`open_checkpoints` prepared, with its manifest.
+    """
+
+    folder: Path
+
+    def leaves(self, blocks: int) -> tuple[list[BlockCheckpoint], list[str]]:
+        """Every block's checkpoint, and the notes on those discarded when the run started.
+
+        Raises
+        ------
+        RunError
+            When the manifest does not describe ``blocks`` blocks.
+        """
+        stamps, notes = block_stamps(self.folder)
+        if len(stamps) != blocks:
+            raise RunError(
+                f"{self.folder}: the checkpoint manifest does not describe this run's blocks"
+            )
+        found = []
+        for i, stamp in enumerate(stamps):
+            path = str(self.folder / leaf_name(i))
+            found.append(BlockCheckpoint(path, stamp, os.path.isfile(path)))
+        return found, notes
