@@ -97,20 +97,21 @@ class Verification:
 
     Attributes
     ----------
-    sums : dict
-        The added block sums (see :func:`rowfold.kernels.metrics.block_sums`); empty when
-        there was nothing to verify (no rhs and no Q), and then no pass was made.
+    sums : VerificationSums
+        The added block sums (see :func:`rowfold.kernels.metrics.block_sums`); nothing
+        measured when there was nothing to verify (no rhs and no Q), and then no pass was
+        made.
     formed_q : bool
         Whether Q was formed (so orthogonality figures exist).
     """
 
-    sums: metrics.Sums
+    sums: metrics.VerificationSums
     formed_q: bool
 
     @property
     def passes(self) -> int:
         """Passes over A that the verification made (0 or 1)."""
-        return 1 if self.sums else 0
+        return 1 if self.sums.measured else 0
 
 
 RowSink = Callable[[int, dict[str, np.ndarray]], None]
@@ -148,7 +149,7 @@ def verify(
     needs_q = form_q or any(name in outputs for name in ("Q", "leverage", "redundancy"))
     q_kernel = fact.q_kernel if needs_q else None
     if q_kernel is None and x is None:
-        return Verification({}, False)
+        return Verification(metrics.VerificationSums(), False)
     tasks = [
         task(
             verify_block,
@@ -167,13 +168,13 @@ def verify(
         (total,) = engine.compute(
             [sum_tree([task(first_of, t) for t in tasks], metrics.add_sums)], "verify"
         )
-        return Verification(total, q_kernel is not None)
+        return Verification(metrics.VerificationSums.of(total), q_kernel is not None)
     total_sums: metrics.Sums | None = None
     for index, (sums, rows) in enumerate(engine.stream(tasks, "verify and write rows")):
         sink(plan.bound(index)[0], rows)
         total_sums = sums if total_sums is None else metrics.add_sums(total_sums, sums)
     assert total_sums is not None
-    return Verification(total_sums, q_kernel is not None)
+    return Verification(metrics.VerificationSums.of(total_sums), q_kernel is not None)
 
 
 def column_norm_block(plan: BlockPlan, index: int) -> norms.RootSumSquares:
@@ -279,7 +280,11 @@ class ScreeningSetup:
 
 
 def screening_setup(
-    job: Job, plan: BlockPlan, solution: Solution, stats: Statistics, sums: metrics.Sums
+    job: Job,
+    plan: BlockPlan,
+    solution: Solution,
+    stats: Statistics,
+    sums: metrics.VerificationSums,
 ) -> ScreeningSetup:
     """The critical value, resolution and bound of the screening pass, from the solution
     and the verification sums (the measured ``Q^H Q``)."""
@@ -300,7 +305,7 @@ def screening_setup(
             stats.residual_std,
             resolution,
         )
-    loo = metrics.orthogonality_loss(sums["qhq"]) if "qhq" in sums else math.inf
+    loo = math.inf if sums.qhq is None else metrics.orthogonality_loss(sums.qhq)
     bound = model_tests.redundancy_total_bound(
         plan.rows, plan.cols, solution.rank, dof, loo, plan.per_block
     )
@@ -597,7 +602,7 @@ def assemble_report(
     fact: Factorization,
     solution: Solution | None,
     stats: Statistics | None,
-    sums: metrics.Sums,
+    checked: metrics.VerificationSums,
     formed_q: bool,
     seconds: dict[str, float],
     peak_memory: int,
@@ -610,14 +615,16 @@ def assemble_report(
     The answer comes first (:data:`ANSWER_FIRST`: the parameters, the datum, the
     refinement and the inputs, when ``extra`` holds them), then the quality figures.
     ``unmeasured`` says why a figure was not measured (by figure name); a gate on such a
-    figure is reported as not evaluated, and the report's ``exit_status`` is then 3.
+    figure is reported as not evaluated, and the report's ``exit_status`` is then 3. The
+    figures come from the factorization's first-pass totals and the verification totals
+    ``checked``; this is the one place the report is made from them.
     """
     sigma = metrics.singular_values(fact.R)
     norm_a = float(sigma[0]) if sigma.size else 0.0
     figures: dict[str, Any] = {
-        "orthogonality_loss": metrics.orthogonality_loss(sums["qhq"]) if formed_q else None,
-        "factorization_residual": _factorization_residual(sums) if formed_q else None,
-        "gram_residual": metrics.gram_residual(sums["gram"], fact.R, plan.rows),
+        "orthogonality_loss": _orthogonality_loss(checked) if formed_q else None,
+        "factorization_residual": _factorization_residual(checked) if formed_q else None,
+        "gram_residual": metrics.gram_residual(fact.sums.gram, fact.R, plan.rows),
         "r_condition": metrics.condition_from(sigma),
     }
     used = str(fact.details.get("method_used", job.method.name))
@@ -657,7 +664,7 @@ def assemble_report(
         "output": str(job.resolved.get("output", {}).get("path", job.output.path)),
     }
     if solution is not None and stats is not None:
-        report.update(_solution_figures(plan, solution, stats, sums, norm_a))
+        report.update(_solution_figures(plan, solution, stats, checked, norm_a))
     else:
         report.update(
             {
@@ -673,7 +680,7 @@ def assemble_report(
             "(D: the power of two nearest each column norm); fix a datum "
             "(input.fixed_columns) for a unique solution"
         )
-    problem = metrics.gram_range_problem(sums["gram"], plan.rows)
+    problem = metrics.gram_range_problem(fact.sums.gram, plan.rows)
     if problem is not None:
         report["warnings"].append(
             f"A^H A {problem} in float64 at this scaling of A, so gram_residual is not "
@@ -696,9 +703,14 @@ def assemble_report(
     return cleaned
 
 
-def _factorization_residual(sums: metrics.Sums) -> float | None:
+def _orthogonality_loss(sums: metrics.VerificationSums) -> float | None:
+    """``||I - Q^H Q||_F`` from the Gram the verification pass added."""
+    return None if sums.qhq is None else metrics.orthogonality_loss(sums.qhq)
+
+
+def _factorization_residual(sums: metrics.VerificationSums) -> float | None:
     """``||A - QR||_F / ||A||_F`` from the norms the verification pass added."""
-    defect, a_norm = sums.get("defect"), sums.get("a_norm")
+    defect, a_norm = sums.defect, sums.a_norm
     if defect is None or a_norm is None:
         return None
     size = float(a_norm.value)
@@ -745,12 +757,16 @@ def _rank_only(R: np.ndarray, job: Job) -> int:
 
 
 def _solution_figures(
-    plan: BlockPlan, solution: Solution, stats: Statistics, sums: metrics.Sums, norm_a: float
+    plan: BlockPlan,
+    solution: Solution,
+    stats: Statistics,
+    sums: metrics.VerificationSums,
+    norm_a: float,
 ) -> dict[str, Any]:
     ne = None
-    if "ahr" in sums:
+    if sums.ahr is not None:
         ne = _per_rhs(
-            plan, metrics.normal_equations_residual(sums["ahr"], norm_a, stats.residual_norm)
+            plan, metrics.normal_equations_residual(sums.ahr, norm_a, stats.residual_norm)
         )
     return {
         "rank_tolerance": solution.tolerance,

@@ -37,6 +37,7 @@ from rowfold.errors import (
     RowfoldError,
 )
 from rowfold.kernels import metrics
+from rowfold.kernels.metrics import FirstPassSums, VerificationSums
 from rowfold.methods import get_method, tsqr
 from rowfold.methods._graph import task
 from rowfold.methods.base import Context, Engine, Factorization
@@ -434,10 +435,11 @@ def _run_on(
             basis = None if solution is None else solution.range_basis
             check = quality.verify(plan, fact, x, engine, wants_q(job), outputs, sink, basis)
         stats = None
+        used = check.sums.rows_counted(plan.rows)
         if solution is not None:
-            used = int(check.sums.get("rows_used", plan.rows))
-            norms = check.sums["res_norm"].value
-            stats = statistics(solution, check.sums["res2"], used, norms)
+            res2, res_norm = check.sums.res2, check.sums.res_norm
+            assert res2 is not None and res_norm is not None, "verify measures the residual"
+            stats = statistics(solution, res2, used, res_norm.value)
         if solution is not None and stats is not None and job.solve.residuals:
             with clock.stage("screen"):
                 setup = quality.screening_setup(job, plan, solution, stats, check.sums)
@@ -445,17 +447,17 @@ def _run_on(
         if scale is not None:
             extra["column_scaling"] = _scaling_figures(fact.R, scale)
         extra.update(_answer(plan, solution, stats, scale, names))
-        state = {**fact.sums, **check.sums, "input_digests": inputs}
-        state["segments"] = _run_segment(plan, fact, state, job.update.label)
+        entry = _run_segment(plan, fact, check.sums.rtr, used, inputs, job.update.label)
+        state = ResultState(fact.sums, check.sums.rtr, used, plan.rows, inputs, [entry])
         step = {"verb": "run", "rows_read": [[0, plan.rows]], "rows_read_count": plan.rows}
-        extra["segments"] = segments.coverage(state["segments"], [], step, recomputed=True)
+        extra["segments"] = segments.coverage(state.segments, [], step, recomputed=True)
         report = quality.assemble_report(
             job=job,
             plan=plan,
             fact=fact,
             solution=solution,
             stats=stats,
-            sums={**fact.sums, **check.sums},
+            checked=check.sums,
             formed_q=check.formed_q,
             passes=fact.passes + check.passes + refine_passes + (1 if scale is not None else 0),
             seconds=clock.seconds,
@@ -483,14 +485,14 @@ def _commit(
     stats: Statistics | None,
     report: dict[str, Any],
     scale: np.ndarray | None,
-    state_sums: dict[str, Any],
+    state: ResultState,
     names: tuple[str, ...],
 ) -> RunOutcome:
     """Write the store, its update state and the reports, commit them, and say how it went."""
     _write_store(writer, job, plan, fact, solution, stats, report, scale)
     writer.put_labels("columns", names)
     writer.put_labels("columns_i", names)
-    _write_state(writer, plan, fact, state_sums, scale)
+    _write_state(writer, plan, fact, state, scale)
     json_path, html_path = storage.report_paths(job.output.local)
     report = {**report, "commit": writer.commit_id}  # the store records the same id
     drawing = time.perf_counter()
@@ -821,7 +823,7 @@ def _commit_segments(
     qhb = whole[:n, n:] if plan.rhs is not None else None
     factor = None if qhb is None else whole[n:, n:]
     gram = reduced.gram
-    sums: dict[str, Any] = {"gram": gram, "a_fro2": float(np.real(np.trace(gram)))}
+    sums = FirstPassSums(float(np.real(np.trace(gram))), gram)
     fact = Factorization(
         R=whole[:n, :n],
         qhb=qhb,
@@ -860,7 +862,7 @@ def _commit_segments(
         fact=fact,
         solution=solution,
         stats=stats,
-        sums={**sums, "res2": residual_sq},
+        checked=VerificationSums(res2=residual_sq),
         formed_q=False,
         seconds=clock.seconds,
         peak_memory=engine.peak_memory_bytes(),
@@ -868,21 +870,18 @@ def _commit_segments(
         extra=extra,
         unmeasured={"orthogonality_loss": UPDATE_NO_Q, "factorization_residual": UPDATE_NO_Q},
     )
-    state_sums = {
-        **sums,
-        "rows_used": reduced.rows_used,
-        "rows_done": change.rows_done,
-        "input_digests": change.inputs,
-        "segments": change.kept,
-        "retired_segments": change.retired,
-    }
-    if factor is not None:
-        state_sums["rtr"] = factor.conj().T @ factor
+    state = ResultState(
+        first=sums,
+        rtr=None if factor is None else factor.conj().T @ factor,
+        rows_used=reduced.rows_used,
+        rows_done=change.rows_done,
+        input_digests=change.inputs,
+        segments=change.kept,
+        retired_segments=change.retired,
+    )
     with storage.ResultWriter(job.output.local) as writer:
         writer.set_attrs({"q_state": STALE_Q_TEXT})
-        return _commit(
-            writer, job, view, fact, solution, stats, report, scale, state_sums, old.names
-        )
+        return _commit(writer, job, view, fact, solution, stats, report, scale, state, old.names)
 
 
 def _update_warnings(job: Job, verb: str = "update") -> list[str]:
@@ -1167,11 +1166,43 @@ def residual_factor(rtr: np.ndarray) -> np.ndarray:
     return np.asarray((vectors * np.sqrt(np.clip(values, 0, None))) @ vectors.conj().T)
 
 
+@dataclass(frozen=True)
+class ResultState:
+    """What a result store keeps so that ``update``, ``replace`` and ``retire`` need not read
+    its rows again.
+
+    Attributes
+    ----------
+    first : FirstPassSums
+        ``||A||_F^2`` and ``A^H A`` of the rows the answer covers.
+    rtr : ndarray (k, k) or None
+        The residual Gram ``r^H r`` (None without right-hand sides).
+    rows_used : int
+        Rows of nonzero weight.
+    rows_done : int
+        Rows of the input read so far (the next update starts there).
+    input_digests : dict
+        The row-block digests of every input (:mod:`rowfold.storage.digests`).
+    segments : list of segments.Entry
+        The live segments.
+    retired_segments : list of dict
+        Segments retired so far (their records only).
+    """
+
+    first: FirstPassSums
+    rtr: np.ndarray | None
+    rows_used: int
+    rows_done: int
+    input_digests: dict[str, Any]
+    segments: list[segments.Entry]
+    retired_segments: list[dict[str, Any]] = field(default_factory=list)
+
+
 def _write_state(
     writer: storage.ResultWriter,
     plan: BlockPlan,
     fact: Factorization,
-    sums: dict[str, Any],
+    state: ResultState,
     scale: np.ndarray | None,
 ) -> None:
     """What ``update`` needs to fold in later rows without reading these again.
@@ -1182,43 +1213,47 @@ def _write_state(
     inputs (:func:`rowfold.storage.digest_arrays`).
     """
     writer.put("state/R", fact.R)
-    writer.put("state/gram", np.asarray(sums["gram"]))
-    if fact.qhb is not None and "rtr" in sums:
+    writer.put("state/gram", state.first.gram)
+    if fact.qhb is not None and state.rtr is not None:
         writer.put("state/qhb", fact.qhb)
-        writer.put("state/residual_factor", residual_factor(np.asarray(sums["rtr"])))
+        writer.put("state/residual_factor", residual_factor(state.rtr))
     writer.put("state/column_scale", np.ones(plan.cols) if scale is None else scale)
-    for name, array in storage.digest_arrays(sums["input_digests"]).items():
+    for name, array in storage.digest_arrays(state.input_digests).items():
         writer.put(f"state/{name}", array)
-    entries = sums["segments"]
-    _write_segments(writer, entries, sums.get("retired_segments", []))
+    _write_segments(writer, state.segments, state.retired_segments)
     writer.set_attrs(
         {
-            "rows_done": int(sums.get("rows_done", plan.rows)),
-            "a_fro2": float(sums["a_fro2"]),
-            "rows_used": int(sums.get("rows_used", plan.rows)),
+            "rows_done": state.rows_done,
+            "a_fro2": state.first.a_fro2,
+            "rows_used": state.rows_used,
         }
     )
 
 
 def _run_segment(
-    plan: BlockPlan, fact: Factorization, sums: dict[str, Any], label: str | None
-) -> list[segments.Entry]:
+    plan: BlockPlan,
+    fact: Factorization,
+    rtr: np.ndarray | None,
+    rows_used: int,
+    inputs: dict[str, Any],
+    label: str | None,
+) -> segments.Entry:
     """A run's rows as the store's one segment: the factor of ``[A | b]`` from R, ``Q^H b``
-    and the residual Gram the verification pass summed, and the Gram of A."""
+    and the residual Gram ``rtr`` the verification pass summed, and the Gram of A."""
     residual = None
-    if fact.qhb is not None and "rtr" in sums:
-        residual = residual_factor(np.asarray(sums["rtr"]))
+    if fact.qhb is not None and rtr is not None:
+        residual = residual_factor(rtr)
     factor = segments.augmented(fact.R, fact.qhb, residual)
     segment = segments.Segment(
         label=label or segments.default_label(plan.first_row, plan.rows),
         first_row=plan.first_row,
         stop_row=plan.rows,
-        rows_used=int(sums.get("rows_used", plan.rows)),
-        fingerprint=segments.fingerprint(sums["input_digests"], plan.first_row, plan.rows),
+        rows_used=rows_used,
+        fingerprint=segments.fingerprint(inputs, plan.first_row, plan.rows),
         added=segments.now(),
         how="run",
     )
-    return [segments.fresh_entry(segment, factor, np.asarray(sums["gram"]))]
+    return segments.fresh_entry(segment, factor, fact.sums.gram)
 
 
 def _write_segments(

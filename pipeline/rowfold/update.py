@@ -350,7 +350,7 @@ def factor_rows(plan: BlockPlan, engine: Engine, label: str) -> SegmentFactor:
         used_tasks = [task(count_used_rows, plan, i) for i in range(plan.blocks)]
         used = sum(engine.compute(used_tasks, f"{label}: count rows"))
     factor, _ = positive_diagonal(new.R)
-    return SegmentFactor(factor, np.asarray(new.sums["gram"][:n, :n]), int(used))
+    return SegmentFactor(factor, np.asarray(new.sums.gram[:n, :n]), int(used))
 
 
 def block_range(bounds: list[list[int]], first_row: int, stop_row: int, what: str) -> list[int]:

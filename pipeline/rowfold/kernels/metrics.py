@@ -7,6 +7,7 @@ below turn the totals into report figures.
 
 from __future__ import annotations
 
+from dataclasses import dataclass, fields
 from typing import Any
 
 import numpy as np
@@ -16,6 +17,78 @@ from rowfold.kernels import norms
 from rowfold.kernels.householder import as_columns
 
 Sums = dict[str, Any]
+"""Per-block sums inside a pass's tasks, keyed by name; the totals leave a stage typed, as
+:class:`FirstPassSums` and :class:`VerificationSums`."""
+
+
+@dataclass(frozen=True, slots=True)
+class FirstPassSums:
+    """Totals of the first pass over A, which every method adds while it reads the blocks.
+
+    Attributes
+    ----------
+    a_fro2 : float
+        ``||A||_F^2``.
+    gram : ndarray (n, n)
+        ``A^H A``.
+    """
+
+    a_fro2: float
+    gram: np.ndarray
+
+    @classmethod
+    def of(cls, sums: Sums) -> FirstPassSums:
+        """From the added :func:`gram_sums` of the blocks."""
+        return cls(float(sums["a_fro2"]), np.asarray(sums["gram"]))
+
+
+@dataclass(frozen=True, slots=True)
+class VerificationSums:
+    """Totals of the verification pass (see :func:`block_sums`); a figure that was not
+    measured is None.
+
+    Attributes
+    ----------
+    res2 : ndarray (k,) or None
+        ``||r||^2`` per right-hand side.
+    res_norm : RootSumSquares or None
+        The same as norms, free of overflow and underflow.
+    rtr, ahr : ndarray or None
+        ``r^H r`` (k x k) and ``A^H r`` (n x k).
+    qhq : ndarray (n, n) or None
+        ``Q^H Q`` of the Q blocks as stored.
+    defect, a_norm : RootSumSquares or None
+        ``||A - Q R||_F`` and ``||A||_F``.
+    rows_used : int or None
+        Rows of nonzero weight (None without weights: every row).
+    """
+
+    res2: np.ndarray | None = None
+    res_norm: norms.RootSumSquares | None = None
+    rtr: np.ndarray | None = None
+    ahr: np.ndarray | None = None
+    qhq: np.ndarray | None = None
+    defect: norms.RootSumSquares | None = None
+    a_norm: norms.RootSumSquares | None = None
+    rows_used: int | None = None
+
+    @classmethod
+    def of(cls, sums: Sums) -> VerificationSums:
+        """From the added :func:`block_sums` of the blocks (and ``rows_used``)."""
+        known = {f.name for f in fields(cls)}
+        unknown = set(sums) - known
+        if unknown:
+            raise KeyError(f"verification sums with unknown names: {sorted(unknown)}")
+        return cls(**sums)
+
+    @property
+    def measured(self) -> bool:
+        """Whether the pass measured anything (it was made)."""
+        return any(getattr(self, f.name) is not None for f in fields(self))
+
+    def rows_counted(self, rows: int) -> int:
+        """Rows of nonzero weight, ``rows`` when every row counts (no weights)."""
+        return rows if self.rows_used is None else int(self.rows_used)
 
 
 def gram_sums(block: np.ndarray) -> Sums:

@@ -16,6 +16,7 @@ from typing import Any, Protocol
 import numpy as np
 
 from rowfold.blocks import BlockPlan
+from rowfold.kernels.metrics import FirstPassSums
 from rowfold.spec import MethodSpec
 
 
@@ -59,9 +60,9 @@ class Factorization:
         One recipe per row block (plain values or delayed objects).
     passes : int
         Passes over A that the factorization made.
-    sums : dict
-        First-pass sums ``a_fro2`` and ``gram`` (see :func:`rowfold.kernels.metrics.gram_sums`),
-        accumulated while the blocks were read anyway.
+    sums : FirstPassSums
+        First-pass totals ``a_fro2`` and ``gram``, accumulated while the blocks were read
+        anyway.
     details : dict
         Method-specific figures for the report (e.g. a condition estimate).
     """
@@ -71,7 +72,7 @@ class Factorization:
     q_kernel: QKernel
     q_recipes: list[Any]
     passes: int
-    sums: dict[str, Any]
+    sums: FirstPassSums
     details: dict[str, Any] = field(default_factory=dict)
 
 

@@ -297,7 +297,7 @@ def assemble(
         q_kernel=q_block_sparse if sparse else q_block,
         q_recipes=[recipe] * blocks,
         passes=passes,
-        sums={"a_fro2": first_sums["a_fro2"], "gram": first_sums["gram"]},
+        sums=metrics.FirstPassSums.of(first_sums),
         details={**details, "sparse_input": True} if sparse else details,
     )
 

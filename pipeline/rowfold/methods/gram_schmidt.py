@@ -427,7 +427,7 @@ class BlockGramSchmidt:
         self.R = np.zeros((n, n), dtype=dtype)
         self.proj = np.zeros((n, n), dtype=dtype)
         self.qhb = None if plan.rhs is None else np.zeros((n, plan.rhs_cols), dtype=dtype)
-        self.sums: metrics.Sums = {}
+        self.sums: metrics.FirstPassSums | None = None
 
     def run(self) -> Factorization:
         """Factor panel by panel and return the factorization."""
@@ -462,7 +462,7 @@ class BlockGramSchmidt:
         if j1 < self.plan.cols:
             self.proj[j0:j1, j1:] = sums["proj"]
         if index == 0:
-            self.sums = {"a_fro2": sums["a_fro2"], "gram": sums["gram"]}
+            self.sums = metrics.FirstPassSums.of(sums)
 
     def reproject(
         self, index: int, source: PanelSource, first: PanelQR
@@ -488,6 +488,7 @@ class BlockGramSchmidt:
 
     def result(self) -> Factorization:
         """Assemble the Factorization; Q is read back from the scratch array."""
+        assert self.sums is not None, "the first panel adds the first-pass sums"
         R = np.triu(self.R)
         np.fill_diagonal(R, np.abs(np.real(np.diagonal(R))))
         return Factorization(

@@ -165,7 +165,7 @@ def factor_source(
         q_kernel=q_block,
         q_recipes=recipes,
         passes=1,
-        sums=root[3],
+        sums=metrics.FirstPassSums.of(root[3]),
         details={"tree": tree, "tree_depth": len(levels) - 1},
     )
 
