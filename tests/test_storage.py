@@ -1,7 +1,8 @@
 """Storage: one input contract every backend passes, and atomic result stores.
 
 :class:`InputContract` is the shared contract for dense inputs read by row range (DESIGN.md,
-``storage/``); each backend (HDF5, Zarr format 3, Zarr format 2) subclasses it and says only
+``storage/``); each backend (HDF5, Zarr formats 3 and 2, a Zarr zip store, a Zarr store at a
+``memory://`` URL) subclasses it and says only
 how to write a file. Values are exact: reading rows must give back the very numbers written.
 :class:`TestResultWriter` checks that a result store appears only complete (DESIGN.md: "An
 output is written to a temporary sibling and renamed into place only when complete").
@@ -67,9 +68,13 @@ class InputContract:
 
     suffix: ClassVar[str]
 
-    def write(self, path: Path, arrays: dict[str, np.ndarray], chunk_rows: int) -> None:
+    def write(self, path: str, arrays: dict[str, np.ndarray], chunk_rows: int) -> None:
         """Write ``arrays`` (name -> array, names may hold '/') chunked by ``chunk_rows``."""
         raise NotImplementedError
+
+    def location(self, folder: Path, stem: str) -> str:
+        """Where an input named ``stem`` lives (a path in ``folder`` unless overridden)."""
+        return str(folder / f"{stem}{self.suffix}")
 
     def make(self, folder: Path, dtype: str = "<f8") -> tuple[str, dict[str, np.ndarray]]:
         """Write a matrix, a 1-D and a 2-D rhs under a group; return (path, arrays)."""
@@ -78,9 +83,9 @@ class InputContract:
             "network/b": sample(dtype, (ROWS,)),
             "network/B": sample(dtype, (ROWS, 2)),
         }
-        path = folder / f"input{self.suffix}"
+        path = self.location(folder, "input")
         self.write(path, arrays, CHUNK)
-        return str(path), arrays
+        return path, arrays
 
     @pytest.mark.parametrize("dtype", DTYPES)
     def test_describe_array(self, tmp_path: Path, dtype: str) -> None:
@@ -132,9 +137,9 @@ class InputContract:
 
     def test_missing_file(self, tmp_path: Path) -> None:
         """A missing file is InputMissingError naming the path."""
-        path = tmp_path / f"absent{self.suffix}"
+        path = self.location(tmp_path, "absent")
         with pytest.raises(FileNotFoundError, match="absent"):
-            describe_array(ArrayRef(str(path), "network/A"))
+            describe_array(ArrayRef(path, "network/A"))
 
     def test_group_is_not_an_array(self, tmp_path: Path) -> None:
         """Naming a group where an array is expected is an InputError, not a crash."""
@@ -148,7 +153,7 @@ class TestHDF5Input(InputContract):
 
     suffix = ".h5"
 
-    def write(self, path: Path, arrays: dict[str, np.ndarray], chunk_rows: int) -> None:
+    def write(self, path: str, arrays: dict[str, np.ndarray], chunk_rows: int) -> None:
         with h5py.File(path, "w") as handle:
             for name, array in arrays.items():
                 handle.create_dataset(name, data=array, chunks=(chunk_rows, *array.shape[1:]))
@@ -160,13 +165,18 @@ class ZarrInput(InputContract):
     suffix = ".zarr"
     zarr_format: ClassVar[Literal[2, 3]]
 
-    def write(self, path: Path, arrays: dict[str, np.ndarray], chunk_rows: int) -> None:
-        root = zarr.open_group(str(path), mode="w", zarr_format=self.zarr_format)
-        for name, array in arrays.items():
-            created = root.create_array(
-                name, shape=array.shape, dtype=array.dtype, chunks=(chunk_rows, *array.shape[1:])
-            )
-            created[...] = array
+    def write(self, path: str, arrays: dict[str, np.ndarray], chunk_rows: int) -> None:
+        root = zarr.open_group(path, mode="w", zarr_format=self.zarr_format)
+        fill_group(root, arrays, chunk_rows)
+
+
+def fill_group(root: Any, arrays: dict[str, np.ndarray], chunk_rows: int) -> None:
+    """Create and fill each array of ``arrays`` in the Zarr group ``root``."""
+    for name, array in arrays.items():
+        created = root.create_array(
+            name, shape=array.shape, dtype=array.dtype, chunks=(chunk_rows, *array.shape[1:])
+        )
+        created[...] = array
 
 
 class TestZarrV3Input(ZarrInput):
@@ -179,6 +189,35 @@ class TestZarrV2Input(ZarrInput):
     """Zarr format 2 (stores written by older tools)."""
 
     zarr_format = 2
+
+
+class TestZarrZipInput(InputContract):
+    """A Zarr store inside one zip file (zarr's zip store), read through the same contract."""
+
+    suffix = ".zarr.zip"
+
+    def write(self, path: str, arrays: dict[str, np.ndarray], chunk_rows: int) -> None:
+        from zarr.storage import ZipStore
+
+        store = ZipStore(path, mode="w")
+        try:
+            fill_group(zarr.open_group(store=store, mode="w"), arrays, chunk_rows)
+        finally:
+            store.close()
+
+    def teardown_method(self) -> None:
+        close_open_inputs()  # zip stores stay open per process, like HDF5 files
+
+
+class TestMemoryUrlInput(ZarrInput):
+    """A Zarr store at an fsspec URL (``memory://``, fsspec's in-process file system: the
+    same code path as ``s3://`` and the other object stores)."""
+
+    suffix = ".zarr"
+    zarr_format = 3
+
+    def location(self, folder: Path, stem: str) -> str:
+        return f"memory://{folder.name}/{stem}{self.suffix}"
 
 
 # ---------------------------------------------------------------- result stores
