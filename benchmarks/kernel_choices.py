@@ -93,18 +93,73 @@ def gram_rows(rows: int, widths: list[int], count: int, repeat: int) -> list[dic
     return out
 
 
+def fold_rows(
+    widths: list[int], panels: list[int], count: int, repeat: int
+) -> list[dict[str, Any]]:
+    """The R-only leaf fold (:func:`rowfold.kernels.fold.folded_r`, Gram included) of
+    ``count`` blocks of ``max(16384, 4n)`` rows at each width, for each tpqrt inner block
+    size (``FOLD_PANEL``), on one Python thread."""
+    from rowfold.kernels import fold
+
+    rng = np.random.default_rng(3)
+    out = []
+    saved = fold.FOLD_PANEL
+    try:
+        for n in widths:
+            rows = max(16384, 4 * n)
+            blocks = [rng.standard_normal((rows, n)) for _ in range(count)]
+            for panel in panels:
+                fold.FOLD_PANEL = panel
+                seconds = best_time(fold.folded_r, blocks, 1, repeat)
+                flops = 2.0 * rows * n * n * count  # 2mn^2, the benchmark's common count
+                out.append(
+                    {
+                        "cols": n,
+                        "rows": rows,
+                        "panel": panel,
+                        "seconds": seconds,
+                        "gflops_2mn2": flops / seconds / 1e9,
+                    }
+                )
+    finally:
+        fold.FOLD_PANEL = saved
+    return out
+
+
+def single_thread_dgemm(size: int = 2048) -> float:
+    """Best-of-3 dgemm rate of one BLAS thread, in GFlop/s (the fold's ceiling)."""
+    rng = np.random.default_rng(4)
+    a, b = rng.standard_normal((size, size)), rng.standard_normal((size, size))
+    best = float("inf")
+    for _ in range(3):
+        start = time.perf_counter()
+        a @ b
+        best = min(best, time.perf_counter() - start)
+    return 2.0 * size**3 / best / 1e9
+
+
 def main() -> None:
-    """Run both measurements, print them and write the JSON."""
+    """Run the measurements, print them and write the JSON."""
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--rows", type=int, default=65536)
     parser.add_argument("--blocks", type=int, default=8)
     parser.add_argument("--repeat", type=int, default=3)
     parser.add_argument("--widths", default="16,64,256")
+    parser.add_argument("--fold-widths", default="64,256,1024", help="widths of the fold rows")
+    parser.add_argument("--fold-panels", default="16,32,64", help="tpqrt inner block sizes")
+    parser.add_argument("--only-fold", action="store_true", help="measure only the fold")
     args = parser.parse_args()
     widths = [int(w) for w in args.widths.split(",")]
     with threadpool_limits(limits=1):
-        trsm = trsm_rows(args.rows, 64, args.blocks, args.repeat)
-        gram = gram_rows(args.rows, widths, args.blocks, args.repeat)
+        trsm = [] if args.only_fold else trsm_rows(args.rows, 64, args.blocks, args.repeat)
+        gram = [] if args.only_fold else gram_rows(args.rows, widths, args.blocks, args.repeat)
+        dgemm = single_thread_dgemm()
+        folds = fold_rows(
+            [int(w) for w in args.fold_widths.split(",")],
+            [int(p) for p in args.fold_panels.split(",")],
+            2,
+            args.repeat,
+        )
     blas = [(i.get("internal_api"), i.get("architecture")) for i in threadpool_info()]
     print(f"BLAS: {blas}; {args.blocks} blocks, best of {args.repeat}, 1 BLAS thread per call")
     for row in trsm:
@@ -117,9 +172,16 @@ def main() -> None:
             f"gram {args.rows}x{row['cols']:<4} {row['kernel']:<20} threads={row['threads']}"
             f"  {row['seconds']:.3f} s  ({row['gflops_gemm_count']:.1f} GFlop/s, gemm count)"
         )
+    print(f"dgemm, one BLAS thread: {dgemm:.1f} GFlop/s")
+    for row in folds:
+        print(
+            f"fold {row['rows']}x{row['cols']:<4} panel={row['panel']:<3}  {row['seconds']:.3f} s  "
+            f"({row['gflops_2mn2']:.1f} GFlop/s, {row['gflops_2mn2'] / dgemm:.0%} of dgemm)"
+        )
     RESULTS.mkdir(exist_ok=True)
     path = RESULTS / "kernel_choices.json"
-    path.write_text(json.dumps({"blas": blas, "trsm": trsm, "gram": gram}, indent=2))
+    record = {"blas": blas, "trsm": trsm, "gram": gram, "dgemm_1_thread": dgemm, "fold": folds}
+    path.write_text(json.dumps(record, indent=2))
     print(f"wrote {path}")
 
 
