@@ -26,6 +26,7 @@ from rowfold.kernels import (
     solve_right_upper,
     stacked_r,
 )
+from rowfold.kernels.fold import FOLD_ROWS, WIDE_FROM, fold_panel, folded_r
 from rowfold.kernels.gram import gram_upper
 
 import bounds
@@ -260,3 +261,23 @@ def test_a_non_finite_entry_reaches_the_gram_diagonal(dtype: type, layout: str) 
         diagonal = np.real(np.diagonal(gram_upper(_laid_out(a, layout))))
     assert np.array_equal(~np.isfinite(diagonal), bad_columns)
     assert np.all(np.isnan(diagonal[np.isnan(a).any(axis=0)]))
+
+
+@pytest.mark.parametrize("width", [WIDE_FROM - 1, WIDE_FROM])
+def test_fold_on_each_side_of_the_wide_panel_is_a_cholesky_factor(width: int) -> None:
+    """folded_r switches tpqrt's inner block size at WIDE_FROM columns; on either side R is
+    upper triangular with R^H R = A^H A to the Householder Gram-residual bound (the bound's
+    source is in tests/bounds.py) and its Gram is A^H A to the inner-product bound."""
+    assert fold_panel(WIDE_FROM - 1) != fold_panel(WIDE_FROM)
+    rng = np.random.default_rng(width)
+    a = rng.standard_normal((FOLD_ROWS + width + 7, width))  # two pieces, the last ragged
+    R, _, gram = folded_r(a)
+    assert np.array_equal(R, np.triu(R))
+    exact = a.T @ a
+    limit = bounds.gram_residual(a.shape[0], width, a.dtype) * float(np.linalg.norm(a)) ** 2
+    assert np.linalg.norm(R.T @ R - exact) <= limit
+    assert gram is not None
+    assert (
+        np.linalg.norm(gram - exact)
+        <= 2 * bounds.inner_products(a.shape[0]) * float(np.linalg.norm(a)) ** 2
+    )

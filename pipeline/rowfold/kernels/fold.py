@@ -25,8 +25,18 @@ from rowfold.kernels.nogil import tpqrt
 # 4096 were within 10% of each other on 16 <= n <= 256 (measured, see module docstring).
 FOLD_ROWS = 2048
 
-# tpqrt's inner block size; 16 was fastest or within 5% for n = 64, 200 and 256 (measured).
+# tpqrt's inner block size by width, measured with `benchmarks/kernel_choices.py --only-fold`
+# (one BLAS thread, 16,384-row blocks): 16 was fastest or within the noise for n = 64, 200
+# and 256; at n = 1024, 64 folded a block in 2.5 to 3.2 s against 3.8 s for 16 and 4.4 s
+# for 128 (the whole-block geqrf took 2.5 s there, and 2.2 times the fold's time at n = 256).
 FOLD_PANEL = 16
+WIDE_FOLD_PANEL = 64
+WIDE_FROM = 512
+
+
+def fold_panel(width: int) -> int:
+    """tpqrt's inner block size for a fold of ``width`` columns (see :data:`FOLD_PANEL`)."""
+    return max(1, min(WIDE_FOLD_PANEL if width >= WIDE_FROM else FOLD_PANEL, width))
 
 
 def folded_r(
@@ -61,7 +71,7 @@ def folded_r(
     width = n + (0 if extra is None else extra.shape[1])
     triangle = np.zeros((width, width), dtype=dtype, order="F")
     upper = np.zeros((n, n), dtype=dtype) if with_gram else None
-    panel = max(1, min(FOLD_PANEL, width))
+    panel = fold_panel(width)
     for start in range(0, rows, FOLD_ROWS):
         piece = _fortran_piece(block, extra, start, dtype)
         if upper is not None:
