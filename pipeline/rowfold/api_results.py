@@ -194,22 +194,30 @@ def _figures(result: QRResult) -> list[str]:
 
 
 def _parameter_table(result: LstsqResult) -> list[str]:
-    """One line per parameter: name, then x and standard error per right-hand side."""
+    """One line per parameter: name, then x and standard error per right-hand side, each
+    column as wide as its widest entry (complex x included)."""
     x = result.x.reshape(result.x.shape[0], -1)
     se = result.stderr.reshape(x.shape)
-    width = max([9, *(len(name) for name in result.parameter_names)])
     many = x.shape[1] > 1
-    head = f"{'parameter':<{width}}"
+    columns = [[f"{'parameter'}", *result.parameter_names]]
     for k in range(x.shape[1]):
         tag = f"[{k}]" if many else ""
-        head += f"  {'x' + tag:>16}  {'stderr' + tag:>11}"
-    rows = [head, "-" * len(head)]
-    for j, name in enumerate(result.parameter_names):
-        line = f"{name:<{width}}"
-        for k in range(x.shape[1]):
-            line += f"  {x[j, k]:>16.9g}  {se[j, k]:>11.3g}"
-        rows.append(line)
-    return rows
+        columns.append([f"x{tag}", *(_number(v, 9) for v in x[:, k])])
+        columns.append([f"stderr{tag}", *(_number(v, 3) for v in se[:, k])])
+    widths = [max(len(cell) for cell in column) for column in columns]
+    lines = []
+    for i in range(len(columns[0])):
+        cells = [f"{columns[0][i]:<{widths[0]}}"]
+        cells += [f"{column[i]:>{w}}" for column, w in zip(columns[1:], widths[1:], strict=True)]
+        lines.append("  ".join(cells))
+    return [lines[0], "-" * len(lines[0]), *lines[1:]]
+
+
+def _number(value: Any, digits: int) -> str:
+    """A real or complex number in ``digits`` significant digits."""
+    if np.iscomplexobj(value):
+        return f"{value.real:.{digits}g}{value.imag:+.{digits}g}j"
+    return f"{float(value):.{digits}g}"
 
 
 def _frozen(array: np.ndarray | None) -> Any:
