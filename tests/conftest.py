@@ -18,10 +18,15 @@ replay it with ``@reproduce_failure``) for looking for new failures locally, e.g
 from __future__ import annotations
 
 import os
+from collections.abc import Iterator
 from pathlib import Path
+from typing import TYPE_CHECKING
 
 import pytest
 from hypothesis import settings
+
+if TYPE_CHECKING:
+    from support import S3Server
 
 settings.register_profile("ci", derandomize=True, database=None, deadline=None, print_blob=True)
 settings.register_profile("explore", derandomize=False, deadline=None, print_blob=True)
@@ -83,3 +88,21 @@ def pytest_collection_modifyitems(config: pytest.Config, items: list[pytest.Item
 def job_folder(tmp_path: Path) -> Path:
     """A fresh folder for one job's files."""
     return tmp_path
+
+
+@pytest.fixture(scope="session")
+def s3_server() -> Iterator[S3Server]:
+    """An S3-compatible server on 127.0.0.1 (moto's server mode, in this process) for the
+    session; it accepts any key (moto checks no signatures by default)."""
+    pytest.importorskip("s3fs")
+    server_module = pytest.importorskip("moto.server")
+    import logging
+
+    logging.getLogger("werkzeug").setLevel(logging.ERROR)  # one line per request otherwise
+    server = server_module.ThreadedMotoServer(ip_address="127.0.0.1", port=0, verbose=False)
+    server.start()
+    host, port = server.get_host_and_port()
+    from support import S3Server
+
+    yield S3Server(f"http://{host}:{port}")
+    server.stop()

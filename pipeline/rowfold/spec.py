@@ -179,13 +179,13 @@ class OutputSpec:
         Raises
         ------
         OutputError
-            For a URL result: only ``run`` writes one (it commits locally, then publishes).
+            For a URL result: the verbs commit it in a private local folder first and then
+            publish it (:mod:`rowfold.storage.published`); nothing else opens it as a path.
         """
         if isinstance(self.path, Path):
             return self.path
         raise OutputError(
-            f"{self.path}: a result on an object store is written by run only (key "
-            "output.path); update, replace, retire, compare and check need a local result"
+            f"{self.path}: a result on an object store has no local path (key output.path)"
         )
 
 
