@@ -149,7 +149,7 @@ def one_error_line(capsys: pytest.CaptureFixture[str]) -> str:
     [
         ("nofs://bucket/obs.zarr", "fsspec knows no file system for nofs://"),
         ("memory://{memory}/missing.zarr", "input store not found"),
-        ("memory://{memory}/obs.h5", "expected the URL of a Zarr store ending in .zarr"),
+        ("memory://{memory}/obs.csv", "expected the URL of a Zarr store ending in .zarr"),
         ("file://elsewhere/obs.zarr", "expected a file URL of an absolute path"),
         ("missing.zarr.zip", "input file not found"),
     ],
@@ -216,6 +216,12 @@ def test_url_output_is_committed_by_pointer_and_old_prefixes_removed(
     said = capsys.readouterr()
     assert f"{url}: no rows added" in said.out and SECRET not in said.out + said.err
     assert pointed_x(url)[0] == second and commits_under(url) == [second]
+    assert main(["inspect", url, "--json"]) == 0  # follows the pointer
+    info = json.loads(capsys.readouterr().out)
+    assert info["pointer"]["rowfold_commit"] == second == info["report"]["commit"]
+    assert info["path"] == info["pointer"]["store"]
+    assert main(["inspect", url.replace("levelling", "nothing-here")]) == 2
+    assert "no result published" in one_error_line(capsys)
 
 
 @pytest.mark.parametrize(
@@ -645,3 +651,153 @@ def test_only_private_folders_of_dead_processes_on_this_host_are_removed(tmp_pat
         "rowfold-publish-unmarked",
         "unrelated-dead",
     ]
+
+
+# ---------------------------------------------------------------- HDF5 and NetCDF-4 by URL
+
+
+def netcdf_bytes(tmp_path: Path, A: np.ndarray, b: np.ndarray) -> bytes:
+    """A NetCDF-4 file (written by xarray through h5netcdf) holding A and b, chunked."""
+    import xarray
+
+    data = xarray.Dataset({"A": (("obs", "param"), A), "b": (("obs",), b)})
+    path = tmp_path / "made.nc"
+    encoding = {"A": {"chunksizes": (CHUNK, COLS)}, "b": {"chunksizes": (CHUNK,)}}
+    data.to_netcdf(path, engine="h5netcdf", encoding=encoding)
+    return path.read_bytes()
+
+
+def hdf5_bytes(tmp_path: Path, A: np.ndarray, b: np.ndarray) -> bytes:
+    write_arrays(tmp_path / "made.h5", {"obs/A": A, "obs/b": b}, chunk_rows=CHUNK)
+    return (tmp_path / "made.h5").read_bytes()
+
+
+def hdf5_job(folder: Path, url: str, netcdf: bool, **input_keys: Any) -> Path:
+    job = job_file(folder, url, **input_keys)
+    if netcdf:
+        spec = yaml.safe_load(job.read_text(encoding="utf-8"))
+        spec["input"].update(matrix="A", rhs="b")
+        job.write_text(yaml.safe_dump(spec), encoding="utf-8")
+    return job
+
+
+@pytest.mark.parametrize("netcdf", [False, True], ids=["h5", "nc"])
+def test_hdf5_and_netcdf_inputs_by_memory_url_warn_once_and_solve(
+    tmp_path: Path, memory_folder: str, capsys: pytest.CaptureFixture[str], netcdf: bool
+) -> None:
+    import fsspec
+
+    A, b = problem()
+    url = f"memory://{memory_folder}/obs.{'nc' if netcdf else 'h5'}"
+    made = netcdf_bytes(tmp_path, A, b) if netcdf else hdf5_bytes(tmp_path, A, b)
+    fsspec.filesystem("memory").pipe_file(url.removeprefix("memory://"), made)
+    job = hdf5_job(tmp_path, url, netcdf)
+    spec = yaml.safe_load(job.read_text(encoding="utf-8"))
+    spec["cluster"] = {"scheduler": "threads"}  # memory:// is shared by threads, not processes
+    job.write_text(yaml.safe_dump(spec), encoding="utf-8")
+    assert main(["run", str(job)]) == 0
+    assert_solves(read_result(tmp_path / "out.zarr")["x"], A, b)
+    err = capsys.readouterr().err
+    assert err.count("an HDF5 file read by URL costs a ranged request") == 1, err
+    report = json.loads((tmp_path / "out.report.json").read_text(encoding="utf-8"))
+    assert any("convert it to Zarr" in w for w in report["warnings"])
+
+
+def test_hdf5_input_on_the_local_s3_server_solves_and_updates(
+    tmp_path: Path, s3_server: S3Server, capsys: pytest.CaptureFixture[str]
+) -> None:
+    import fsspec
+
+    A, b = problem()
+    options = s3_server.options()
+    url = f"s3://{s3_server.bucket()}/campaign/obs.h5"
+    fs = fsspec.filesystem("s3", **options)
+    fs.pipe_file(url.removeprefix("s3://"), hdf5_bytes(tmp_path, A[:400], b[:400]))
+    job = hdf5_job(tmp_path, url, False, storage_options=options)
+    assert main(["--quiet", "run", str(job), "--inline"]) == 0
+    fs.pipe_file(url.removeprefix("s3://"), hdf5_bytes(tmp_path, A, b))  # 200 rows appended
+    assert main(["--quiet", "update", str(job), "--inline"]) == 0
+    assert_solves(read_result(tmp_path / "out.zarr")["x"], A, b)
+    said = capsys.readouterr()
+    assert SECRET not in said.out + said.err
+
+
+# ---------------------------------------------------------------- wrong credentials, no bucket
+
+WRONG = "wrong-secret-0c41d7"  # an invented wrong secret: must appear in no output
+
+
+def assert_nothing_holds(folder: Path, *secrets: str) -> None:
+    """No file under ``folder`` but the job files (stores, reports, logs) holds any of
+    ``secrets``."""
+    for path in (p for p in folder.rglob("*") if p.is_file() and p.suffix != ".yaml"):
+        data = path.read_bytes()
+        for secret in secrets:
+            assert secret.encode() not in data, path
+
+
+def test_wrong_credentials_for_an_input_exit_2_naming_the_url_and_the_key(
+    tmp_path: Path, s3_signed_server: S3Server, capsys: pytest.CaptureFixture[str]
+) -> None:
+    A, b = problem()
+    server = s3_signed_server
+    url = f"s3://{server.bucket()}/campaign/obs.zarr"
+    write_s3(url, server.options(), {"obs/A": A, "obs/b": b})
+    right = job_file(tmp_path, url, storage_options=server.options())
+    assert main(["--quiet", "run", str(right), "--inline"]) == 0  # the right key reads it
+    assert_solves(read_result(tmp_path / "out.zarr")["x"], A, b)
+    capsys.readouterr()
+    wrong = job_file(tmp_path, url, storage_options=server.options(secret=WRONG))
+    status = main(["run", str(wrong), "--inline", "--set", "output.path=refused.zarr"])
+    assert status in (2, 4)
+    line = one_error_line(capsys)
+    assert url in line and "input.path" in line
+    assert WRONG not in line and server.secret not in line
+    assert not (tmp_path / "refused.zarr").exists()
+    assert_nothing_holds(tmp_path, WRONG, server.secret)
+
+
+def test_wrong_credentials_for_an_output_exit_2_and_keep_the_result(
+    tmp_path: Path, s3_signed_server: S3Server, capsys: pytest.CaptureFixture[str]
+) -> None:
+    A, b = problem()
+    server = s3_signed_server
+    data = place_input("local", tmp_path, "", A, b)
+    url = f"s3://{server.bucket()}/results/levelling.zarr"
+    right = url_output_job(tmp_path, data, url, overwrite=True, storage_options=server.options())
+    assert main(["--quiet", "run", str(right), "--inline"]) == 0
+    before, x_before = pointed_x(url, server.options())
+    capsys.readouterr()
+    wrong = url_output_job(
+        tmp_path, data, url, overwrite=True, storage_options=server.options(secret=WRONG)
+    )
+    commands = [
+        ["run", str(wrong), "--inline"],
+        ["update", str(wrong), "--inline"],
+        ["retire", str(wrong), "night-1"],
+        ["compare", str(wrong), "--methods", "tsqr", "--inline"],
+    ]
+    for command in commands:
+        assert main(command) == 2, command
+        line = one_error_line(capsys)
+        assert url in line and "output.path" in line, line
+        assert WRONG not in line and server.secret not in line
+    after, x_after = pointed_x(url, server.options())
+    assert after == before
+    np.testing.assert_array_equal(x_after, x_before)
+    for name in ("levelling.report.json", "levelling.report.html"):
+        text = s3_text(url, server.options(), name)
+        assert WRONG not in text and server.secret not in text
+    assert_nothing_holds(tmp_path, WRONG, server.secret)
+
+
+def test_an_output_bucket_that_does_not_exist_exits_2_naming_the_url_and_the_key(
+    tmp_path: Path, s3_server: S3Server, capsys: pytest.CaptureFixture[str]
+) -> None:
+    A, b = problem()
+    data = place_input("local", tmp_path, "", A, b)
+    url = "s3://no-such-results-bucket/levelling.zarr"
+    job = url_output_job(tmp_path, data, url, storage_options=s3_server.options())
+    assert main(["run", str(job), "--inline"]) == 2
+    line = one_error_line(capsys)
+    assert url in line and "output.path" in line and SECRET not in line

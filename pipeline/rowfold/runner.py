@@ -52,7 +52,7 @@ from rowfold.spec import (
     check_parameter_names,
     load_job,
 )
-from rowfold.storage import published
+from rowfold.storage import locations, published
 from rowfold.storage.checkpoints import block_stamp, close_checkpoints, open_checkpoints
 from rowfold.storage.checkpoints import job_digest as job_digest_of
 
@@ -142,15 +142,31 @@ MIN_BLOCK_ROWS_PER_COLUMN = 4
 
 
 def block_warnings(plan: BlockPlan) -> list[str]:
-    """Warnings about the block size (too few rows per block for the columns)."""
+    """Warnings about the input: HDF5 read by URL (slow), and the block size (too few rows
+    per block for the columns)."""
+    found = hdf5_url_warnings(plan)
     least = MIN_BLOCK_ROWS_PER_COLUMN * plan.cols
     if plan.blocks <= 1 or plan.per_block >= least:
-        return []
+        return found
     return [
+        *found,
         f"input.rows_per_block: {plan.per_block} rows per block for {plan.cols} columns "
         f"({plan.blocks} blocks) is fewer than {MIN_BLOCK_ROWS_PER_COLUMN}n = {least}; "
         f"the reduction of the blocks' factors then costs as much as the blocks themselves; "
-        f"use at least {least} (or auto)"
+        f"use at least {least} (or auto)",
+    ]
+
+
+def hdf5_url_warnings(plan: BlockPlan) -> list[str]:
+    """The cost of an HDF5 or NetCDF-4 input read by URL, said once per job."""
+    ref = plan.matrix
+    if not (locations.is_url(ref.path) and ref.is_hdf5):
+        return []
+    return [
+        f"{ref.path}: an HDF5 file read by URL costs a ranged request per HDF5 chunk (and "
+        "per piece of its metadata), far slower than a local file; copy it to a local path, "
+        "or convert it to Zarr with chunks of a few MB (e.g. 65,536 rows of 8 float64 "
+        "columns is 4 MiB)"
     ]
 
 
@@ -273,6 +289,8 @@ def run_job(
         plan = plan_job(job)
         names = parameter_names(job, plan)
     progress.begin_job(job.name, plan.rows)
+    for warning in hdf5_url_warnings(plan):
+        progress.note(f"warning: {warning}")
     with storage.open_output(job.output.local, job.output.overwrite, _inputs(job), wait_lock):
         try:
             outcome = _run_with_engine(job, plan, names, progress, inline, resume, clock, started)
@@ -318,15 +336,10 @@ def _pointer(job: Job) -> dict[str, Any] | None:
         return published.current(url, job.output.storage_options)
     except Exception as exc:
         raise OutputError(
-            f"{url}: cannot read the result's pointer ({_reason(exc)}); "
+            f"{url}: cannot read the result's pointer "
+            f"({locations.failure(exc, job.output.storage_options)}); "
             "check output.path and output.storage_options"
         ) from None
-
-
-def _reason(exc: BaseException) -> str:
-    """An exception as a few words for a one-line message (its first line, shortened)."""
-    text = str(exc).strip().splitlines()[0] if str(exc).strip() else ""
-    return f"{exc.__class__.__name__}: {text[:160]}" if text else exc.__class__.__name__
 
 
 def _through_url(
@@ -343,7 +356,8 @@ def _through_url(
                 published.fetch_store(pointer, options, store)
             except Exception as exc:
                 raise OutputError(
-                    f"{pointer['store']}: cannot read the current result ({_reason(exc)}); "
+                    f"{pointer['store']}: cannot read the current result "
+                    f"({locations.failure(exc, options)}); "
                     "check output.path and output.storage_options"
                 ) from None
         local = replace(job, output=replace(job.output, path=store, overwrite=True))
@@ -625,7 +639,7 @@ def _compare_to_url(
         pointer = published.current(base, options)
     except Exception as exc:
         raise OutputError(
-            f"{url}: cannot read the comparison's pointer ({_reason(exc)}); "
+            f"{url}: cannot read the comparison's pointer ({locations.failure(exc, options)}); "
             "check output.path and output.storage_options"
         ) from None
     with published.private_folder() as scratch:
@@ -1361,13 +1375,47 @@ def _covariance(
 
 
 def inspect_path(path: str | Path) -> dict[str, Any]:
-    """Describe an input file or a result store (and its report, when there is one)."""
+    """Describe an input file or a result store (and its report, when there is one); a URL
+    (text with a scheme) names a result published by pointer."""
+    if isinstance(path, str) and locations.is_url(path):
+        return _inspect_url(path)
     target = Path(path).expanduser().resolve()
     storage.recover_if_idle(target)  # finish an interrupted commit before describing it
     info = storage.describe_path(target)
     json_path, _ = storage.report_paths(target)
     if json_path.exists():
         info["report"] = json.loads(json_path.read_text(encoding="utf-8"))
+    return info
+
+
+def _inspect_url(url: str) -> dict[str, Any]:
+    """Describe the result a URL's pointer names (its store fetched without the row arrays'
+    chunks into a private folder; the file system's own environment gives its options).
+
+    Raises
+    ------
+    InputError
+        When there is no pointer, or the store cannot be read (names the URL).
+    """
+    try:
+        pointer = published.current(url)
+        if pointer is None:
+            raise InputError(f"{published.pointer_url(url)}: no result published at {url}")
+        with published.private_folder() as scratch:
+            store = scratch / url.rpartition("/")[2]
+            published.fetch_store(pointer, "", store)
+            info = storage.describe_path(store)
+            report = published.read_part(pointer, storage.report_paths(store)[0].name)
+    except RowfoldError:
+        raise
+    except Exception as exc:
+        raise InputError(
+            f"{url}: cannot read the published result ({locations.failure(exc)})"
+        ) from None
+    info["path"] = str(pointer["store"])
+    info["pointer"] = pointer
+    if report is not None:
+        info["report"] = json.loads(report)
     return info
 
 

@@ -701,14 +701,20 @@ def _input_location(base: Path) -> Callable[[Any], Path | str]:
     return _location(
         INPUT_SUFFIXES,
         base,
-        "expected the URL of a Zarr store ending in .zarr (HDF5, NetCDF and zip "
-        "inputs are read from local paths)",
+        "expected the URL of a Zarr store ending in .zarr, or of an HDF5 or NetCDF-4 file "
+        "ending in .h5, .hdf5 or .nc (zip stores are read from local paths)",
+        URL_INPUT_SUFFIXES,
     )
 
 
-def _location(suffixes: tuple[str, ...], base: Path, not_zarr: str) -> Callable[[Any], Path | str]:
-    """A local path with one of ``suffixes``, or the fsspec URL of a Zarr store (``not_zarr``
-    is the message for a URL of anything else)."""
+def _location(
+    suffixes: tuple[str, ...],
+    base: Path,
+    not_zarr: str,
+    url_suffixes: tuple[str, ...] = (".zarr",),
+) -> Callable[[Any], Path | str]:
+    """A local path with one of ``suffixes``, or an fsspec URL ending in one of
+    ``url_suffixes`` (``not_zarr`` is the message for a URL of anything else)."""
     local = _suffixed_path(suffixes, base)
 
     def parse(value: Any) -> Path | str:
@@ -716,7 +722,7 @@ def _location(suffixes: tuple[str, ...], base: Path, not_zarr: str) -> Callable[
         protocol = scheme(text)
         if protocol is None or protocol == "file":
             return local(text)
-        if not text.rstrip("/").lower().endswith(".zarr"):
+        if not text.rstrip("/").lower().endswith(url_suffixes):
             raise ValueError(not_zarr)
         _require_file_system(protocol)
         return text.rstrip("/")
@@ -737,7 +743,8 @@ def _require_file_system(protocol: str) -> None:
 
 
 DATA_SUFFIXES = (".h5", ".hdf5", ".zarr")
-INPUT_SUFFIXES = (*DATA_SUFFIXES, ZIP_SUFFIX)
+INPUT_SUFFIXES = (*DATA_SUFFIXES, ".nc", ZIP_SUFFIX)  # .nc: NetCDF-4, an HDF5 file
+URL_INPUT_SUFFIXES = (".zarr", ".h5", ".hdf5", ".nc")
 
 
 def _any_path(base: Path) -> Callable[[Any], Path]:

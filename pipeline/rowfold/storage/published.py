@@ -137,7 +137,7 @@ def publish(
         raise
     except Exception as exc:
         raise OutputError(
-            f"{url}: cannot write the result ({exc.__class__.__name__}: {exc}); "
+            f"{url}: cannot write the result ({locations.failure(exc, options)}); "
             "check output.path and output.storage_options (the previous result is unchanged)"
         ) from None
     remove_stale(url, options, keep=commit)
@@ -187,6 +187,15 @@ def fetch_store(pointer: dict[str, Any], options: str, target: Path) -> None:
         local = target / relative
         local.parent.mkdir(parents=True, exist_ok=True)
         fs.get_file(name, str(local))
+
+
+def read_part(pointer: dict[str, Any], name: str, options: str = "") -> str | None:
+    """The text of the part ``name`` (e.g. the JSON report) a pointer names, None if none."""
+    url = pointer.get("parts", {}).get(name)
+    if url is None:
+        return None
+    fs, root = _fs(str(url), options)
+    return str(fs.cat_file(root).decode("utf-8"))
 
 
 @contextmanager
