@@ -801,3 +801,21 @@ def test_an_output_bucket_that_does_not_exist_exits_2_naming_the_url_and_the_key
     assert main(["run", str(job), "--inline"]) == 2
     line = one_error_line(capsys)
     assert url in line and "output.path" in line and SECRET not in line
+
+
+def test_replace_on_a_url_result_refactors_its_segment(tmp_path: Path, memory_folder: str) -> None:
+    A, b = problem()
+    url = f"memory://{memory_folder}/results/levelling.zarr"
+    job = url_output_job(tmp_path, "obs.zarr", url, overwrite=True)
+    write_arrays(tmp_path / "obs.zarr", {"obs/A": A[:300], "obs/b": b[:300]}, chunk_rows=CHUNK)
+    assert main(["--quiet", "run", str(job), "--inline", "--set", "update.label=night-1"]) == 0
+    write_arrays(tmp_path / "obs.zarr", {"obs/A": A, "obs/b": b}, chunk_rows=CHUNK)
+    assert main(["--quiet", "update", str(job), "--inline", "--label", "night-2"]) == 0
+    before, _ = pointed_x(url)
+    b_now = b.copy()
+    b_now[:300] += 0.01 * np.arange(300) / 300  # night 1 re-reduced: new values, same rows
+    write_arrays(tmp_path / "obs.zarr", {"obs/A": A, "obs/b": b_now}, chunk_rows=CHUNK)
+    assert main(["--quiet", "replace", str(job), "night-1", "--inline"]) == 0
+    after, x = pointed_x(url)
+    assert after != before and commits_under(url) == [after]
+    assert_solves(x, A, b_now)

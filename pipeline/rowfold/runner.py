@@ -213,12 +213,7 @@ def check_job(job: Job) -> dict[str, Any]:
     """Validate a job's inputs and output path without computing; return a summary."""
     plan = validate_job(job)
     if job.output.is_url:
-        existing = _pointer(job)  # the object store answers, and says whether a result exists
-        if existing is not None and not job.output.overwrite:
-            raise OutputError(
-                f"{job.output.path}: a result exists (commit {existing.get('rowfold_commit')});"
-                " set output.overwrite: true to replace it"
-            )
+        _refuse_existing(job, _pointer(job))  # the object store answers; is a result there?
     else:
         with storage.open_output(job.output.local, job.output.overwrite, _inputs(job)):
             pass  # takes the lock and recovers an interrupted commit, like a run would
@@ -312,15 +307,19 @@ def _run_to_url(
         raise OutputError(f"{url}: run --resume needs a local output.path (its checkpoints)")
     validate_job(job)  # a bad input fails before the store is touched
     existing = _pointer(job)
-    if existing is not None and not job.output.overwrite:
-        raise OutputError(
-            f"{url}: a result exists (commit {existing.get('rowfold_commit')}); set "
-            "output.overwrite: true to replace it"
-        )
-
+    _refuse_existing(job, existing)
     return _through_url(
         job, existing, lambda local: run_job(local, progress, inline, False, wait_lock)
     )
+
+
+def _refuse_existing(job: Job, pointer: dict[str, Any] | None) -> None:
+    """Refuse a URL output that holds a result unless ``output.overwrite``."""
+    if pointer is not None and not job.output.overwrite:
+        raise OutputError(
+            f"{job.output.path}: a result exists (commit {pointer.get('rowfold_commit')}); set "
+            "output.overwrite: true to replace it"
+        )
 
 
 def _pointer(job: Job) -> dict[str, Any] | None:

@@ -60,9 +60,10 @@ class InputSpec:
     Attributes
     ----------
     path : Path or str
-        HDF5 file (``.h5``/``.hdf5``), Zarr store (``.zarr``) or Zarr zip store
-        (``.zarr.zip``), absolute; or, as text, the fsspec URL of a Zarr store
-        (``s3://bucket/obs.zarr``, ``memory://...``; a ``file://`` URL becomes a path).
+        HDF5 or NetCDF-4 file (``.h5``/``.hdf5``/``.nc``), Zarr store (``.zarr``) or Zarr
+        zip store (``.zarr.zip``), absolute; or, as text, the fsspec URL of a Zarr store or
+        of an HDF5/NetCDF-4 file (``s3://bucket/obs.zarr``, ``memory://.../obs.h5``; a
+        ``file://`` URL becomes a path).
     matrix : str
         Dataset (HDF5) or array path (Zarr) of the m x n matrix A.
     rhs : str or None
