@@ -18,10 +18,15 @@ replay it with ``@reproduce_failure``) for looking for new failures locally, e.g
 from __future__ import annotations
 
 import os
+from collections.abc import Iterator
 from pathlib import Path
+from typing import TYPE_CHECKING
 
 import pytest
 from hypothesis import settings
+
+if TYPE_CHECKING:
+    from support import S3Server
 
 settings.register_profile("ci", derandomize=True, database=None, deadline=None, print_blob=True)
 settings.register_profile("explore", derandomize=False, deadline=None, print_blob=True)
@@ -83,3 +88,81 @@ def pytest_collection_modifyitems(config: pytest.Config, items: list[pytest.Item
 def job_folder(tmp_path: Path) -> Path:
     """A fresh folder for one job's files."""
     return tmp_path
+
+
+@pytest.fixture(scope="session")
+def s3_server() -> Iterator[S3Server]:
+    """An S3-compatible server on 127.0.0.1 (moto's server mode, in this process) for the
+    session; it accepts any key (moto checks no signatures by default)."""
+    pytest.importorskip("s3fs")
+    server_module = pytest.importorskip("moto.server")
+    import logging
+
+    logging.getLogger("werkzeug").setLevel(logging.ERROR)  # one line per request otherwise
+    server = server_module.ThreadedMotoServer(ip_address="127.0.0.1", port=0, verbose=False)
+    server.start()
+    host, port = server.get_host_and_port()
+    from support import S3Server
+
+    yield S3Server(f"http://{host}:{port}")
+    server.stop()
+
+
+@pytest.fixture(scope="session")
+def s3_signed_server(tmp_path_factory: pytest.TempPathFactory) -> Iterator[S3Server]:
+    """An S3-compatible server on 127.0.0.1 that checks signatures: moto's server in its
+    own process, started with ``INITIAL_NO_AUTH_ACTION_COUNT`` (moto's documented switch:
+    after that many unsigned actions every request must be signed by the keys of an IAM
+    user created in moto). The first actions create that user, its access key and a policy
+    allowing S3; the server's key and secret are the user's."""
+    pytest.importorskip("s3fs")
+    pytest.importorskip("moto.server")
+    import json
+    import socket
+    import subprocess
+    import sys
+    import time
+
+    import boto3
+
+    with socket.socket() as probe:
+        probe.bind(("127.0.0.1", 0))
+        port = probe.getsockname()[1]
+    env = {**os.environ, "INITIAL_NO_AUTH_ACTION_COUNT": "3"}
+    log = (tmp_path_factory.mktemp("moto") / "server.log").open("w")
+    command = [sys.executable, "-m", "moto.server", "-H", "127.0.0.1", "-p", str(port)]
+    server = subprocess.Popen(command, env=env, stdout=log, stderr=subprocess.STDOUT)
+    endpoint = f"http://127.0.0.1:{port}"
+    try:
+        deadline = time.monotonic() + 60
+        while True:
+            try:
+                socket.create_connection(("127.0.0.1", port), 0.2).close()
+                break
+            except OSError:
+                if time.monotonic() > deadline or server.poll() is not None:
+                    pytest.fail("the signed moto server did not start")
+                time.sleep(0.1)
+        iam = boto3.client(
+            "iam",
+            endpoint_url=endpoint,
+            region_name="us-east-1",
+            aws_access_key_id="bootstrap",
+            aws_secret_access_key="bootstrap",
+        )
+        iam.create_user(UserName="levelling-office")
+        policy = {
+            "Version": "2012-10-17",
+            "Statement": [{"Effect": "Allow", "Action": "s3:*", "Resource": "*"}],
+        }
+        iam.put_user_policy(
+            UserName="levelling-office", PolicyName="survey-data", PolicyDocument=json.dumps(policy)
+        )
+        key = iam.create_access_key(UserName="levelling-office")["AccessKey"]
+        from support import S3Server
+
+        yield S3Server(endpoint, key["AccessKeyId"], key["SecretAccessKey"])
+    finally:
+        server.terminate()
+        server.wait(timeout=30)
+        log.close()

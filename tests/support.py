@@ -116,3 +116,46 @@ def assert_thin_qr(A: np.ndarray, Q: np.ndarray, R: np.ndarray, limit: float) ->
     own_product /= float(np.linalg.norm(A))
     assert loo <= limit + own_gram, f"loss of orthogonality {loo:.2e} > {limit:.2e}"
     assert residual <= limit + own_product, f"factorization residual {residual:.2e} > {limit:.2e}"
+
+
+# ---------------------------------------------------------------- a local S3 server
+
+S3_KEY = "survey-office-key"  # invented
+S3_SECRET = "fake-secret-7f3a9c"  # an invented credential: must appear in no output
+
+
+class S3Server:
+    """An S3-compatible server on 127.0.0.1 (moto's server mode) as the tests reach it."""
+
+    def __init__(self, endpoint: str, key: str = S3_KEY, secret: str = S3_SECRET) -> None:
+        self.endpoint = endpoint
+        self.key = key
+        self.secret = secret
+
+    def options(self, secret: str | None = None) -> dict[str, Any]:
+        """s3fs storage options for this server (``secret`` to give another one)."""
+        return {
+            "key": self.key,
+            "secret": self.secret if secret is None else secret,
+            "client_kwargs": {"endpoint_url": self.endpoint, "region_name": "us-east-1"},
+        }
+
+    def client(self) -> Any:
+        """A boto3 S3 client signed with this server's key."""
+        import boto3
+
+        return boto3.client(
+            "s3",
+            endpoint_url=self.endpoint,
+            aws_access_key_id=self.key,
+            aws_secret_access_key=self.secret,
+            region_name="us-east-1",
+        )
+
+    def bucket(self, name: str | None = None) -> str:
+        """Create a bucket (a fresh invented name unless ``name``) and return its name."""
+        import uuid
+
+        name = name or f"survey-{uuid.uuid4().hex[:10]}"
+        self.client().create_bucket(Bucket=name)
+        return name

@@ -12,6 +12,7 @@ import json
 import os
 import subprocess
 import sys
+import tempfile
 import uuid
 from collections.abc import Iterator
 from pathlib import Path
@@ -25,11 +26,11 @@ from rowfold.cli import main
 from rowfold.storage import read_result, write_arrays
 
 import bounds
-from support import prescribed
+from support import S3_SECRET as SECRET
+from support import S3Server, prescribed
 
 ROWS, COLS, CHUNK = 600, 5, 100
 KAPPA = 1e4
-SECRET = "fake-secret-7f3a9c"  # an invented credential: must appear in no output
 TOKEN = "fake-token-51d2e8"
 
 
@@ -148,7 +149,7 @@ def one_error_line(capsys: pytest.CaptureFixture[str]) -> str:
     [
         ("nofs://bucket/obs.zarr", "fsspec knows no file system for nofs://"),
         ("memory://{memory}/missing.zarr", "input store not found"),
-        ("memory://{memory}/obs.h5", "expected the URL of a Zarr store ending in .zarr"),
+        ("memory://{memory}/obs.csv", "expected the URL of a Zarr store ending in .zarr"),
         ("file://elsewhere/obs.zarr", "expected a file URL of an absolute path"),
         ("missing.zarr.zip", "input file not found"),
     ],
@@ -210,9 +211,17 @@ def test_url_output_is_committed_by_pointer_and_old_prefixes_removed(
     second, x = pointed_x(url)
     assert second != first and commits_under(url) == [second]
     assert_solves(x, A, b)
-    assert main(["update", str(job), "--inline"]) == 2
-    line = one_error_line(capsys)
-    assert url in line and "output.path" in line and "run only" in line
+    capsys.readouterr()
+    assert main(["update", str(job), "--inline"]) == 0  # no rows added: nothing to publish
+    said = capsys.readouterr()
+    assert f"{url}: no rows added" in said.out and SECRET not in said.out + said.err
+    assert pointed_x(url)[0] == second and commits_under(url) == [second]
+    assert main(["inspect", url, "--json"]) == 0  # follows the pointer
+    info = json.loads(capsys.readouterr().out)
+    assert info["pointer"]["rowfold_commit"] == second == info["report"]["commit"]
+    assert info["path"] == info["pointer"]["store"]
+    assert main(["inspect", url.replace("levelling", "nothing-here")]) == 2
+    assert "no result published" in one_error_line(capsys)
 
 
 @pytest.mark.parametrize(
@@ -294,45 +303,6 @@ def test_storage_option_values_are_never_written(
 # ---------------------------------------------------------------- a local S3 server
 
 
-@pytest.fixture(scope="module")
-def s3_endpoint() -> Iterator[str]:
-    """An S3-compatible server on 127.0.0.1 (moto's server mode), for this module."""
-    pytest.importorskip("s3fs")
-    server_module = pytest.importorskip("moto.server")
-    import logging
-
-    logging.getLogger("werkzeug").setLevel(logging.ERROR)  # one line per request otherwise
-    server = server_module.ThreadedMotoServer(ip_address="127.0.0.1", port=0, verbose=False)
-    server.start()
-    host, port = server.get_host_and_port()
-    yield f"http://{host}:{port}"
-    server.stop()
-
-
-def s3_options(endpoint: str) -> dict[str, Any]:
-    """s3fs options for the local server (invented key; the secret is the fake one)."""
-    return {
-        "key": "survey-office-key",
-        "secret": SECRET,
-        "client_kwargs": {"endpoint_url": endpoint, "region_name": "us-east-1"},
-    }
-
-
-def s3_bucket(endpoint: str) -> str:
-    import boto3
-
-    name = f"survey-{uuid.uuid4().hex[:10]}"
-    client = boto3.client(
-        "s3",
-        endpoint_url=endpoint,
-        aws_access_key_id="survey-office-key",
-        aws_secret_access_key=SECRET,
-        region_name="us-east-1",
-    )
-    client.create_bucket(Bucket=name)
-    return name
-
-
 def write_s3(url: str, options: dict[str, Any], arrays: dict[str, np.ndarray]) -> None:
     import zarr
 
@@ -349,11 +319,11 @@ def write_s3(url: str, options: dict[str, Any], arrays: dict[str, np.ndarray]) -
 
 
 def test_s3_input_on_a_local_server_gives_the_least_squares_answer(
-    tmp_path: Path, s3_endpoint: str, capsys: pytest.CaptureFixture[str]
+    tmp_path: Path, s3_server: S3Server, capsys: pytest.CaptureFixture[str]
 ) -> None:
     A, b = problem()
-    options = s3_options(s3_endpoint)
-    url = f"s3://{s3_bucket(s3_endpoint)}/campaign/obs.zarr"
+    options = s3_server.options()
+    url = f"s3://{s3_server.bucket()}/campaign/obs.zarr"
     write_s3(url, options, {"obs/A": A, "obs/b": b})
     job = job_file(tmp_path, url, storage_options=options)
     assert main(["run", str(job), "--inline"]) == 0
@@ -365,10 +335,10 @@ def test_s3_input_on_a_local_server_gives_the_least_squares_answer(
 
 
 def test_s3_missing_bucket_exits_2_naming_the_url_and_the_key(
-    tmp_path: Path, s3_endpoint: str, capsys: pytest.CaptureFixture[str]
+    tmp_path: Path, s3_server: S3Server, capsys: pytest.CaptureFixture[str]
 ) -> None:
     url = "s3://no-such-survey-bucket/obs.zarr"
-    job = job_file(tmp_path, url, storage_options=s3_options(s3_endpoint))
+    job = job_file(tmp_path, url, storage_options=s3_server.options())
     assert main(["run", str(job), "--inline"]) == 2
     line = one_error_line(capsys)
     assert url in line and "input.path" in line and SECRET not in line
@@ -386,23 +356,15 @@ def readme_s3_job() -> dict[str, Any]:
     return job
 
 
-def test_readme_s3_job_runs_against_the_local_server(tmp_path: Path, s3_endpoint: str) -> None:
+def test_readme_s3_job_runs_against_the_local_server(tmp_path: Path, s3_server: S3Server) -> None:
     """The README's job as written, its endpoint pointed at the local server."""
-    import boto3
-
     job = readme_s3_job()
     url = job["input"]["path"]
     assert url.startswith("s3://")
     bucket = url.removeprefix("s3://").split("/", 1)[0]
     options = job["input"]["storage_options"]
-    options = {**options, **s3_options(s3_endpoint)}
-    boto3.client(
-        "s3",
-        endpoint_url=s3_endpoint,
-        aws_access_key_id="survey-office-key",
-        aws_secret_access_key=SECRET,
-        region_name="us-east-1",
-    ).create_bucket(Bucket=bucket)
+    options = {**options, **s3_server.options()}
+    s3_server.bucket(bucket)
     A, b = problem()
     write_s3(url, options, {job["input"]["matrix"]: A, job["input"]["rhs"]: b})
     job["input"]["storage_options"] = options
@@ -413,22 +375,26 @@ def test_readme_s3_job_runs_against_the_local_server(tmp_path: Path, s3_endpoint
     assert_solves(read_result(tmp_path / "out.zarr")["x"], A, b)
 
 
-def rowfold_killed_at(job: Path, point: str) -> subprocess.CompletedProcess[str]:
-    """Run the job in a real process that ends at ``point`` as a kill would (os._exit, no
-    clean-up; rowfold.testhooks)."""
+def rowfold_killed_at(
+    job: Path, point: str, verb: str = "run", tmpdir: Path | None = None
+) -> subprocess.CompletedProcess[str]:
+    """Run the verb on the job in a real process that ends at ``point`` as a kill would
+    (os._exit, no clean-up; rowfold.testhooks)."""
     env = {**os.environ, "ROWFOLD_TEST_HOOK": f"{point}=exit"}
-    command = [sys.executable, "-m", "rowfold", "--quiet", "run", str(job), "--inline"]
+    if tmpdir is not None:
+        env["TMPDIR"] = str(tmpdir)
+    command = [sys.executable, "-m", "rowfold", "--quiet", verb, str(job), "--inline"]
     return subprocess.run(command, env=env, capture_output=True, text=True, timeout=300)
 
 
 @pytest.mark.parametrize("point", ["publish:upload:levelling.zarr", "publish:uploaded"])
 def test_s3_output_killed_before_the_pointer_keeps_the_previous_result(
-    tmp_path: Path, s3_endpoint: str, point: str
+    tmp_path: Path, s3_server: S3Server, point: str
 ) -> None:
     A, b = problem()
     data = place_input("local", tmp_path, "", A, b)
-    options = s3_options(s3_endpoint)
-    url = f"s3://{s3_bucket(s3_endpoint)}/results/levelling.zarr"
+    options = s3_server.options()
+    url = f"s3://{s3_server.bucket()}/results/levelling.zarr"
     job = url_output_job(tmp_path, data, url, overwrite=True, storage_options=options)
     assert main(["--quiet", "run", str(job), "--inline"]) == 0
     before, x_before = pointed_x(url, options)
@@ -447,12 +413,12 @@ def test_s3_output_killed_before_the_pointer_keeps_the_previous_result(
 
 
 def test_s3_output_killed_after_the_pointer_has_the_new_result(
-    tmp_path: Path, s3_endpoint: str
+    tmp_path: Path, s3_server: S3Server
 ) -> None:
     A, b = problem()
     data = place_input("local", tmp_path, "", A, b)
-    options = s3_options(s3_endpoint)
-    url = f"s3://{s3_bucket(s3_endpoint)}/results/levelling.zarr"
+    options = s3_server.options()
+    url = f"s3://{s3_server.bucket()}/results/levelling.zarr"
     job = url_output_job(tmp_path, data, url, overwrite=True, storage_options=options)
     assert main(["--quiet", "run", str(job), "--inline"]) == 0
     before, _ = pointed_x(url, options)
@@ -461,3 +427,395 @@ def test_s3_output_killed_after_the_pointer_has_the_new_result(
     after, x = pointed_x(url, options)
     assert after != before
     assert_solves(x, A, 2 * b)
+
+
+# ---------------------------------------------------------------- segment verbs on a URL
+
+
+def night_jobs(tmp_path: Path, s3_server: S3Server) -> tuple[Path, Path, str, dict[str, Any]]:
+    """The same job twice, one result on the local server and one local Zarr result."""
+    options = s3_server.options()
+    url = f"s3://{s3_server.bucket()}/results/levelling.zarr"
+    on_s3 = url_output_job(tmp_path, "obs.zarr", url, overwrite=True, storage_options=options)
+    local = tmp_path / "local-job.yaml"
+    local.write_text(on_s3.read_text(encoding="utf-8"), encoding="utf-8")
+    on_s3 = on_s3.rename(tmp_path / "s3-job.yaml")
+    spec = yaml.safe_load(local.read_text(encoding="utf-8"))
+    spec["output"] = {"path": str(tmp_path / "levelling.zarr"), "overwrite": True}
+    local.write_text(yaml.safe_dump(spec), encoding="utf-8")
+    return on_s3, local, url, options
+
+
+def assert_equal_answers(
+    x: np.ndarray, R: np.ndarray, local: dict[str, np.ndarray], A: np.ndarray, b: np.ndarray
+) -> None:
+    """x and R of the URL result against LAPACK and against the local result of the same
+    verbs, each within its perturbation bound (R: Sun 1991 with Higham 2002 Thm 19.4,
+    tests/bounds.py::r_factor; x: Wedin 1973, Higham Thm 20.1, ::lstsq_solution), as
+    tests/test_segments.py compares an update with a full run."""
+    assert_solves(x, A, b)
+    reference = np.linalg.lstsq(A, b, rcond=None)[0]
+    ratio = float(
+        np.linalg.norm(b - A @ reference) / (np.linalg.norm(A, 2) * np.linalg.norm(reference))
+    )
+    assert bounds.relative_error(x, local["x"]) <= bounds.lstsq_solution(COLS, KAPPA, ratio)
+    scale = np.linalg.norm(A, 2)
+    assert np.linalg.norm(R - local["R"]) / scale <= bounds.r_factor(COLS, KAPPA)
+
+
+def pointed_store(url: str, options: dict[str, Any]) -> dict[str, np.ndarray]:
+    """x and R of the result the pointer names."""
+    import fsspec
+    import zarr
+
+    with fsspec.open(url + ".current.json", "rb", **options) as handle:
+        pointer = json.loads(handle.read())
+    group = zarr.open_group(pointer["store"], mode="r", storage_options=options)
+    return {name: np.asarray(group[name][...]) for name in ("x", "R")}
+
+
+def test_s3_update_and_retire_equal_the_same_verbs_on_a_local_result(
+    tmp_path: Path, s3_server: S3Server
+) -> None:
+    A, b = problem()
+    on_s3, local, url, options = night_jobs(tmp_path, s3_server)
+    jobs = (str(on_s3), str(local))
+    write_arrays(tmp_path / "obs.zarr", {"obs/A": A[:200], "obs/b": b[:200]}, chunk_rows=CHUNK)
+    for job in jobs:
+        assert main(["--quiet", "run", job, "--inline", "--set", "update.label=night-1"]) == 0
+    for night, rows in ((2, 400), (3, 600)):
+        write_arrays(
+            tmp_path / "obs.zarr", {"obs/A": A[:rows], "obs/b": b[:rows]}, chunk_rows=CHUNK
+        )
+        for job in jobs:
+            assert main(["--quiet", "update", job, "--inline", "--label", f"night-{night}"]) == 0
+    first, _ = pointed_x(url, options)
+    assert commits_under(url, options) == [first]
+    assert_equal_answers(
+        **pointed_store(url, options), local=read_result(tmp_path / "levelling.zarr"), A=A, b=b
+    )
+    for job in jobs:
+        assert main(["--quiet", "retire", job, "night-1"]) == 0
+    retired = pointed_store(url, options)
+    assert_equal_answers(
+        **retired, local=read_result(tmp_path / "levelling.zarr"), A=A[200:], b=b[200:]
+    )
+    latest, _ = pointed_x(url, options)
+    assert latest != first and commits_under(url, options) == [latest]
+    report = json.loads(s3_text(url, options, "levelling.report.json"))
+    assert [s["label"] for s in report["segments"]["covered"]] == ["night-2", "night-3"]
+
+
+def s3_text(url: str, options: dict[str, Any], part: str) -> str:
+    """A part of the current result, read through its pointer."""
+    import fsspec
+
+    with fsspec.open(url + ".current.json", "rb", **options) as handle:
+        pointer = json.loads(handle.read())
+    with fsspec.open(pointer["parts"][part], "rb", **options) as handle:
+        return str(handle.read().decode("utf-8"))
+
+
+def test_s3_update_without_an_earlier_result_exits_2_naming_the_url(
+    tmp_path: Path, s3_server: S3Server, capsys: pytest.CaptureFixture[str]
+) -> None:
+    A, b = problem()
+    place_input("local", tmp_path, "", A, b)
+    on_s3, _, url, _ = night_jobs(tmp_path, s3_server)
+    assert main(["update", str(on_s3), "--inline"]) == 2
+    line = one_error_line(capsys)
+    assert url in line and "output.path" in line and "no earlier result" in line
+    assert SECRET not in line
+
+
+@pytest.mark.parametrize("point", ["publish:upload:levelling.zarr", "publish:uploaded"])
+def test_s3_update_killed_during_its_commit_keeps_the_previous_result(
+    tmp_path: Path, s3_server: S3Server, point: str, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    A, b = problem()
+    on_s3, _, url, options = night_jobs(tmp_path, s3_server)
+    write_arrays(tmp_path / "obs.zarr", {"obs/A": A[:400], "obs/b": b[:400]}, chunk_rows=CHUNK)
+    assert main(["--quiet", "run", str(on_s3), "--inline"]) == 0
+    before, x_before = pointed_x(url, options)
+    report_before = s3_text(url, options, "levelling.report.json")
+    write_arrays(tmp_path / "obs.zarr", {"obs/A": A, "obs/b": b}, chunk_rows=CHUNK)
+    (tmp_path / "tmp").mkdir()
+    killed = rowfold_killed_at(on_s3, point, "update", tmp_path / "tmp")
+    assert killed.returncode == 99, killed.stderr
+    assert SECRET not in killed.stdout + killed.stderr
+    after, x_after = pointed_x(url, options)
+    assert after == before
+    np.testing.assert_array_equal(x_after, x_before)  # the same stored bytes, untouched
+    assert s3_text(url, options, "levelling.report.json") == report_before
+    left = list((tmp_path / "tmp").glob("rowfold-publish-*"))
+    assert len(left) == 1  # the killed run's private folder, with its store
+    monkeypatch.setattr(tempfile, "tempdir", str(tmp_path / "tmp"))
+    assert main(["--quiet", "update", str(on_s3), "--inline"]) == 0
+    assert not left[0].exists(), "the next run removes a dead process's folder"
+    latest, x = pointed_x(url, options)
+    assert latest != before and commits_under(url, options) == [latest]
+    assert_solves(x, A, b)
+
+
+def test_a_pointer_moved_by_another_writer_is_not_overwritten(
+    tmp_path: Path,
+    s3_server: S3Server,
+    capsys: pytest.CaptureFixture[str],
+    monkeypatch: pytest.MonkeyPatch,
+) -> None:
+    """Another writer commits between this update's read of the pointer and its write."""
+    from rowfold import testhooks
+
+    A, b = problem()
+    on_s3, _, url, options = night_jobs(tmp_path, s3_server)
+    write_arrays(tmp_path / "obs.zarr", {"obs/A": A[:400], "obs/b": b[:400]}, chunk_rows=CHUNK)
+    assert main(["--quiet", "run", str(on_s3), "--inline"]) == 0
+    write_arrays(tmp_path / "obs.zarr", {"obs/A": A, "obs/b": b}, chunk_rows=CHUNK)
+    reached = testhooks.reached
+    other: list[str] = []
+
+    def another_writer(point: str) -> None:
+        reached(point)
+        if point == "publish:uploaded" and not other:  # the other writer, once
+            other.append(point)
+            assert main(["--quiet", "run", str(on_s3), "--inline"]) == 0
+            other.append(pointed_x(url, options)[0])
+
+    monkeypatch.setattr(testhooks, "reached", another_writer)
+    capsys.readouterr()
+    assert main(["update", str(on_s3), "--inline"]) == 2
+    line = one_error_line(capsys)
+    assert url in line and "another writer" in line and SECRET not in line
+    assert pointed_x(url, options)[0] == other[1]  # the other writer's result stands
+    assert commits_under(url, options) == [other[1]]
+
+
+def test_compare_on_s3_publishes_the_comparison_by_pointer(
+    tmp_path: Path, s3_server: S3Server, capsys: pytest.CaptureFixture[str]
+) -> None:
+    import fsspec
+
+    A, b = problem()
+    place_input("local", tmp_path, "", A, b)
+    on_s3, _, url, options = night_jobs(tmp_path, s3_server)
+    assert main(["compare", str(on_s3), "--methods", "tsqr,cholqr2", "--inline"]) == 0
+    said = capsys.readouterr()
+    assert SECRET not in said.out + said.err
+    base = url.removesuffix(".zarr") + ".compare"
+    with fsspec.open(base + ".current.json", "rb", **options) as handle:
+        pointer = json.loads(handle.read())
+    assert f"wrote {pointer['parts']['levelling.compare.json']}" in said.out
+    with fsspec.open(pointer["parts"]["levelling.compare.json"], "rb", **options) as handle:
+        payload = json.loads(handle.read())
+    records = payload["methods"]
+    assert [r["method"] for r in records] == ["tsqr", "cholqr2"]
+    assert all(r["status"] == "ok" for r in records)
+    import zarr
+
+    for method in ("tsqr", "cholqr2"):
+        group = zarr.open_group(
+            f"{pointer['store']}/{method}.zarr", mode="r", storage_options=options
+        )
+        assert_solves(np.asarray(group["x"][...]), A, b)
+
+
+def test_only_private_folders_of_dead_processes_on_this_host_are_removed(tmp_path: Path) -> None:
+    import socket
+
+    from rowfold.storage import published
+
+    ended = subprocess.run(
+        [sys.executable, "-c", "import os; print(os.getpid())"],
+        capture_output=True,
+        text=True,
+        check=True,
+    )
+    dead = int(ended.stdout)
+    owners = {
+        "dead": {"host": socket.gethostname(), "pid": dead},
+        "alive": {"host": socket.gethostname(), "pid": os.getpid()},
+        "elsewhere": {"host": "tarnholm-node-7.invalid", "pid": dead},
+    }
+    for name, owner in owners.items():
+        folder = tmp_path / f"rowfold-publish-{name}"
+        folder.mkdir()
+        (folder / published.OWNER_MARK).write_text(json.dumps(owner), encoding="utf-8")
+    (tmp_path / "rowfold-publish-unmarked").mkdir()
+    (tmp_path / "unrelated-dead").mkdir()
+    removed = published.remove_abandoned(tmp_path)
+    assert removed == [tmp_path / "rowfold-publish-dead"]
+    left = sorted(p.name for p in tmp_path.iterdir())
+    assert left == [
+        "rowfold-publish-alive",
+        "rowfold-publish-elsewhere",
+        "rowfold-publish-unmarked",
+        "unrelated-dead",
+    ]
+
+
+# ---------------------------------------------------------------- HDF5 and NetCDF-4 by URL
+
+
+def netcdf_bytes(tmp_path: Path, A: np.ndarray, b: np.ndarray) -> bytes:
+    """A NetCDF-4 file (written by xarray through h5netcdf) holding A and b, chunked."""
+    import xarray
+
+    data = xarray.Dataset({"A": (("obs", "param"), A), "b": (("obs",), b)})
+    path = tmp_path / "made.nc"
+    encoding = {"A": {"chunksizes": (CHUNK, COLS)}, "b": {"chunksizes": (CHUNK,)}}
+    data.to_netcdf(path, engine="h5netcdf", encoding=encoding)
+    return path.read_bytes()
+
+
+def hdf5_bytes(tmp_path: Path, A: np.ndarray, b: np.ndarray) -> bytes:
+    write_arrays(tmp_path / "made.h5", {"obs/A": A, "obs/b": b}, chunk_rows=CHUNK)
+    return (tmp_path / "made.h5").read_bytes()
+
+
+def hdf5_job(folder: Path, url: str, netcdf: bool, **input_keys: Any) -> Path:
+    job = job_file(folder, url, **input_keys)
+    if netcdf:
+        spec = yaml.safe_load(job.read_text(encoding="utf-8"))
+        spec["input"].update(matrix="A", rhs="b")
+        job.write_text(yaml.safe_dump(spec), encoding="utf-8")
+    return job
+
+
+@pytest.mark.parametrize("netcdf", [False, True], ids=["h5", "nc"])
+def test_hdf5_and_netcdf_inputs_by_memory_url_warn_once_and_solve(
+    tmp_path: Path, memory_folder: str, capsys: pytest.CaptureFixture[str], netcdf: bool
+) -> None:
+    import fsspec
+
+    A, b = problem()
+    url = f"memory://{memory_folder}/obs.{'nc' if netcdf else 'h5'}"
+    made = netcdf_bytes(tmp_path, A, b) if netcdf else hdf5_bytes(tmp_path, A, b)
+    fsspec.filesystem("memory").pipe_file(url.removeprefix("memory://"), made)
+    job = hdf5_job(tmp_path, url, netcdf)
+    spec = yaml.safe_load(job.read_text(encoding="utf-8"))
+    spec["cluster"] = {"scheduler": "threads"}  # memory:// is shared by threads, not processes
+    job.write_text(yaml.safe_dump(spec), encoding="utf-8")
+    assert main(["run", str(job)]) == 0
+    assert_solves(read_result(tmp_path / "out.zarr")["x"], A, b)
+    err = capsys.readouterr().err
+    assert err.count("an HDF5 file read by URL costs a ranged request") == 1, err
+    report = json.loads((tmp_path / "out.report.json").read_text(encoding="utf-8"))
+    assert any("convert it to Zarr" in w for w in report["warnings"])
+
+
+def test_hdf5_input_on_the_local_s3_server_solves_and_updates(
+    tmp_path: Path, s3_server: S3Server, capsys: pytest.CaptureFixture[str]
+) -> None:
+    import fsspec
+
+    A, b = problem()
+    options = s3_server.options()
+    url = f"s3://{s3_server.bucket()}/campaign/obs.h5"
+    fs = fsspec.filesystem("s3", **options)
+    fs.pipe_file(url.removeprefix("s3://"), hdf5_bytes(tmp_path, A[:400], b[:400]))
+    job = hdf5_job(tmp_path, url, False, storage_options=options)
+    assert main(["--quiet", "run", str(job), "--inline"]) == 0
+    fs.pipe_file(url.removeprefix("s3://"), hdf5_bytes(tmp_path, A, b))  # 200 rows appended
+    assert main(["--quiet", "update", str(job), "--inline"]) == 0
+    assert_solves(read_result(tmp_path / "out.zarr")["x"], A, b)
+    said = capsys.readouterr()
+    assert SECRET not in said.out + said.err
+
+
+# ---------------------------------------------------------------- wrong credentials, no bucket
+
+WRONG = "wrong-secret-0c41d7"  # an invented wrong secret: must appear in no output
+
+
+def assert_nothing_holds(folder: Path, *secrets: str) -> None:
+    """No file under ``folder`` but the job files (stores, reports, logs) holds any of
+    ``secrets``."""
+    for path in (p for p in folder.rglob("*") if p.is_file() and p.suffix != ".yaml"):
+        data = path.read_bytes()
+        for secret in secrets:
+            assert secret.encode() not in data, path
+
+
+def test_wrong_credentials_for_an_input_exit_2_naming_the_url_and_the_key(
+    tmp_path: Path, s3_signed_server: S3Server, capsys: pytest.CaptureFixture[str]
+) -> None:
+    A, b = problem()
+    server = s3_signed_server
+    url = f"s3://{server.bucket()}/campaign/obs.zarr"
+    write_s3(url, server.options(), {"obs/A": A, "obs/b": b})
+    right = job_file(tmp_path, url, storage_options=server.options())
+    assert main(["--quiet", "run", str(right), "--inline"]) == 0  # the right key reads it
+    assert_solves(read_result(tmp_path / "out.zarr")["x"], A, b)
+    capsys.readouterr()
+    wrong = job_file(tmp_path, url, storage_options=server.options(secret=WRONG))
+    status = main(["run", str(wrong), "--inline", "--set", "output.path=refused.zarr"])
+    assert status in (2, 4)
+    line = one_error_line(capsys)
+    assert url in line and "input.path" in line
+    assert WRONG not in line and server.secret not in line
+    assert not (tmp_path / "refused.zarr").exists()
+    assert_nothing_holds(tmp_path, WRONG, server.secret)
+
+
+def test_wrong_credentials_for_an_output_exit_2_and_keep_the_result(
+    tmp_path: Path, s3_signed_server: S3Server, capsys: pytest.CaptureFixture[str]
+) -> None:
+    A, b = problem()
+    server = s3_signed_server
+    data = place_input("local", tmp_path, "", A, b)
+    url = f"s3://{server.bucket()}/results/levelling.zarr"
+    right = url_output_job(tmp_path, data, url, overwrite=True, storage_options=server.options())
+    assert main(["--quiet", "run", str(right), "--inline"]) == 0
+    before, x_before = pointed_x(url, server.options())
+    capsys.readouterr()
+    wrong = url_output_job(
+        tmp_path, data, url, overwrite=True, storage_options=server.options(secret=WRONG)
+    )
+    commands = [
+        ["run", str(wrong), "--inline"],
+        ["update", str(wrong), "--inline"],
+        ["retire", str(wrong), "night-1"],
+        ["compare", str(wrong), "--methods", "tsqr", "--inline"],
+    ]
+    for command in commands:
+        assert main(command) == 2, command
+        line = one_error_line(capsys)
+        assert url in line and "output.path" in line, line
+        assert WRONG not in line and server.secret not in line
+    after, x_after = pointed_x(url, server.options())
+    assert after == before
+    np.testing.assert_array_equal(x_after, x_before)
+    for name in ("levelling.report.json", "levelling.report.html"):
+        text = s3_text(url, server.options(), name)
+        assert WRONG not in text and server.secret not in text
+    assert_nothing_holds(tmp_path, WRONG, server.secret)
+
+
+def test_an_output_bucket_that_does_not_exist_exits_2_naming_the_url_and_the_key(
+    tmp_path: Path, s3_server: S3Server, capsys: pytest.CaptureFixture[str]
+) -> None:
+    A, b = problem()
+    data = place_input("local", tmp_path, "", A, b)
+    url = "s3://no-such-results-bucket/levelling.zarr"
+    job = url_output_job(tmp_path, data, url, storage_options=s3_server.options())
+    assert main(["run", str(job), "--inline"]) == 2
+    line = one_error_line(capsys)
+    assert url in line and "output.path" in line and SECRET not in line
+
+
+def test_replace_on_a_url_result_refactors_its_segment(tmp_path: Path, memory_folder: str) -> None:
+    A, b = problem()
+    url = f"memory://{memory_folder}/results/levelling.zarr"
+    job = url_output_job(tmp_path, "obs.zarr", url, overwrite=True)
+    write_arrays(tmp_path / "obs.zarr", {"obs/A": A[:300], "obs/b": b[:300]}, chunk_rows=CHUNK)
+    assert main(["--quiet", "run", str(job), "--inline", "--set", "update.label=night-1"]) == 0
+    write_arrays(tmp_path / "obs.zarr", {"obs/A": A, "obs/b": b}, chunk_rows=CHUNK)
+    assert main(["--quiet", "update", str(job), "--inline", "--label", "night-2"]) == 0
+    before, _ = pointed_x(url)
+    b_now = b.copy()
+    b_now[:300] += 0.01 * np.arange(300) / 300  # night 1 re-reduced: new values, same rows
+    write_arrays(tmp_path / "obs.zarr", {"obs/A": A, "obs/b": b_now}, chunk_rows=CHUNK)
+    assert main(["--quiet", "replace", str(job), "night-1", "--inline"]) == 0
+    after, x = pointed_x(url)
+    assert after != before and commits_under(url) == [after]
+    assert_solves(x, A, b_now)

@@ -81,12 +81,21 @@ def _parser() -> argparse.ArgumentParser:
     demo = verbs.add_parser("demo", help="write the demo scenario into DIR and run it")
     demo.add_argument("dir", nargs="?", type=Path, default=Path("rowfold-demo"))
     demo.add_argument("--rows", type=int, default=None, help="observations (default 300000)")
-    inspect = verbs.add_parser("inspect", help="describe an input file or a result store")
-    inspect.add_argument("path", type=Path)
+    inspect = verbs.add_parser(
+        "inspect", help="describe an input file or a result store (a URL result by its pointer)"
+    )
+    inspect.add_argument("path", type=_path_or_url)
     inspect.add_argument(
         "--json", action="store_true", help="print every array, attribute and the report as JSON"
     )
     return parser
+
+
+def _path_or_url(text: str) -> Path | str:
+    """A local path, or a URL (``scheme://...``) kept as text."""
+    import re
+
+    return text if re.match(r"[A-Za-z][A-Za-z0-9+.-]*://", text) else Path(text)
 
 
 def _global_options(parser: argparse.ArgumentParser, defaults: bool) -> None:

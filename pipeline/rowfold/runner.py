@@ -7,9 +7,8 @@ whole result is ready; the result store and its reports are committed together.
 from __future__ import annotations
 
 import json
-import tempfile
 import time
-from collections.abc import Iterator
+from collections.abc import Callable, Iterator
 from contextlib import ExitStack, contextmanager
 from dataclasses import dataclass, field, replace
 from pathlib import Path
@@ -54,7 +53,7 @@ from rowfold.spec import (
     check_parameter_names,
     load_job,
 )
-from rowfold.storage import published
+from rowfold.storage import locations, published
 from rowfold.storage.checkpoints import (
     CheckpointFolder,
     block_stamp,
@@ -149,15 +148,31 @@ MIN_BLOCK_ROWS_PER_COLUMN = 4
 
 
 def block_warnings(plan: BlockPlan) -> list[str]:
-    """Warnings about the block size (too few rows per block for the columns)."""
+    """Warnings about the input: HDF5 read by URL (slow), and the block size (too few rows
+    per block for the columns)."""
+    found = hdf5_url_warnings(plan)
     least = MIN_BLOCK_ROWS_PER_COLUMN * plan.cols
     if plan.blocks <= 1 or plan.per_block >= least:
-        return []
+        return found
     return [
+        *found,
         f"input.rows_per_block: {plan.per_block} rows per block for {plan.cols} columns "
         f"({plan.blocks} blocks) is fewer than {MIN_BLOCK_ROWS_PER_COLUMN}n = {least}; "
         f"the reduction of the blocks' factors then costs as much as the blocks themselves; "
-        f"use at least {least} (or auto)"
+        f"use at least {least} (or auto)",
+    ]
+
+
+def hdf5_url_warnings(plan: BlockPlan) -> list[str]:
+    """The cost of an HDF5 or NetCDF-4 input read by URL, said once per job."""
+    ref = plan.matrix
+    if not (locations.is_url(ref.path) and ref.is_hdf5):
+        return []
+    return [
+        f"{ref.path}: an HDF5 file read by URL costs a ranged request per HDF5 chunk (and "
+        "per piece of its metadata), far slower than a local file; copy it to a local path, "
+        "or convert it to Zarr with chunks of a few MB (e.g. 65,536 rows of 8 float64 "
+        "columns is 4 MiB)"
     ]
 
 
@@ -203,8 +218,11 @@ def validate_job(job: Job) -> BlockPlan:
 def check_job(job: Job) -> dict[str, Any]:
     """Validate a job's inputs and output path without computing; return a summary."""
     plan = validate_job(job)
-    with storage.open_output(job.output.local, job.output.overwrite, _inputs(job)):
-        pass  # takes the lock and recovers an interrupted commit, like a run would
+    if job.output.is_url:
+        _refuse_existing(job, _pointer(job))  # the object store answers; is a result there?
+    else:
+        with storage.open_output(job.output.local, job.output.overwrite, _inputs(job)):
+            pass  # takes the lock and recovers an interrupted commit, like a run would
     return {
         "job": job.name,
         "input": str(job.input.path),
@@ -215,7 +233,7 @@ def check_job(job: Job) -> dict[str, Any]:
         "blocks": plan.blocks,
         "rows_per_block": plan.per_block,
         "method": job.method.name,
-        "output": str(job.output.local),
+        "output": str(job.output.path),
         "warnings": block_warnings(plan),
     }
 
@@ -272,6 +290,8 @@ def run_job(
         plan = plan_job(job)
         names = parameter_names(job, plan)
     progress.begin_job(job.name, plan.rows)
+    for warning in hdf5_url_warnings(plan):
+        progress.note(f"warning: {warning}")
     with storage.open_output(job.output.local, job.output.overwrite, _inputs(job), wait_lock):
         try:
             outcome = _run_with_engine(job, plan, names, progress, inline, resume, clock, started)
@@ -288,29 +308,96 @@ def _run_to_url(
 ) -> RunOutcome:
     """Run a job whose result goes to an object store: commit it in a private local folder,
     then publish it by pointer (:mod:`rowfold.storage.published`)."""
-    url, options = str(job.output.path), job.output.storage_options
+    url = str(job.output.path)
     if resume:
         raise OutputError(f"{url}: run --resume needs a local output.path (its checkpoints)")
     validate_job(job)  # a bad input fails before the store is touched
-    try:
-        existing = published.current(url, options)
-    except Exception as exc:
+    existing = _pointer(job)
+    _refuse_existing(job, existing)
+    return _through_url(
+        job, existing, lambda local: run_job(local, progress, inline, False, wait_lock)
+    )
+
+
+def _refuse_existing(job: Job, pointer: dict[str, Any] | None) -> None:
+    """Refuse a URL output that holds a result unless ``output.overwrite``."""
+    if pointer is not None and not job.output.overwrite:
         raise OutputError(
-            f"{url}: cannot read the result's pointer ({exc.__class__.__name__}: {exc}); "
-            "check output.path and output.storage_options"
-        ) from None
-    if existing is not None and not job.output.overwrite:
-        raise OutputError(
-            f"{url}: a result exists (commit {existing.get('rowfold_commit')}); set "
+            f"{job.output.path}: a result exists (commit {pointer.get('rowfold_commit')}); set "
             "output.overwrite: true to replace it"
         )
-    with tempfile.TemporaryDirectory(prefix="rowfold-publish-") as scratch:
-        store = Path(scratch) / url.rpartition("/")[2]
-        local = replace(job, output=replace(job.output, path=store, overwrite=False))
-        outcome = run_job(local, progress, inline, False, wait_lock)
+
+
+def _pointer(job: Job) -> dict[str, Any] | None:
+    """The pointer of the job's URL result (None when there is none yet).
+
+    Raises
+    ------
+    OutputError
+        When the object store cannot be read (names the URL and ``output.path``).
+    """
+    url = str(job.output.path)
+    try:
+        return published.current(url, job.output.storage_options)
+    except Exception as exc:
+        raise OutputError(
+            f"{url}: cannot read the result's pointer "
+            f"({locations.failure(exc, job.output.storage_options)}); "
+            "check output.path and output.storage_options"
+        ) from None
+
+
+def _through_url(
+    job: Job, pointer: dict[str, Any] | None, verb: Callable[[Job], RunOutcome], fetch: bool = False
+) -> RunOutcome:
+    """Run ``verb`` on the job with its output in a private local folder (holding the
+    current result's store first when ``fetch``), then publish what it committed there,
+    provided the pointer still names the commit read before (else exit 2)."""
+    url, options = str(job.output.path), job.output.storage_options
+    with published.private_folder() as scratch:
+        store = scratch / url.rpartition("/")[2]
+        if fetch and pointer is not None:
+            try:
+                published.fetch_store(pointer, options, store)
+            except Exception as exc:
+                raise OutputError(
+                    f"{pointer['store']}: cannot read the current result "
+                    f"({locations.failure(exc, options)}); "
+                    "check output.path and output.storage_options"
+                ) from None
+        local = replace(job, output=replace(job.output, path=store, overwrite=True))
+        try:
+            outcome = verb(local)
+        except RowfoldError as exc:  # name the URL, not the private folder
+            raise _renamed(exc, str(store), url) from None
         parts = [store, *storage.report_paths(store)]
-        record = published.publish(url, options, str(outcome.report["commit"]), parts)
+        commit = str(outcome.report["commit"])
+        record = published.publish(url, options, commit, parts, published.commit_of(pointer))
     return RunOutcome(outcome.status, outcome.report, str(record["store"]))
+
+
+def _renamed(exc: RowfoldError, local: str, url: str) -> RowfoldError:
+    """The error with the private folder's store named by its URL instead."""
+    text = str(exc)
+    if local not in text:
+        return exc
+    try:
+        return type(exc)(text.replace(local, url))
+    except TypeError:  # an error class with other arguments: keep it as it is
+        return exc
+
+
+def _segments_on_url(job: Job, verb: str, action: Callable[[Job], RunOutcome]) -> RunOutcome:
+    """``update``, ``replace`` or ``retire`` of a result at a URL: fetch the current
+    result, change it locally as a local result, publish the new one by pointer."""
+    pointer = _pointer(job)
+    if pointer is None:
+        raise InputError(
+            f"{job.output.path}: no earlier result to {verb} (no pointer "
+            f"{published.pointer_url(str(job.output.path))}; key output.path); "
+            "run `rowfold run` first"
+        )
+    return _through_url(job, pointer, action, fetch=True)
 
 
 def _run_with_engine(
@@ -514,11 +601,16 @@ def comparison_table(records: list[dict[str, Any]]) -> str:
 
 def compare_job(
     job: Job, methods: list[str], progress: Progress | None = None, inline: bool = False
-) -> tuple[list[dict[str, Any]], Path, Path]:
+) -> tuple[list[dict[str, Any]], Path | str, Path | str]:
     """Run one job with several methods on one engine; write and return the comparison.
 
-    Returns the comparison records and the paths of its JSON and HTML files.
+    Returns the comparison records and the paths (URLs for a URL output) of its JSON and
+    HTML files. With ``output.path`` on a URL the comparison is made in a private local
+    folder and published by pointer at ``<output stem>.compare``
+    (:mod:`rowfold.storage.published`).
     """
+    if job.output.is_url:
+        return _compare_to_url(job, methods, progress, inline)
     from rowfold import compare
 
     plan = plan_job(job)
@@ -543,6 +635,36 @@ def compare_job(
     return records, json_path, html_path
 
 
+def _compare_to_url(
+    job: Job, methods: list[str], progress: Progress | None, inline: bool
+) -> tuple[list[dict[str, Any]], str, str]:
+    """``compare_job`` for a URL output: compare locally, publish the comparison's three
+    parts (the method results' folder, the JSON, the HTML) by pointer."""
+    import uuid
+
+    url, options = str(job.output.path), job.output.storage_options
+    stem = url.rpartition("/")[2].rpartition(".")[0] or url.rpartition("/")[2]
+    base = f"{url.rpartition('/')[0]}/{stem}.compare"
+    try:
+        pointer = published.current(base, options)
+    except Exception as exc:
+        raise OutputError(
+            f"{url}: cannot read the comparison's pointer ({locations.failure(exc, options)}); "
+            "check output.path and output.storage_options"
+        ) from None
+    with published.private_folder() as scratch:
+        store = scratch / url.rpartition("/")[2]
+        local = replace(job, output=replace(job.output, path=store, overwrite=True))
+        try:
+            records, json_path, html_path = compare_job(local, methods, progress, inline)
+        except RowfoldError as exc:
+            raise _renamed(exc, str(store), url) from None
+        parts = [scratch / f"{stem}.compare", Path(json_path), Path(html_path)]
+        commit = uuid.uuid4().hex
+        record = published.publish(base, options, commit, parts, published.commit_of(pointer))
+    return records, record["parts"][parts[1].name], record["parts"][parts[2].name]
+
+
 def update_job(
     job: Job, progress: Progress | None = None, inline: bool = False, wait_lock: float = 0.0
 ) -> RunOutcome:
@@ -557,6 +679,8 @@ def update_job(
         stored one, the input no longer starts with the rows its live segments consumed, or
         the label is taken (run ``run`` instead).
     """
+    if job.output.is_url:
+        return _segments_on_url(job, "update", lambda local: update_job(local, progress, inline))
     with storage.open_output(job.output.local, True, _inputs(job), wait_lock):
         return _update_held(job, progress, inline)
 
@@ -673,6 +797,10 @@ def replace_job(
         the answer differs, or the input's row count changed (a replacement keeps the
         segment's rows where they were; rows appended since must wait for the next update).
     """
+    if job.output.is_url:
+        return _segments_on_url(
+            job, "replace", lambda local: replace_job(local, label, progress, inline)
+        )
     with storage.open_output(job.output.local, True, _inputs(job), wait_lock):
         return _replace_held(job, label, progress, inline)
 
@@ -755,6 +883,8 @@ def retire_job(
         When there is no earlier result, a label names no live segment, or every live
         segment would be retired.
     """
+    if job.output.is_url:
+        return _segments_on_url(job, "retire", lambda local: retire_job(local, labels, progress))
     with storage.open_output(job.output.local, True, _inputs(job), wait_lock):
         return _retire_held(job, labels, progress)
 
@@ -1288,13 +1418,47 @@ def _covariance(
 
 
 def inspect_path(path: str | Path) -> dict[str, Any]:
-    """Describe an input file or a result store (and its report, when there is one)."""
+    """Describe an input file or a result store (and its report, when there is one); a URL
+    (text with a scheme) names a result published by pointer."""
+    if isinstance(path, str) and locations.is_url(path):
+        return _inspect_url(path)
     target = Path(path).expanduser().resolve()
     storage.recover_if_idle(target)  # finish an interrupted commit before describing it
     info = storage.describe_path(target)
     json_path, _ = storage.report_paths(target)
     if json_path.exists():
         info["report"] = json.loads(json_path.read_text(encoding="utf-8"))
+    return info
+
+
+def _inspect_url(url: str) -> dict[str, Any]:
+    """Describe the result a URL's pointer names (its store fetched without the row arrays'
+    chunks into a private folder; the file system's own environment gives its options).
+
+    Raises
+    ------
+    InputError
+        When there is no pointer, or the store cannot be read (names the URL).
+    """
+    try:
+        pointer = published.current(url)
+        if pointer is None:
+            raise InputError(f"{published.pointer_url(url)}: no result published at {url}")
+        with published.private_folder() as scratch:
+            store = scratch / url.rpartition("/")[2]
+            published.fetch_store(pointer, "", store)
+            info = storage.describe_path(store)
+            report = published.read_part(pointer, storage.report_paths(store)[0].name)
+    except RowfoldError:
+        raise
+    except Exception as exc:
+        raise InputError(
+            f"{url}: cannot read the published result ({locations.failure(exc)})"
+        ) from None
+    info["path"] = str(pointer["store"])
+    info["pointer"] = pointer
+    if report is not None:
+        info["report"] = json.loads(report)
     return info
 
 

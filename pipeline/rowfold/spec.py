@@ -53,9 +53,10 @@ class InputSpec:
     Attributes
     ----------
     path : Path or str
-        HDF5 file (``.h5``/``.hdf5``), Zarr store (``.zarr``) or Zarr zip store
-        (``.zarr.zip``), absolute; or, as text, the fsspec URL of a Zarr store
-        (``s3://bucket/obs.zarr``, ``memory://...``; a ``file://`` URL becomes a path).
+        HDF5 or NetCDF-4 file (``.h5``/``.hdf5``/``.nc``), Zarr store (``.zarr``) or Zarr
+        zip store (``.zarr.zip``), absolute; or, as text, the fsspec URL of a Zarr store or
+        of an HDF5/NetCDF-4 file (``s3://bucket/obs.zarr``, ``memory://.../obs.h5``; a
+        ``file://`` URL becomes a path).
     matrix : str
         Dataset (HDF5) or array path (Zarr) of the m x n matrix A.
     rhs : str or None
@@ -172,13 +173,13 @@ class OutputSpec:
         Raises
         ------
         OutputError
-            For a URL result: only ``run`` writes one (it commits locally, then publishes).
+            For a URL result: the verbs commit it in a private local folder first and then
+            publish it (:mod:`rowfold.storage.published`); nothing else opens it as a path.
         """
         if isinstance(self.path, Path):
             return self.path
         raise OutputError(
-            f"{self.path}: a result on an object store is written by run only (key "
-            "output.path); update, replace, retire, compare and check need a local result"
+            f"{self.path}: a result on an object store has no local path (key output.path)"
         )
 
 
@@ -694,14 +695,20 @@ def _input_location(base: Path) -> Callable[[Any], Path | str]:
     return _location(
         INPUT_SUFFIXES,
         base,
-        "expected the URL of a Zarr store ending in .zarr (HDF5, NetCDF and zip "
-        "inputs are read from local paths)",
+        "expected the URL of a Zarr store ending in .zarr, or of an HDF5 or NetCDF-4 file "
+        "ending in .h5, .hdf5 or .nc (zip stores are read from local paths)",
+        URL_INPUT_SUFFIXES,
     )
 
 
-def _location(suffixes: tuple[str, ...], base: Path, not_zarr: str) -> Callable[[Any], Path | str]:
-    """A local path with one of ``suffixes``, or the fsspec URL of a Zarr store (``not_zarr``
-    is the message for a URL of anything else)."""
+def _location(
+    suffixes: tuple[str, ...],
+    base: Path,
+    not_zarr: str,
+    url_suffixes: tuple[str, ...] = (".zarr",),
+) -> Callable[[Any], Path | str]:
+    """A local path with one of ``suffixes``, or an fsspec URL ending in one of
+    ``url_suffixes`` (``not_zarr`` is the message for a URL of anything else)."""
     local = _suffixed_path(suffixes, base)
 
     def parse(value: Any) -> Path | str:
@@ -709,7 +716,7 @@ def _location(suffixes: tuple[str, ...], base: Path, not_zarr: str) -> Callable[
         protocol = scheme(text)
         if protocol is None or protocol == "file":
             return local(text)
-        if not text.rstrip("/").lower().endswith(".zarr"):
+        if not text.rstrip("/").lower().endswith(url_suffixes):
             raise ValueError(not_zarr)
         _require_file_system(protocol)
         return text.rstrip("/")
@@ -730,7 +737,8 @@ def _require_file_system(protocol: str) -> None:
 
 
 DATA_SUFFIXES = (".h5", ".hdf5", ".zarr")
-INPUT_SUFFIXES = (*DATA_SUFFIXES, ZIP_SUFFIX)
+INPUT_SUFFIXES = (*DATA_SUFFIXES, ".nc", ZIP_SUFFIX)  # .nc: NetCDF-4, an HDF5 file
+URL_INPUT_SUFFIXES = (".zarr", ".h5", ".hdf5", ".nc")
 
 
 def _any_path(base: Path) -> Callable[[Any], Path]:

@@ -29,6 +29,7 @@ import h5py
 import numpy as np
 
 from rowfold.errors import InputError
+from rowfold.storage import locations
 from rowfold.storage.chunks import require_hdf5_chunks, require_zarr_chunks, row_range
 from rowfold.storage.inputs import (
     _HDF5_LOCK,
@@ -43,6 +44,7 @@ from rowfold.storage.inputs import (
     _open_ref,
     describe_array,
     forget_input,
+    hdf5_file,
     open_dataset,
     require_location,
 )
@@ -137,7 +139,7 @@ def _members(ref: ArrayRef) -> dict[str, Any] | None:
     require_location(ref)
     try:
         if ref.is_hdf5:
-            with _HDF5_LOCK, h5py.File(ref.path, "r") as handle:
+            with _HDF5_LOCK, hdf5_file(ref.path, ref.storage_options) as handle:
                 return _members_hdf5(handle, ref.name)
         with warnings.catch_warnings():
             warnings.simplefilter("ignore")  # zarr warns about folders it cannot read
@@ -147,7 +149,7 @@ def _members(ref: ArrayRef) -> dict[str, Any] | None:
     except Exception as exc:
         kind = "HDF5" if ref.is_hdf5 else "Zarr"
         raise InputError(
-            f"{ref.path}: cannot open as {kind} ({exc.__class__.__name__}: {exc})"
+            f"{ref.path}: cannot open as {kind} ({locations.failure(exc, ref.storage_options)})"
         ) from None
 
 
@@ -262,7 +264,7 @@ def _shape_attr(where: str, raw: Any) -> tuple[int, int]:
 def _read_slice(ref: ArrayRef, last: int) -> tuple[int, int]:
     """Read entries 0 and ``last`` of a 1-D array (the ends of ``indptr``)."""
     if ref.is_hdf5:
-        with _HDF5_LOCK, h5py.File(ref.path, "r") as handle:
+        with _HDF5_LOCK, hdf5_file(ref.path, ref.storage_options) as handle:
             dataset = handle[ref.name]
             return int(dataset[0]), int(dataset[last])
     array = _open_ref(ref)
@@ -302,7 +304,10 @@ def read_csr_rows(
     try:
         if ref.is_hdf5:
             with _HDF5_LOCK:
-                arrays = {part: open_dataset(ref.path, ref.part(part).name) for part in CSR_ARRAYS}
+                arrays = {
+                    part: open_dataset(ref.path, ref.part(part).name, ref.storage_options)
+                    for part in CSR_ARRAYS
+                }
                 return _read_from(arrays, start, stop, _hdf5_check(ref, arrays))
         group = _open_ref(ref)
         return _read_from(group, start, stop, _zarr_check(ref, group))
@@ -311,7 +316,7 @@ def read_csr_rows(
     except Exception as exc:
         raise InputError(
             f"{ref.describe()}: rows {start}..{stop - 1} cannot be read "
-            f"({exc.__class__.__name__}: {exc})"
+            f"({locations.failure(exc, ref.storage_options)})"
         ) from None
 
 
@@ -322,7 +327,10 @@ def require_csr_chunks(ref: ArrayRef, start: int, stop: int) -> None:
         return
     if ref.is_hdf5:
         with _HDF5_LOCK:
-            arrays = {part: open_dataset(ref.path, ref.part(part).name) for part in CSR_ARRAYS}
+            arrays = {
+                part: open_dataset(ref.path, ref.part(part).name, ref.storage_options)
+                for part in CSR_ARRAYS
+            }
             _check_parts(arrays, start, stop, _hdf5_check(ref, arrays))
         return
     group = _open_ref(ref)
@@ -357,7 +365,7 @@ def _hdf5_check(ref: ArrayRef, arrays: dict[str, Any]) -> ChunkCheck | None:
     """Chunk checks for the parts of an HDF5 CSR group (the caller holds the HDF5 lock)."""
     if not ref.checks_chunks:
         return None
-    signature = _kept(ref.path)[0]
+    signature = _kept(ref.path, ref.storage_options)[0]
 
     def check(part: str, lo: int, hi: int, describe: Callable[[int, int], str]) -> None:
         where = ref.part(part).describe()

@@ -35,6 +35,7 @@ import blake3
 import numpy as np
 
 from rowfold.errors import InputError
+from rowfold.storage import locations
 from rowfold.storage.csr import require_csr_chunks
 from rowfold.storage.inputs import (
     _HDF5_LOCK,
@@ -85,7 +86,7 @@ def array_layout(ref: ArrayRef) -> dict[str, Any]:
     """The on-disk layout of a dense array that its stored chunk bytes depend on."""
     if ref.is_hdf5:
         with _HDF5_LOCK:
-            dataset = open_dataset(ref.path, ref.name)
+            dataset = open_dataset(ref.path, ref.name, ref.storage_options)
             plist = dataset.id.get_create_plist()
             filters = [list(plist.get_filter(i)[:3]) for i in range(plist.get_nfilters())]
             layout = {
@@ -149,7 +150,7 @@ class _Chunks:
         self.extent: tuple[int, ...] = ()
         if ref.is_hdf5:
             with _HDF5_LOCK:
-                dataset = open_dataset(ref.path, ref.name)
+                dataset = open_dataset(ref.path, ref.name, ref.storage_options)
                 self.extent = tuple(dataset.shape)
                 self.shape = tuple(dataset.chunks) if dataset.chunks else None
             return
@@ -176,7 +177,7 @@ class _Chunks:
         if self.ref.is_hdf5:
             offset = tuple(i * c for i, c in zip(coords, self.shape, strict=True))
             with _HDF5_LOCK:
-                dataset = open_dataset(self.ref.path, self.ref.name)
+                dataset = open_dataset(self.ref.path, self.ref.name, self.ref.storage_options)
                 try:
                     mask, data = dataset.id.read_direct_chunk(offset)
                 except RuntimeError:  # the chunk's storage was never allocated
@@ -229,7 +230,7 @@ def range_digest(ref: ArrayRef, start: int, stop: int) -> RangeDigest:
     except Exception as exc:
         raise InputError(
             f"{ref.describe()}: the stored chunks of rows {first * size}..{last * size - 1} "
-            f"cannot be read ({exc.__class__.__name__}: {exc})"
+            f"cannot be read ({locations.failure(exc, ref.storage_options)})"
         ) from None
     decoded += _update_decoded(digest, ref, last * size, stop)
     return RangeDigest(digest.hexdigest(), (last - first) * size, decoded)

@@ -10,6 +10,8 @@ from __future__ import annotations
 import os
 import threading
 import warnings
+from collections.abc import Iterator
+from contextlib import contextmanager
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
@@ -24,7 +26,7 @@ from rowfold.storage.chunks import FILL_VALUE, require_hdf5_chunks, require_zarr
 if TYPE_CHECKING:
     from zarr.core.array_spec import ArrayConfigParams
 
-HDF5_SUFFIXES = (".h5", ".hdf5")
+HDF5_SUFFIXES = (".h5", ".hdf5", ".nc")  # NetCDF-4 is HDF5
 ZARR_SUFFIXES = (".zarr",)
 
 # h5py serialises calls internally, but opening one file from several threads of one
@@ -37,6 +39,8 @@ _HDF5_LOCK = threading.Lock()
 # An entry is reopened when the file's inode, size or modification time changes, ignored in a
 # forked child, and closed by close_open_inputs(), which the runner calls when a job ends.
 _OPEN_INPUTS: dict[str, tuple[tuple[int, ...], Any, dict[str, Any]]] = {}
+# the fsspec file objects under the kept handles of HDF5 inputs by URL (closed with them)
+_OPEN_RAW: dict[str, Any] = {}
 
 # Zarr arrays rowfold writes store every chunk, also one equal to the fill value (zarr
 # leaves those out by default), so that they pass the missing-chunk check when read.
@@ -116,6 +120,22 @@ def _open_zarr(path: str, options: str = "") -> Any:
     return locations.open_zarr(path, options)
 
 
+@contextmanager
+def hdf5_file(path: str, options: str = "") -> Iterator[Any]:
+    """An HDF5 input opened read-only for one look: a local file (the fast path), or a URL
+    through an fsspec file object (each chunk then costs a ranged request)."""
+    if not locations.is_url(path):
+        with h5py.File(path, "r") as handle:
+            yield handle
+        return
+    raw = locations.open_file(path, options)
+    try:
+        with h5py.File(raw, "r") as handle:
+            yield handle
+    finally:
+        raw.close()
+
+
 def _open_ref(ref: ArrayRef) -> Any:
     """The Zarr array or group ``ref`` names, opened read-only."""
     root = _open_zarr(ref.path, ref.storage_options)
@@ -137,7 +157,7 @@ def require_location(ref: ArrayRef) -> None:
         found = locations.exists(ref.path, ref.storage_options)
     except Exception as exc:
         raise InputError(
-            f"{ref.path}: cannot reach the store ({exc.__class__.__name__}: {exc}); "
+            f"{ref.path}: cannot reach the store ({locations.failure(exc, ref.storage_options)}); "
             "check input.path and input.storage_options"
         ) from None
     if not found:
@@ -149,7 +169,7 @@ def _list_names(path: str, options: str = "") -> list[str]:
     """List array names in a file, for 'dataset not found' messages."""
     names: list[str] = []
     if Path(path).suffix.lower() in HDF5_SUFFIXES:
-        with _HDF5_LOCK, h5py.File(path, "r") as handle:
+        with _HDF5_LOCK, hdf5_file(path, options) as handle:
             handle.visititems(
                 lambda name, obj: names.append(name) if isinstance(obj, h5py.Dataset) else None
             )
@@ -200,7 +220,7 @@ def _broken_zarr_link(ref: ArrayRef) -> str | None:
 
 def _broken_hdf5_link(ref: ArrayRef) -> str | None:
     """A soft or external link on the way to ``ref.name`` whose target is missing."""
-    with _HDF5_LOCK, h5py.File(ref.path, "r") as handle:
+    with _HDF5_LOCK, hdf5_file(ref.path, ref.storage_options) as handle:
         where = ""
         for part in (p for p in ref.name.split("/") if p):
             where = f"{where}/{part}"
@@ -240,12 +260,13 @@ def describe_array(ref: ArrayRef) -> ArrayInfo:
     except Exception as exc:
         kind = "HDF5" if ref.is_hdf5 else "Zarr"
         raise InputError(
-            f"{ref.path}: cannot open as {kind} ({exc.__class__.__name__}: {exc})"
+            f"{ref.path}: cannot open as {kind} ({locations.failure(exc, ref.storage_options)}); "
+            "check input.path and input.storage_options"
         ) from None
 
 
 def _describe_hdf5(ref: ArrayRef) -> ArrayInfo:
-    with _HDF5_LOCK, h5py.File(ref.path, "r") as handle:
+    with _HDF5_LOCK, hdf5_file(ref.path, ref.storage_options) as handle:
         obj = handle.get(ref.name)
         if obj is None:
             raise KeyError(ref.name)
@@ -285,9 +306,9 @@ def read_rows(ref: ArrayRef, start: int, stop: int, purpose: str = "data") -> np
     try:
         if ref.is_hdf5:
             with _HDF5_LOCK:
-                dataset = open_dataset(ref.path, ref.name)
+                dataset = open_dataset(ref.path, ref.name, ref.storage_options)
                 if ref.checks_chunks:
-                    signature = _kept(ref.path)[0]
+                    signature = _kept(ref.path, ref.storage_options)[0]
                     require_hdf5_chunks(dataset, ref.describe(), start, stop, signature)
                 return np.asarray(dataset[start:stop])
         obj = _open_ref(ref)
@@ -299,7 +320,7 @@ def read_rows(ref: ArrayRef, start: int, stop: int, purpose: str = "data") -> np
     except Exception as exc:
         raise InputError(
             f"{ref.describe()}: rows {start}..{stop - 1} cannot be read "
-            f"({exc.__class__.__name__}: {exc})"
+            f"({locations.failure(exc, ref.storage_options)})"
         ) from None
 
 
@@ -321,13 +342,14 @@ def read_names(ref: ArrayRef) -> list[str]:
         )
     try:
         if ref.is_hdf5:
-            with _HDF5_LOCK, h5py.File(ref.path, "r") as handle:
+            with _HDF5_LOCK, hdf5_file(ref.path, ref.storage_options) as handle:
                 values = handle[ref.name][...]
         else:
             values = np.asarray(_open_ref(ref)[...])
     except Exception as exc:
         raise InputError(
-            f"{ref.describe()}: cannot read the parameter names ({exc.__class__.__name__}: {exc})"
+            f"{ref.describe()}: cannot read the parameter names "
+            f"({locations.failure(exc, ref.storage_options)})"
         ) from None
     names: list[str] = []
     for value in values.tolist():
@@ -344,26 +366,44 @@ def read_names(ref: ArrayRef) -> list[str]:
     return names
 
 
-def open_dataset(path: str, name: str) -> Any:
-    """A dataset of a kept HDF5 input, looked up once per handle (the caller holds the lock)."""
-    _, handle, datasets = _kept(path)
+def open_dataset(path: str, name: str, options: str = "") -> Any:
+    """A dataset of a kept HDF5 input, looked up once per handle (the caller holds the lock);
+    ``options`` are the storage options of a URL input."""
+    _, handle, datasets = _kept(path, options)
     if name not in datasets:
         datasets[name] = handle[name]
     return datasets[name]
 
 
-def _kept(path: str) -> tuple[tuple[int, ...], Any, dict[str, Any]]:
-    """The kept (signature, handle, datasets) entry of ``path``, opened or reopened."""
-    info = os.stat(path)
-    signature = (os.getpid(), info.st_ino, info.st_size, info.st_mtime_ns)
+def _kept(path: str, options: str = "") -> tuple[tuple[int, ...], Any, dict[str, Any]]:
+    """The kept (signature, handle, datasets) entry of ``path``, opened or reopened (a URL
+    through an fsspec file object, kept with the handle)."""
+    if locations.is_url(path):
+        signature = locations.signature_of(path, options)
+    else:
+        info = os.stat(path)
+        signature = (os.getpid(), info.st_ino, info.st_size, info.st_mtime_ns)
     cached = _OPEN_INPUTS.get(path)
     if cached is not None and cached[0] == signature:
         return cached
     if cached is not None and cached[0][0] == os.getpid():
-        cached[1].close()
-    entry: tuple[tuple[int, ...], Any, dict[str, Any]] = (signature, h5py.File(path, "r"), {})
+        _close_kept(path, cached[1])
+    if locations.is_url(path):
+        raw = _OPEN_RAW[path] = locations.open_file(path, options)
+        handle = h5py.File(raw, "r")
+    else:
+        handle = h5py.File(path, "r")
+    entry: tuple[tuple[int, ...], Any, dict[str, Any]] = (signature, handle, {})
     _OPEN_INPUTS[path] = entry
     return entry
+
+
+def _close_kept(path: str, handle: Any) -> None:
+    """Close a kept handle and the file object under it, if any."""
+    handle.close()
+    raw = _OPEN_RAW.pop(path, None)
+    if raw is not None:
+        raw.close()
 
 
 def forget_input(path: str | Path) -> None:
@@ -371,7 +411,9 @@ def forget_input(path: str | Path) -> None:
     with _HDF5_LOCK:
         cached = _OPEN_INPUTS.pop(str(path), None)
         if cached is not None and cached[0][0] == os.getpid():
-            cached[1].close()
+            _close_kept(str(path), cached[1])
+        else:
+            _OPEN_RAW.pop(str(path), None)
 
 
 def close_open_inputs() -> None:

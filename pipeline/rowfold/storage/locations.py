@@ -59,6 +59,29 @@ def redacted(options: Mapping[str, Any] | None) -> list[str]:
     return sorted(str(key) for key in (options or {}))
 
 
+def failure(exc: BaseException, options: str = "") -> str:
+    """An exception as a few words for a one-line message: its class and first line,
+    shortened, with every text value of the storage options blanked out (a file system's
+    message should never carry one, but a message is no place to find out)."""
+    text = str(exc).strip()
+    text = text.splitlines()[0][:160] if text else ""
+    for value in _texts(options_of(options) if options else {}):
+        if len(value) >= 4:
+            text = text.replace(value, "***")
+    return f"{exc.__class__.__name__}: {text}" if text else exc.__class__.__name__
+
+
+def _texts(value: Any) -> list[str]:
+    """Every text inside a nested value of storage options."""
+    if isinstance(value, str):
+        return [value]
+    if isinstance(value, Mapping):
+        return [t for item in value.values() for t in _texts(item)]
+    if isinstance(value, list | tuple):
+        return [t for item in value for t in _texts(item)]
+    return []
+
+
 def exists(location: str, options: str = "") -> bool:
     """Whether something is stored at ``location``.
 
@@ -74,6 +97,34 @@ def exists(location: str, options: str = "") -> bool:
     fs, root = fsspec.core.url_to_fs(location, **options_of(options))
     fs.invalidate_cache()  # instances are shared in a process; another may have written
     return bool(fs.exists(root))
+
+
+def open_file(url: str, options: str = "") -> Any:
+    """A read-only fsspec file object of ``url`` (ranged reads; for HDF5 inputs by URL).
+
+    Raises
+    ------
+    OSError, ValueError, ImportError
+        When the file system cannot be reached or is not known (the caller words it).
+    """
+    import fsspec
+
+    fs, root = fsspec.core.url_to_fs(url, **options_of(options))
+    return fs.open(root, "rb")
+
+
+def signature_of(url: str, options: str = "") -> tuple[int, ...]:
+    """What identifies the stored version of the object at ``url`` for this process: the
+    process, the object's size and a digest of its ETag or modification time."""
+    import hashlib
+
+    import fsspec
+
+    fs, root = fsspec.core.url_to_fs(url, **options_of(options))
+    info = fs.info(root)
+    version = str(info.get("ETag") or info.get("LastModified") or info.get("mtime") or "")
+    digest = int.from_bytes(hashlib.sha256(version.encode("utf-8")).digest()[:7], "big")
+    return (os.getpid(), int(info.get("size") or 0), digest)
 
 
 def open_zarr(location: str, options: str = "") -> Any:
