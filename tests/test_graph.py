@@ -1,4 +1,4 @@
-"""Graph building: deterministic keys and one shared node per block plan.
+"""Graph building: deterministic keys, one shared node per block plan, one layer per pass.
 
 Reference: Dask's own graph (``__dask_graph__``) and its synchronous scheduler; the values
 are checked against direct calls of the same functions.
@@ -10,7 +10,7 @@ import dask
 import numpy as np
 
 from rowfold.blocks import plan_blocks
-from rowfold.methods._graph import sum_tree, task, tree_levels
+from rowfold.methods._graph import PassGraph, sum_tree, task, tree_levels
 from rowfold.storage import ArrayInfo, ArrayRef, write_arrays
 
 
@@ -41,3 +41,50 @@ def test_tree_levels_reach_one_root_for_any_fan_in() -> None:
             levels = tree_levels(list(range(leaves)), fan_in, lambda kids: tuple(kids))
             assert len(levels[-1]) == 1
             assert len(levels) >= 2
+
+
+def add_all(*parts: float) -> float:
+    """A reduction node: the plain sum of its children."""
+    return float(sum(parts))
+
+
+def pass_of(plan: object, fan_in: int) -> tuple[PassGraph, object]:
+    """A pass reading every block with a tree of ``add_all`` over the leaves; its root."""
+    graph = PassGraph("sums", rows_sum, add_all, plan, fan_in)
+    leaves = [graph.call(rows_sum, plan, i) for i in range(plan.blocks)]  # type: ignore[attr-defined]
+    return graph, graph.tree(leaves, fan_in, add_all)[-1][0]
+
+
+def test_a_pass_is_one_layer_with_one_plan_node_and_the_same_value(tmp_path: object) -> None:
+    path = f"{tmp_path}/a.h5"
+    a = np.arange(90.0).reshape(30, 3)
+    write_arrays(path, {"A": a})
+    plan = plan_blocks(ArrayInfo(ArrayRef(path, "A"), (30, 3), "<f8", None), None, 4)
+    graph, root = pass_of(plan, 2)
+    total = graph.output(root)  # type: ignore[arg-type]
+    layers = total.__dask_graph__().layers
+    assert list(layers) == [graph.name]
+    keys = list(layers[graph.name])
+    assert sum(1 for key in keys if str(key[0]).startswith("BlockPlan")) == 1
+    # the tree of tree_levels: 8 leaves, then 4, 2 and 1 nodes of fan-in 2
+    assert sum(1 for key in keys if str(key[0]).startswith("rows_sum-")) == plan.blocks == 8
+    assert sum(1 for key in keys if str(key[0]).startswith("add_all-")) == 4 + 2 + 1
+    # Exact in any order: every partial sum is an integer below 2^53.
+    for scheduler in ("sync", "threads"):
+        (value,) = dask.compute(total, scheduler=scheduler)
+        assert value == a.sum()
+    again, _ = pass_of(plan, 2)
+    assert again.name == graph.name
+    assert pass_of(plan, 3)[0].name != graph.name
+
+
+def test_a_pass_takes_outside_values_and_literals_once() -> None:
+    graph = PassGraph("outside", 1)
+    outside = dask.delayed(np.float64(0.5))
+    shared = graph.literal(np.arange(4.0), "weights")
+    leaves = [graph.call(np.dot, shared, np.full(4, float(i))) for i in range(3)]
+    root = graph.call(add_all, graph.sum(leaves, add_all), outside)
+    (value,) = dask.compute(graph.output(root), scheduler="sync")
+    assert value == 6.0 * (0 + 1 + 2) + 0.5
+    keys = list(graph.output(root).__dask_graph__())
+    assert sum(1 for key in keys if str(key[0]).startswith("weights-")) == 1
