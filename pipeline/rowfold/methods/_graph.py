@@ -84,7 +84,8 @@ class PassGraph:
     Notes
     -----
     Arguments of :meth:`call` may be :class:`Node` (a task of this pass), a
-    :class:`BlockPlan` (one shared literal node of the layer), a ``Delayed`` (an outside
+    :class:`BlockPlan` or a value given to :meth:`share` (one literal node of the layer
+    that every task refers to), a ``Delayed`` (an outside
     dependency, e.g. a persisted value) or a plain value, taken literally (never searched
     for tasks).
     """
@@ -95,7 +96,7 @@ class PassGraph:
         self.tasks: dict[Any, Any] = {}
         self.prefixes: dict[Callable[..., Any], str] = {}
         self.outside: dict[Any, Delayed] = {}
-        self.plans: dict[int, TaskRef] = {}
+        self.shared: dict[int, tuple[Any, TaskRef]] = {}
         self.count = 0
 
     def call(self, func: Callable[..., Any], *args: Any) -> Node:
@@ -116,26 +117,24 @@ class PassGraph:
         """The graph form of one argument (see the class notes)."""
         if isinstance(arg, Node):
             return arg.ref
+        kept = self.shared.get(id(arg))
+        if kept is not None and kept[0] is arg:
+            return kept[1]
         if isinstance(arg, BlockPlan):
-            return self._plan(arg)
+            self.share(arg, "BlockPlan")
+            return self.shared[id(arg)][1]
         if isinstance(arg, Delayed):
             self.outside.setdefault(arg.key, arg)
             return TaskRef(arg.key)
         return arg
 
-    def _plan(self, plan: BlockPlan) -> TaskRef:
-        """The one literal node of this layer holding ``plan``."""
-        ref = self.plans.get(id(plan))
-        if ref is None:
-            ref = self.plans[id(plan)] = self.literal(plan, "BlockPlan").ref
-        return ref
-
-    def literal(self, value: Any, label: str = "literal") -> Node:
-        """A node holding ``value`` as it is, for tasks that all take the same value (a
-        block source, factors): stored and sent once, not once per task."""
+    def share(self, value: Any, label: str = "literal") -> None:
+        """Hold ``value`` (a block source, factors) in one literal node that every task of
+        this pass given that very object refers to: stored and sent once, not per task.
+        A :class:`BlockPlan` is shared without asking."""
         key = (f"{label}-{self.name}", len(self.tasks))
         self.tasks[key] = DataNode(key, value)
-        return Node(key)
+        self.shared[id(value)] = (value, TaskRef(key))
 
     def tree(
         self, leaves: Sequence[Node], fan_in: int, func: Callable[..., Any], *lead: Any
@@ -149,6 +148,39 @@ class PassGraph:
         level = list(leaves)
         while len(level) > 1:
             level = [self.call(add, *children) for children in group(level, fan_in)]
+        return level[0]
+
+    def reduce(
+        self,
+        calls: Sequence[tuple[Any, ...]],
+        fan_in: int,
+        combine: Callable[..., Any],
+        *lead: Any,
+        single_root: bool = True,
+    ) -> Node:
+        """Add one leaf per call ``(func, *args)`` and the tree that reduces them with
+        ``combine(*lead, *children)``; return the root.
+
+        The tree is that of :meth:`tree` (``single_root``: a lone leaf still gets a node
+        above it) or of :meth:`sum`. Beyond :data:`LEAF_TASKS` leaves its lowest levels are
+        fused (:func:`fused_levels`): one task runs a whole subtree, its leaves one after
+        the other (:func:`fold_calls`), with the same calls in the same order, so the value
+        is the same to the last bit; only the task count falls.
+        """
+        levels = fused_levels(len(calls), fan_in)
+        if levels == 0:
+            leaves = [self.call(*call) for call in calls]
+        else:
+            size = fan_in**levels
+            leaves = [
+                self.call(fold_calls, list(calls[i : i + size]), fan_in, levels, combine, lead)
+                for i in range(0, len(calls), size)
+            ]
+        if single_root:
+            return self.tree(leaves, fan_in, combine, *lead)[-1][0]
+        level = list(leaves)
+        while len(level) > 1:
+            level = [self.call(combine, *lead, *children) for children in group(level, fan_in)]
         return level[0]
 
     def outputs(self, nodes: Sequence[Node]) -> list[Delayed]:
@@ -165,6 +197,54 @@ class PassGraph:
         """The one output of a pass (see :meth:`outputs`)."""
         (delayed,) = self.outputs([node])
         return delayed
+
+
+# Leaf tasks a reduction keeps at most before it fuses its lowest levels, and the most
+# blocks one fused task may run (a flat tree is never fused). 8192 tasks keep any cluster
+# busy, and Dask's start (ordering the graph) grows with the task count: about 0.1 ms a
+# task on the threaded scheduler (benchmarks/graph_build.py).
+LEAF_TASKS = 8192
+FUSED_BLOCKS = 64
+
+
+def fused_levels(leaves: int, fan_in: int) -> int:
+    """How many of a tree's lowest levels to fuse into its leaf tasks: the fewest that
+    leave at most :data:`LEAF_TASKS` tasks, but always at least two (so the levels above
+    are those of the whole tree), or 0 when none are needed or a fused task would run
+    more than :data:`FUSED_BLOCKS` leaves."""
+    levels = 0
+    while -(-leaves // fan_in**levels) > LEAF_TASKS and fan_in ** (levels + 1) < leaves:
+        levels += 1
+    return levels if fan_in**levels <= FUSED_BLOCKS else 0
+
+
+def fold_calls(
+    calls: list[tuple[Any, ...]],
+    fan_in: int,
+    levels: int,
+    combine: Callable[..., Any],
+    lead: tuple[Any, ...],
+) -> Any:
+    """Run a subtree of ``levels`` levels in one task: the leaf calls in order, each group
+    of ``fan_in`` consecutive values at a level combined as soon as it is complete (the
+    groups of :func:`group`, short ones last), so at most ``levels * fan_in`` values are
+    held at once, never one per leaf."""
+    pending: list[list[Any]] = [[] for _ in range(levels + 1)]
+
+    def push(level: int, value: Any) -> None:
+        pending[level].append(value)
+        if level < levels and len(pending[level]) == fan_in:
+            children, pending[level] = pending[level], []
+            push(level + 1, combine(*lead, *children))
+
+    for func, *args in calls:
+        push(0, func(*args))
+    for level in range(levels):
+        if pending[level]:
+            children, pending[level] = pending[level], []
+            push(level + 1, combine(*lead, *children))
+    (value,) = pending[levels]
+    return value
 
 
 def _whole(dsk: Any, keys: Any, **kwargs: Any) -> Any:

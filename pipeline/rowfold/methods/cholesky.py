@@ -188,9 +188,11 @@ def gram_pass(
     else:
         leaf, recipe = gram_leaf, factors
     graph = PassGraph("gram", leaf, add_gram_sums, source, recipe)
-    shared, given = graph.literal(source, "source"), graph.literal(recipe, "factors")
-    leaves = [graph.call(leaf, shared, i, given) for i in range(source.blocks)]
-    (total,) = engine.compute([graph.output(graph.sum(leaves, add_gram_sums))], label)
+    graph.share(source, "source")
+    graph.share(recipe, "factors")
+    calls = [(leaf, source, i, recipe) for i in range(source.blocks)]
+    root = graph.reduce(calls, 8, add_gram_sums, single_root=False)
+    (total,) = engine.compute([graph.output(root)], label)
     result: dict[str, Any] = total
     return result
 

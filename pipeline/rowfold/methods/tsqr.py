@@ -114,6 +114,15 @@ def fan_in_of(tree: str | int, leaves: int) -> int:
     return int(tree)
 
 
+def tree_depth(leaves: int, fan_in: int) -> int:
+    """Levels above the leaves of the tree :func:`rowfold.methods._graph.tree_levels` builds
+    (at least one)."""
+    depth, width = 1, -(-leaves // fan_in)
+    while width > 1:
+        depth, width = depth + 1, -(-width // fan_in)
+    return depth
+
+
 def factor(plan: BlockPlan, spec: MethodSpec, ctx: Context) -> Factorization:
     """Run Householder TSQR over the plan's row blocks."""
     leaves: _Leaves | None = None
@@ -179,20 +188,25 @@ def factor_source(
     fan_in = fan_in_of(tree, source.blocks if leaves is None else len(leaves.calls))
     extra = () if leaves is None else leaves.inputs
     graph = PassGraph("tsqr", leaf_factor, node_factor, source, want_q, fan_in, *extra)
+    graph.share(source, "source")
     if leaves is None:
-        shared = graph.literal(source, "source")
-        nodes = [graph.call(leaf_factor, shared, i, want_q) for i in range(source.blocks)]
+        calls = [(leaf_factor, source, i, want_q) for i in range(source.blocks)]
     else:
-        nodes = [graph.call(*leaf.call) for leaf in leaves.calls]
-    tree_nodes = graph.tree(nodes, fan_in, node_factor, want_q)
-    if want_q:
-        levels = [nodes, *_persist_levels(engine, graph, tree_nodes[1:])]
+        calls = [leaf.call for leaf in leaves.calls]
+    if want_q:  # every node's Q factor is kept: no level is fused
+        nodes = [graph.call(*call) for call in calls]
+        levels = [
+            nodes,
+            *_persist_levels(engine, graph, graph.tree(nodes, fan_in, node_factor, True)[1:]),
+        ]
+        top = levels[-1][0]
     else:
-        levels = [[graph.output(tree_nodes[-1][0])]]
-    (root,) = engine.compute([levels[-1][0]], f"{label}: factor row blocks")
+        top = graph.output(graph.reduce(calls, fan_in, node_factor, False))
+    (root,) = engine.compute([top], f"{label}: factor row blocks")
     R, signs = positive_diagonal(root[0])
     qhb = None if root[1] is None else np.conj(signs)[:, None] * root[1]
     recipes = _leaf_transforms(levels, fan_in, np.diag(signs)) if want_q else []
+    depth = tree_depth(len(calls), fan_in)
     return Factorization(
         R=R,
         qhb=qhb,
@@ -200,7 +214,7 @@ def factor_source(
         q_recipes=recipes,
         passes=1,
         sums=root[3],
-        details={"tree": tree, "tree_depth": len(tree_nodes) - 1},
+        details={"tree": tree, "tree_depth": depth},
     )
 
 
