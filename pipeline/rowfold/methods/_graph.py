@@ -168,6 +168,8 @@ class PassGraph:
         is the same to the last bit; only the task count falls.
         """
         levels = fused_levels(len(calls), fan_in)
+        if levels and any(isinstance(arg, Delayed) for call in calls for arg in call):
+            levels = 0  # a value still to be computed elsewhere cannot sit inside a call
         if levels == 0:
             leaves = [self.call(*call) for call in calls]
         else:
@@ -245,6 +247,39 @@ def fold_calls(
             push(level + 1, combine(*lead, *children))
     (value,) = pending[levels]
     return value
+
+
+def sum_pass(
+    label: str,
+    calls: Sequence[tuple[Any, ...]],
+    add: Callable[..., Any],
+    inputs: Sequence[Any],
+    shared: Sequence[Any] = (),
+) -> Delayed:
+    """One pass that adds the values of ``calls`` (one per block) with :func:`sum_tree`'s
+    tree of ``add``, as one graph layer; ``inputs`` are what the calls depend on (for the
+    key, see :class:`PassGraph`), ``shared`` values the calls take (held once; None and
+    delayed values are skipped)."""
+    graph = PassGraph(label, add, *inputs)
+    for value in shared:
+        if value is not None and not isinstance(value, Delayed):
+            graph.share(value)
+    return graph.output(graph.reduce(calls, 8, add, single_root=False))
+
+
+def by_identity(values: Sequence[Any]) -> tuple[list[Any], tuple[int, ...]]:
+    """The distinct objects of ``values`` (by identity, in order) and each value's index
+    among them: what a list like ``[recipe] * blocks`` depends on, hashed once per object."""
+    seen: dict[int, int] = {}
+    distinct: list[Any] = []
+    pattern = []
+    for value in values:
+        index = seen.get(id(value))
+        if index is None:
+            index = seen[id(value)] = len(distinct)
+            distinct.append(value)
+        pattern.append(index)
+    return distinct, tuple(pattern)
 
 
 def _whole(dsk: Any, keys: Any, **kwargs: Any) -> Any:
