@@ -365,3 +365,25 @@ def test_import_rowfold_is_light_and_lists_the_api() -> None:
     assert done.stdout.strip() == "[] True"
     with pytest.raises(AttributeError):
         _ = rowfold.run_job  # type: ignore[attr-defined]
+
+
+def test_a_temporary_store_gets_its_json_report_but_no_html_page(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    """Nobody opens the page of the API's temporary store, so it is not drawn."""
+    from rowfold import runner
+
+    seen: list[tuple[bool, bool]] = []
+    run_job = runner.run_job
+
+    def watched(*args: object, **kwargs: object) -> runner.RunOutcome:
+        outcome = run_job(*args, **kwargs)  # type: ignore[arg-type]
+        json_path, html_path = storage.report_paths(Path(outcome.output))
+        seen.append((json_path.is_file(), html_path.is_file()))
+        return outcome
+
+    monkeypatch.setattr(runner, "run_job", watched)
+    A, b = problem()
+    fit = rowfold.lstsq(A, b, scratch=tmp_path, **IN_PROCESS)
+    assert fit.residual_sd is not None
+    assert seen == [(True, False)]

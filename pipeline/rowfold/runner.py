@@ -6,6 +6,7 @@ whole result is ready; the result store and its reports are committed together.
 
 from __future__ import annotations
 
+import contextvars
 import json
 import tempfile
 import time
@@ -235,6 +236,7 @@ def run_job(
     inline: bool = False,
     resume: bool = False,
     wait_lock: float = 0.0,
+    html: bool = True,
 ) -> RunOutcome:
     """Run a job end to end and commit its result store and reports.
 
@@ -251,12 +253,30 @@ def run_job(
         (tsqr); blocks already factored are not read again.
     wait_lock : float
         Seconds to wait while another run holds the output (0: refuse at once).
+    html : bool
+        Draw the HTML report beside the JSON one; the Python API skips it for the
+        temporary store nobody opens (the JSON report is always written).
 
     Raises
     ------
     RowfoldError
         Subclasses map to exit statuses 2 and 4; nothing is written on error.
     """
+    token = _DRAW_HTML.set(html)
+    try:
+        return _run_job(job, progress, inline, resume, wait_lock)
+    finally:
+        _DRAW_HTML.reset(token)
+
+
+# Whether the run being committed draws its HTML report (run_job's ``html``).
+_DRAW_HTML: contextvars.ContextVar[bool] = contextvars.ContextVar("draw_html", default=True)
+
+
+def _run_job(
+    job: Job, progress: Progress | None, inline: bool, resume: bool, wait_lock: float
+) -> RunOutcome:
+    """:func:`run_job` (which says whether to draw the HTML report)."""
     if job.output.is_url:
         return _run_to_url(job, progress, inline, resume, wait_lock)
     progress = progress or Progress()
@@ -301,7 +321,7 @@ def _run_to_url(
     with tempfile.TemporaryDirectory(prefix="rowfold-publish-") as scratch:
         store = Path(scratch) / url.rpartition("/")[2]
         local = replace(job, output=replace(job.output, path=store, overwrite=False))
-        outcome = run_job(local, progress, inline, False, wait_lock)
+        outcome = run_job(local, progress, inline, False, wait_lock, _DRAW_HTML.get())
         parts = [store, *storage.report_paths(store)]
         record = published.publish(url, options, str(outcome.report["commit"]), parts)
     return RunOutcome(outcome.status, outcome.report, str(record["store"]))
@@ -485,10 +505,11 @@ def _commit(
     json_path, html_path = storage.report_paths(job.output.local)
     report = {**report, "commit": writer.commit_id}  # the store records the same id
     drawing = time.perf_counter()
-    page = render_html(report)
+    page = render_html(report) if _DRAW_HTML.get() else None
     report["seconds"]["report"] = round(time.perf_counter() - drawing, 4)
     writer.add_file(json_path, to_json(report))
-    writer.add_file(html_path, page)
+    if page is not None:
+        writer.add_file(html_path, page)
     writer.commit()
     held = report["exit_status"] == EXIT_OK
     return RunOutcome(EXIT_OK if held else EXIT_GATE_FAILED, report, job.output.local)
