@@ -260,7 +260,11 @@ def test_an_open_client_runs_the_tasks_and_stays_open(tmp_path: Path) -> None:
         # no scratch: an in-process client is on this machine, so the temporary copy will do
         fit = rowfold.lstsq(da.from_array(A, chunks=(300, N)), b)
         assert scheduler_transitions(c) > before + 20, "the job's tasks ran on this client"
-        assert fit.scheduler == {"how": "active client", "address": c.scheduler.address}
+        assert fit.scheduler == {
+            "how": "active client",
+            "address": c.scheduler.address,
+            "why": "cluster.scheduler: auto, and a Dask scheduler is given",
+        }
         assert c.status == "running" and c.submit(sum, [1, 2]).result() == 3
         from distributed import default_client
 
@@ -276,7 +280,8 @@ def test_dask_config_scheduler_address_is_honoured(tmp_path: Path) -> None:
         with dask.config.set({"scheduler-address": cluster.scheduler_address}):
             fit = rowfold.lstsq(A, b, scratch=tmp_path)
         how = {"how": "dask config scheduler-address", "address": cluster.scheduler_address}
-        assert fit.scheduler == how
+        why = "cluster.scheduler: auto, and a Dask scheduler is given"
+        assert fit.scheduler == {**how, "why": why}
         with Client(cluster) as watcher:
             assert scheduler_transitions(watcher) > before + 20
     assert_matches_lapack(fit, A, b)
@@ -293,6 +298,7 @@ def test_scheduler_file_is_honoured(tmp_path: Path) -> None:
         assert fit.scheduler == {
             "how": "cluster.scheduler_file",
             "address": cluster.scheduler_address,
+            "why": "cluster.scheduler: auto, and a Dask scheduler is given",
         }
     assert_matches_lapack(fit, A, b)
     with pytest.raises(JobError, match="give one of the two"):

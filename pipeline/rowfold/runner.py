@@ -21,10 +21,12 @@ import numpy as np
 from rowfold import __version__, quality, segments, storage
 from rowfold.blocks import BlockPlan, expand_columns, plan_blocks
 from rowfold.cluster import (
+    SMALL_JOB_BYTES,
     InlineEngine,
     Progress,
     ThreadedEngine,
     blas_limited,
+    choose_scheduler,
     cpu_count,
     local_layout,
     open_engine,
@@ -341,7 +343,7 @@ def _run_with_engine(
     with ExitStack() as stack:
         workdir = stack.enter_context(storage.scratch_folder(job.output.local))
         with clock.stage("cluster_start"):
-            engine = stack.enter_context(_engine(job, progress, inline))
+            engine = stack.enter_context(_engine(job, progress, inline, plan))
         with clock.stage("fingerprint"):
             inputs = _fingerprints(job, plan, engine)
         checkpoints = _checkpoints(job, plan, inputs, resume)
@@ -372,7 +374,12 @@ def _checkpoints(job: Job, plan: BlockPlan, inputs: dict[str, Any], resume: bool
 
 
 @contextmanager
-def _engine(job: Job, progress: Progress, inline: bool) -> Iterator[Any]:
+def _engine(
+    job: Job, progress: Progress, inline: bool, plan: BlockPlan | None = None
+) -> Iterator[Any]:
+    """The engine a job runs on (its ``origin`` says which and why, for the report);
+    ``cluster.scheduler: auto`` weighs the size of ``plan``'s matrix (without a plan, the
+    job counts as large)."""
     if inline:
         try:
             yield InlineEngine(progress)
@@ -380,8 +387,10 @@ def _engine(job: Job, progress: Progress, inline: bool) -> Iterator[Any]:
             storage.close_open_inputs()
         return
     spec = job.cluster
-    if spec.scheduler == "threads":
+    scheduler, why = choose_scheduler(spec, _dense_bytes(plan))
+    if scheduler == "threads":
         with _threaded_engine(spec, progress) as threaded:
+            threaded.origin["why"] = why
             yield threaded
         return
     if spec.processes is None:
@@ -389,11 +398,19 @@ def _engine(job: Job, progress: Progress, inline: bool) -> Iterator[Any]:
         # threads beat worker processes for dense and CSR input alike
         spec = replace(spec, processes=False)
     with open_engine(spec, progress) as engine:
+        engine.origin["why"] = why
         try:
             yield engine
         finally:  # let the night's ingestion append to the inputs once the job is done
             engine.run_on_workers(storage.close_open_inputs)
             storage.close_open_inputs()
+
+
+def _dense_bytes(plan: BlockPlan | None) -> int:
+    """Bytes of the plan's matrix held densely (more than any small job without a plan)."""
+    if plan is None:
+        return SMALL_JOB_BYTES + 1
+    return plan.rows * plan.cols * np.dtype(plan.dtype).itemsize
 
 
 @contextmanager
@@ -535,7 +552,7 @@ def compare_job(
     names = parameter_names(job, plan)
     progress = progress or Progress()
     progress.begin_job(job.name, plan.rows)
-    with _engine(job, progress, inline) as engine:
+    with _engine(job, progress, inline, plan) as engine:
         inputs = _fingerprints(job, plan, engine)
 
         def run(method_job: Job) -> RunOutcome:
@@ -620,7 +637,7 @@ def _update_held(job: Job, progress: Progress | None, inline: bool) -> RunOutcom
     progress = progress or Progress()
     progress.begin_job(job.name, 0)  # stages read old and new rows: no one rate
     with ExitStack() as stack:
-        engine = stack.enter_context(_engine(job, progress, inline))
+        engine = stack.enter_context(_engine(job, progress, inline, plan))
         with clock.stage("prefix_check"):
             check = update.verify_prefix(plan, old.state, old.attrs, job.update, engine, out, live)
         if rows_done == plan.rows:
@@ -715,7 +732,7 @@ def _replace_held(job: Job, label: str, progress: Progress | None, inline: bool)
     bounds = records["matrix"]["bounds"]
     positions = update.block_range(bounds, first, stop, f"segment {label!r}")
     with ExitStack() as stack:
-        engine = stack.enter_context(_engine(job, progress or Progress(), inline))
+        engine = stack.enter_context(_engine(job, progress or Progress(), inline, plan))
         with clock.stage("factor"):
             rows = update.rows_plan(plan, first, stop, old.state["column_scale"])
             new = update.factor_rows(rows, engine, "replace")
