@@ -157,3 +157,13 @@ def test_fused_passes_give_the_same_factors_to_the_last_bit(
     # Stability of Numerical Algorithms, 2nd ed., Thm 19.4), so R^T R = A^T A up to a small
     # multiple of u ||A||_F^2; 64 u at m = 230, n = 4 is a common practice margin
     assert np.allclose(r1.T @ r1, a.T @ a, rtol=0, atol=64 * 2.0**-52 * np.sum(a * a))
+
+
+def test_a_map_pass_keeps_the_order_and_bounds_its_task_count(monkeypatch: object) -> None:
+    from rowfold.methods import _graph
+
+    monkeypatch.setattr(_graph, "LEAF_TASKS", 3)  # type: ignore[attr-defined]
+    calls = [(leaf_name_of, i) for i in range(10)]
+    listed = _graph.map_pass("names", calls, (10,))
+    assert dask.compute(listed, scheduler="sync")[0] == [str(i) for i in range(10)]
+    assert len(listed.__dask_graph__()) == 3 + 1  # 3 tasks of at most 4 calls, then the join

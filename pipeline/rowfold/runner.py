@@ -41,7 +41,7 @@ from rowfold.errors import (
 )
 from rowfold.kernels import metrics
 from rowfold.methods import get_method, tsqr
-from rowfold.methods._graph import task
+from rowfold.methods._graph import map_pass
 from rowfold.methods.base import Context, Engine, Factorization
 from rowfold.provenance import provenance
 from rowfold.refine import refine
@@ -1049,8 +1049,10 @@ def _fingerprints(job: Job, plan: BlockPlan, engine: Engine) -> dict[str, Any]:
     present = {name: ref for name, ref in refs.items() if ref is not None}
     sources = tuple((ref, name == "matrix" and plan.sparse) for name, ref in present.items())
     bounds = plan.bounds
-    tasks = [task(storage.block_digests, sources, start, stop) for start, stop in bounds]
-    per_block = engine.compute(tasks, "fingerprint inputs")
+    calls = [(storage.block_digests, sources, start, stop) for start, stop in bounds]
+    edges = np.asarray(bounds, dtype=np.int64)  # hashed as one array, not 2 numbers a block
+    digests = map_pass("digests", calls, (storage.block_digests, sources, edges))
+    (per_block,) = engine.compute([digests], "fingerprint inputs")
     return {
         name: storage.input_record(
             ref, csr, shapes[name], bounds, [digests[i] for digests in per_block]

@@ -267,6 +267,26 @@ def sum_pass(
     return graph.output(graph.reduce(calls, 8, add, single_root=False))
 
 
+def map_pass(label: str, calls: Sequence[tuple[Any, ...]], inputs: Sequence[Any]) -> Delayed:
+    """One pass whose value is the list of the values of ``calls`` (one per block), in
+    order, as one graph layer; beyond :data:`LEAF_TASKS` calls, consecutive calls share a
+    task (:func:`run_calls`), so the task count stays bounded."""
+    graph = PassGraph(label, *inputs)
+    size = max(1, -(-len(calls) // LEAF_TASKS))
+    parts = [graph.call(run_calls, list(calls[i : i + size])) for i in range(0, len(calls), size)]
+    return graph.output(graph.call(joined, *parts))
+
+
+def run_calls(calls: list[tuple[Any, ...]]) -> list[Any]:
+    """The values of ``calls`` ``(func, *args)``, in order."""
+    return [func(*args) for func, *args in calls]
+
+
+def joined(*parts: list[Any]) -> list[Any]:
+    """The lists ``parts`` one after the other."""
+    return [value for part in parts for value in part]
+
+
 def by_identity(values: Sequence[Any]) -> tuple[list[Any], tuple[int, ...]]:
     """The distinct objects of ``values`` (by identity, in order) and each value's index
     among them: what a list like ``[recipe] * blocks`` depends on, hashed once per object."""
