@@ -8,7 +8,9 @@ Two ways to build a graph:
 - :class:`PassGraph` builds a whole pass (one task per block, then a reduction tree) as ONE
   graph layer: keys ``(name, i)`` under one deterministic name hashed once from what the
   pass depends on, and tasks built as Dask task objects directly. Its outputs are handed to
-  the scheduler without culling, since every task of a pass feeds its outputs.
+  the scheduler without culling, since every task of a pass feeds its outputs. The task
+  objects come from ``dask._task_spec``, Dask's own graph format since 2024.12 (from
+  memory; pyproject.toml asks for dask 2025.1 or later).
 """
 
 from __future__ import annotations
