@@ -276,7 +276,11 @@ def test_an_open_client_runs_the_tasks_and_stays_open(tmp_path: Path) -> None:
         # no scratch: an in-process client is on this machine, so the temporary copy will do
         fit = rowfold.lstsq(da.from_array(A, chunks=(300, N)), b)
         assert scheduler_transitions(c) > before + 20, "the job's tasks ran on this client"
-        assert fit.scheduler == {"how": "active client", "address": c.scheduler.address}
+        assert fit.scheduler == {
+            "how": "active client",
+            "address": c.scheduler.address,
+            "why": "cluster.scheduler: auto, and a Dask scheduler is given",
+        }
         assert c.status == "running" and c.submit(sum, [1, 2]).result() == 3
         from distributed import default_client
 
@@ -292,7 +296,8 @@ def test_dask_config_scheduler_address_is_honoured(tmp_path: Path) -> None:
         with dask.config.set({"scheduler-address": cluster.scheduler_address}):
             fit = rowfold.lstsq(A, b, scratch=tmp_path)
         how = {"how": "dask config scheduler-address", "address": cluster.scheduler_address}
-        assert fit.scheduler == how
+        why = "cluster.scheduler: auto, and a Dask scheduler is given"
+        assert fit.scheduler == {**how, "why": why}
         with Client(cluster) as watcher:
             assert scheduler_transitions(watcher) > before + 20
     assert_matches_lapack(fit, A, b)
@@ -309,6 +314,7 @@ def test_scheduler_file_is_honoured(tmp_path: Path) -> None:
         assert fit.scheduler == {
             "how": "cluster.scheduler_file",
             "address": cluster.scheduler_address,
+            "why": "cluster.scheduler: auto, and a Dask scheduler is given",
         }
     assert_matches_lapack(fit, A, b)
     with pytest.raises(JobError, match="give one of the two"):
@@ -381,3 +387,25 @@ def test_import_rowfold_is_light_and_lists_the_api() -> None:
     assert done.stdout.strip() == "[] True"
     with pytest.raises(AttributeError):
         _ = rowfold.run_job  # type: ignore[attr-defined]
+
+
+def test_a_temporary_store_gets_its_json_report_but_no_html_page(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    """Nobody opens the page of the API's temporary store, so it is not drawn."""
+    from rowfold import runner
+
+    seen: list[tuple[bool, bool]] = []
+    run_job = runner.run_job
+
+    def watched(*args: object, **kwargs: object) -> runner.RunOutcome:
+        outcome = run_job(*args, **kwargs)  # type: ignore[arg-type]
+        json_path, html_path = storage.report_paths(Path(outcome.output))
+        seen.append((json_path.is_file(), html_path.is_file()))
+        return outcome
+
+    monkeypatch.setattr(runner, "run_job", watched)
+    A, b = problem()
+    fit = rowfold.lstsq(A, b, scratch=tmp_path, **IN_PROCESS)
+    assert fit.residual_sd is not None
+    assert seen == [(True, False)]

@@ -186,3 +186,28 @@ def test_segment_lines_and_warnings_fit_80_columns() -> None:
     assert all(label in text.split() or label + "," in text.split() for label in labels)
     warning = cli._wrapped("  warning: " + "a long warning about the rows " * 8)
     assert all(len(line) <= 80 for line in warning.splitlines())
+
+
+def test_a_small_run_imports_neither_distributed_nor_scipy_stats(tmp_path: Path) -> None:
+    """A tiny job on the default engine (``auto``: threads) imports no ``distributed`` (the
+    LocalCluster's) and no ``scipy.stats`` (the model tests use scipy.special); a fresh
+    process, so nothing another test imported counts."""
+    from test_cli import setup_job
+
+    job = setup_job(tmp_path)
+    heavy = ("distributed", "scipy.stats")
+    code = (
+        "import sys\n"
+        "from rowfold.cli import main\n"
+        f"status = main(['--quiet', 'run', {str(job)!r}])\n"
+        f"print(status, sorted(m for m in {heavy!r} if m in sys.modules))\n"
+    )
+    done = subprocess.run(
+        [sys.executable, "-c", code],
+        capture_output=True,
+        text=True,
+        check=True,
+        timeout=120,
+        cwd=tmp_path,
+    )
+    assert done.stdout.splitlines()[-1] == "0 []", done.stdout

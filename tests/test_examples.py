@@ -54,7 +54,7 @@ def test_cluster_profiles_load(profile: Path, tmp_path: Path) -> None:
     assert cluster.workers == _auto(written.get("workers"))
     assert cluster.threads_per_worker == _auto(written.get("threads_per_worker"))
     assert cluster.processes == _auto(written.get("processes"))
-    assert cluster.scheduler == written.get("scheduler", "distributed")
+    assert cluster.scheduler == written.get("scheduler", "auto")
 
 
 def test_demo_recovers_its_true_parameters(tmp_path: Path) -> None:

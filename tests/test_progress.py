@@ -156,6 +156,7 @@ def test_a_real_run_draws_within_the_terminal(tmp_path: Path, columns: int) -> N
         b=a @ np.arange(1.0, 7.0) + rng.standard_normal(24_000),
         input={"rows_per_block": 500},
         solve={"refine": True},
+        cluster={"scheduler": "distributed"},  # a small job: auto would pick threads
     )
     command = [sys.executable, "-m", "rowfold", "run", str(job)]
     status, text = run_in_pty(command, columns, tmp_path)

@@ -100,3 +100,46 @@ def test_a_run_leaves_the_callers_process_as_it_was(job_folder: Path, scheduler:
     runner.run_job(runner.load_job(job_path), Progress())
     assert blas_threads() == before
     assert logging.getLogger("distributed").level == logging.INFO
+
+
+def test_auto_runs_a_small_local_job_on_threads_and_says_why() -> None:
+    """``cluster.scheduler: auto`` (the default): threads for a small job that would start
+    the embedded cluster; the embedded cluster for anything else, or when the job says so."""
+    from dataclasses import replace as changed
+
+    from rowfold.cluster import SMALL_JOB_BYTES, choose_scheduler
+    from rowfold.spec import ClusterSpec
+
+    auto = ClusterSpec()
+    assert auto.scheduler == "auto"
+    scheduler, why = choose_scheduler(auto, 1000 * 5 * 8)
+    assert scheduler == "threads" and "at most 64 MiB" in why
+    scheduler, why = choose_scheduler(auto, SMALL_JOB_BYTES + 1)
+    assert scheduler == "distributed" and "above 64 MiB" in why
+    asked = {
+        "distributed": changed(auto, scheduler="distributed"),
+        "threads": changed(auto, scheduler="threads"),
+    }
+    for name, spec in asked.items():
+        assert choose_scheduler(spec, 8) == (name, f"cluster.scheduler: {name}")
+    for spec in (
+        changed(auto, processes=True),
+        changed(auto, dashboard="127.0.0.1:0"),
+        changed(auto, address="tcp://127.0.0.1:8786"),
+    ):
+        assert choose_scheduler(spec, 8)[0] == "distributed"
+
+
+@pytest.mark.parametrize("scheduler", [None, "distributed"])
+def test_the_report_names_the_engine_auto_chose(job_folder: Path, scheduler: str | None) -> None:
+    a = prescribed(400, 4, 10.0, seed=8)
+    cluster = {} if scheduler is None else {"scheduler": scheduler}
+    job = write_job(job_folder, a, cluster={"processes": False, **cluster})
+    outcome = runner.run_job(runner.load_job(job))
+    origin = outcome.report["provenance"]["scheduler"]
+    if scheduler is None:
+        assert origin["how"] == "threads"
+        assert origin["why"].startswith("cluster.scheduler: auto, input ")
+    else:
+        assert origin["how"] == "embedded cluster"
+        assert origin["why"] == "cluster.scheduler: distributed"

@@ -440,8 +440,8 @@ def _run_staged(job: spec.Job, source: _Source, folder: tempfile.TemporaryDirect
     if source.sparse:
         staging.stage_csr(store, STAGED["matrix"], dense.pop("matrix"))
     staging.stage_dense(store, {STAGED[key]: array for key, array in dense.items()})
-    outcome = runner.run_job(job)
     temporary = job.output.path == Path(folder.name) / "result.zarr"
+    outcome = runner.run_job(job, html=not temporary)  # nobody opens a temporary store's page
     keep = folder if temporary else None
     result = read(_local_output(outcome.output), outcome.report, source.names, keep, temporary)
     if not temporary or not any(getattr(result, name, None) is not None for name in LAZY_ARRAYS):

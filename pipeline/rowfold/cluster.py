@@ -673,6 +673,35 @@ def active_client() -> Any:
     return None if client.status in ("closing", "closed") else client
 
 
+# Largest input (as a dense float matrix) that ``cluster.scheduler: auto`` runs on Dask's
+# threaded scheduler in this process rather than on an embedded LocalCluster, whose start
+# (distributed's import, the cluster, its client) costs about 1.5 s: more than such a job's
+# compute on this machine (benchmarks/startup.py; README, "Running on a cluster").
+SMALL_JOB_BYTES = 64 * 2**20
+
+
+def choose_scheduler(spec: ClusterSpec, input_bytes: int) -> tuple[str, str]:
+    """``("threads" | "distributed", why)``: where a job runs for ``cluster.scheduler``.
+
+    ``auto`` picks threads only for a job that would start the embedded cluster (no
+    address, scheduler file, active client or configured scheduler; no
+    ``cluster.processes: true`` or dashboard asked for) and whose input, counted as a dense
+    matrix, is at most :data:`SMALL_JOB_BYTES`; the reason goes into the report.
+    """
+    if spec.scheduler != "auto":
+        return spec.scheduler, f"cluster.scheduler: {spec.scheduler}"
+    if spec.address or spec.scheduler_file or active_client() or configured_address():
+        return "distributed", "cluster.scheduler: auto, and a Dask scheduler is given"
+    if spec.processes or spec.dashboard is not None:
+        asked = "cluster.processes: true" if spec.processes else "cluster.dashboard"
+        return "distributed", f"cluster.scheduler: auto, and {asked} asks for a LocalCluster"
+    size = f"{input_bytes / 2**20:.3g} MiB"
+    limit = f"{SMALL_JOB_BYTES // 2**20} MiB"
+    if input_bytes > SMALL_JOB_BYTES:
+        return "distributed", f"cluster.scheduler: auto, input {size} is above {limit}"
+    return "threads", f"cluster.scheduler: auto, input {size} is at most {limit}"
+
+
 def remote_scheduler(spec: ClusterSpec) -> str | None:
     """The address of a scheduler or worker the job would use on another machine (whose
     workers then do not share this machine's disk), or None when it all runs here.

@@ -20,7 +20,7 @@ from rowfold.blocks import BlockPlan, load_block, load_weights
 from rowfold.errors import EXIT_GATE_FAILED, EXIT_OK, RunError
 from rowfold.kernels import metrics, norms
 from rowfold.methods import catalog
-from rowfold.methods._graph import sum_tree, task
+from rowfold.methods._graph import by_identity, sum_pass, task
 from rowfold.methods.base import Engine, Factorization
 from rowfold.solve import Solution, Statistics, numerical_rank, rank_tolerance
 from rowfold.spec import GateSpec, Job
@@ -86,9 +86,17 @@ def leverages(q: np.ndarray, basis: np.ndarray | None) -> np.ndarray:
     return np.asarray(np.sum(np.abs(wide) ** 2, axis=1))
 
 
-def first_of(pair: tuple[Any, Any]) -> Any:
-    """Return the first item of a pair (the sums of a verify task)."""
-    return pair[0]
+def verified_sums(
+    plan: BlockPlan,
+    index: int,
+    R: np.ndarray,
+    x: np.ndarray | None,
+    q_kernel: Callable[[np.ndarray, Any], np.ndarray] | None,
+    recipe: Any,
+    basis: np.ndarray | None,
+) -> metrics.Sums:
+    """The verification sums of one block (:func:`verify_block` without per-row outputs)."""
+    return verify_block(plan, index, R, x, q_kernel, recipe, (), basis)[0]
 
 
 @dataclass(frozen=True)
@@ -150,6 +158,17 @@ def verify(
     q_kernel = fact.q_kernel if needs_q else None
     if q_kernel is None and x is None:
         return Verification(metrics.VerificationSums(), False)
+    if sink is None or not outputs:
+        recipes = fact.q_recipes if q_kernel else [None] * plan.blocks
+        calls = [
+            (verified_sums, plan, i, fact.R, x, q_kernel, recipes[i], basis)
+            for i in range(plan.blocks)
+        ]
+        inputs = (verified_sums, plan, fact.R, x, q_kernel, by_identity(recipes), basis)
+        shared = [fact.R, x, basis, *by_identity(recipes)[0]]
+        root = sum_pass("verify", calls, metrics.add_sums, inputs, shared)
+        (total,) = engine.compute([root], "verify")
+        return Verification(metrics.VerificationSums.of(total), q_kernel is not None)
     tasks = [
         task(
             verify_block,
@@ -159,16 +178,11 @@ def verify(
             x,
             q_kernel,
             fact.q_recipes[i] if q_kernel else None,
-            outputs if sink else (),
+            outputs,
             basis,
         )
         for i in range(plan.blocks)
     ]
-    if sink is None or not outputs:
-        (total,) = engine.compute(
-            [sum_tree([task(first_of, t) for t in tasks], metrics.add_sums)], "verify"
-        )
-        return Verification(metrics.VerificationSums.of(total), q_kernel is not None)
     total_sums: metrics.Sums | None = None
     for index, (sums, rows) in enumerate(engine.stream(tasks, "verify and write rows")):
         sink(plan.bound(index)[0], rows)
@@ -190,8 +204,9 @@ def column_norms(plan: BlockPlan, engine: Engine) -> np.ndarray:
     float64 can hold (a sum of squares would overflow above about 1e154 and lose its
     digits below about 1e-154).
     """
-    tasks = [task(column_norm_block, plan, i) for i in range(plan.blocks)]
-    (total,) = engine.compute([sum_tree(tasks, norms.add_norms)], "column norms")
+    calls = [(column_norm_block, plan, i) for i in range(plan.blocks)]
+    root = sum_pass("column-norms", calls, norms.add_norms, (column_norm_block, plan))
+    (total,) = engine.compute([root], "column norms")
     return np.asarray(total.value)
 
 

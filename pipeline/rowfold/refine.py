@@ -27,7 +27,7 @@ from scipy.linalg import solve_triangular
 from rowfold.blocks import BlockPlan, load_block
 from rowfold.kernels import metrics
 from rowfold.kernels.norms import frobenius
-from rowfold.methods._graph import sum_tree, task
+from rowfold.methods._graph import by_identity, sum_pass
 from rowfold.methods.base import Engine, Factorization, RowArray, Scratch
 
 
@@ -120,12 +120,15 @@ def refine(
     passes = 0
     u = float(np.finfo(fact.R.dtype).eps) / 2
     while True:
-        tasks = [
-            task(refine_block, plan, i, x, dx, residual, fact.q_kernel, fact.q_recipes[i])
+        calls = [
+            (refine_block, plan, i, x, dx, residual, fact.q_kernel, fact.q_recipes[i])
             for i in range(plan.blocks)
         ]
+        recipes = by_identity(fact.q_recipes)
+        inputs = (refine_block, plan, x, dx, residual, fact.q_kernel, recipes)
+        root = sum_pass("refine", calls, metrics.add_sums, inputs, [x, dx, *recipes[0]])
         label = f"refine pass {passes + 1} (at most {max_iterations})"
-        (sums,) = engine.compute([sum_tree(tasks, metrics.add_sums)], label)
+        (sums,) = engine.compute([root], label)
         passes += 1
         if dx is not None:
             x = x + dx

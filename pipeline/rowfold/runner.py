@@ -6,6 +6,7 @@ whole result is ready; the result store and its reports are committed together.
 
 from __future__ import annotations
 
+import contextvars
 import json
 import time
 from collections.abc import Callable, Iterator
@@ -19,10 +20,12 @@ import numpy as np
 from rowfold import __version__, quality, segments, storage
 from rowfold.blocks import BlockPlan, expand_columns, plan_blocks
 from rowfold.cluster import (
+    SMALL_JOB_BYTES,
     InlineEngine,
     Progress,
     ThreadedEngine,
     blas_limited,
+    choose_scheduler,
     cpu_count,
     local_layout,
     open_engine,
@@ -38,7 +41,7 @@ from rowfold.errors import (
 from rowfold.kernels import metrics
 from rowfold.kernels.metrics import FirstPassSums, VerificationSums
 from rowfold.methods import get_method, tsqr
-from rowfold.methods._graph import task
+from rowfold.methods._graph import map_pass
 from rowfold.methods.base import Context, Engine, Factorization
 from rowfold.provenance import provenance
 from rowfold.refine import refine
@@ -259,6 +262,7 @@ def run_job(
     inline: bool = False,
     resume: bool = False,
     wait_lock: float = 0.0,
+    html: bool = True,
 ) -> RunOutcome:
     """Run a job end to end and commit its result store and reports.
 
@@ -275,12 +279,30 @@ def run_job(
         (tsqr); blocks already factored are not read again.
     wait_lock : float
         Seconds to wait while another run holds the output (0: refuse at once).
+    html : bool
+        Draw the HTML report beside the JSON one; the Python API skips it for the
+        temporary store nobody opens (the JSON report is always written).
 
     Raises
     ------
     RowfoldError
         Subclasses map to exit statuses 2 and 4; nothing is written on error.
     """
+    token = _DRAW_HTML.set(html)
+    try:
+        return _run_job(job, progress, inline, resume, wait_lock)
+    finally:
+        _DRAW_HTML.reset(token)
+
+
+# Whether the run being committed draws its HTML report (run_job's ``html``).
+_DRAW_HTML: contextvars.ContextVar[bool] = contextvars.ContextVar("draw_html", default=True)
+
+
+def _run_job(
+    job: Job, progress: Progress | None, inline: bool, resume: bool, wait_lock: float
+) -> RunOutcome:
+    """:func:`run_job` (which says whether to draw the HTML report)."""
     if job.output.is_url:
         return _run_to_url(job, progress, inline, resume, wait_lock)
     progress = progress or Progress()
@@ -315,7 +337,9 @@ def _run_to_url(
     existing = _pointer(job)
     _refuse_existing(job, existing)
     return _through_url(
-        job, existing, lambda local: run_job(local, progress, inline, False, wait_lock)
+        job,
+        existing,
+        lambda local: run_job(local, progress, inline, False, wait_lock, _DRAW_HTML.get()),
     )
 
 
@@ -416,7 +440,7 @@ def _run_with_engine(
             stack.enter_context(storage.scratch_folder(job.output.local))
         )
         with clock.stage("cluster_start"):
-            engine = stack.enter_context(_engine(job, progress, inline))
+            engine = stack.enter_context(_engine(job, progress, inline, plan))
         with clock.stage("fingerprint"):
             inputs = _fingerprints(job, plan, engine)
         checkpoints = _checkpoints(job, plan, inputs, resume)
@@ -449,7 +473,12 @@ def _checkpoints(
 
 
 @contextmanager
-def _engine(job: Job, progress: Progress, inline: bool) -> Iterator[Any]:
+def _engine(
+    job: Job, progress: Progress, inline: bool, plan: BlockPlan | None = None
+) -> Iterator[Any]:
+    """The engine a job runs on (its ``origin`` says which and why, for the report);
+    ``cluster.scheduler: auto`` weighs the size of ``plan``'s matrix (without a plan, the
+    job counts as large)."""
     if inline:
         try:
             yield InlineEngine(progress)
@@ -457,8 +486,10 @@ def _engine(job: Job, progress: Progress, inline: bool) -> Iterator[Any]:
             storage.close_open_inputs()
         return
     spec = job.cluster
-    if spec.scheduler == "threads":
+    scheduler, why = choose_scheduler(spec, _dense_bytes(plan))
+    if scheduler == "threads":
         with _threaded_engine(spec, progress) as threaded:
+            threaded.origin["why"] = why
             yield threaded
         return
     if spec.processes is None:
@@ -466,11 +497,19 @@ def _engine(job: Job, progress: Progress, inline: bool) -> Iterator[Any]:
         # threads beat worker processes for dense and CSR input alike
         spec = replace(spec, processes=False)
     with open_engine(spec, progress) as engine:
+        engine.origin["why"] = why
         try:
             yield engine
         finally:  # let the night's ingestion append to the inputs once the job is done
             engine.run_on_workers(storage.close_open_inputs)
             storage.close_open_inputs()
+
+
+def _dense_bytes(plan: BlockPlan | None) -> int:
+    """Bytes of the plan's matrix held densely (more than any small job without a plan)."""
+    if plan is None:
+        return SMALL_JOB_BYTES + 1
+    return plan.rows * plan.cols * np.dtype(plan.dtype).itemsize
 
 
 @contextmanager
@@ -583,10 +622,11 @@ def _commit(
     json_path, html_path = storage.report_paths(job.output.local)
     report = {**report, "commit": writer.commit_id}  # the store records the same id
     drawing = time.perf_counter()
-    page = render_html(report)
+    page = render_html(report) if _DRAW_HTML.get() else None
     report["seconds"]["report"] = round(time.perf_counter() - drawing, 4)
     writer.add_file(json_path, to_json(report))
-    writer.add_file(html_path, page)
+    if page is not None:
+        writer.add_file(html_path, page)
     writer.commit()
     held = report["exit_status"] == EXIT_OK
     return RunOutcome(EXIT_OK if held else EXIT_GATE_FAILED, report, job.output.local)
@@ -617,7 +657,7 @@ def compare_job(
     names = parameter_names(job, plan)
     progress = progress or Progress()
     progress.begin_job(job.name, plan.rows)
-    with _engine(job, progress, inline) as engine:
+    with _engine(job, progress, inline, plan) as engine:
         inputs = _fingerprints(job, plan, engine)
 
         def run(method_job: Job) -> RunOutcome:
@@ -734,7 +774,7 @@ def _update_held(job: Job, progress: Progress | None, inline: bool) -> RunOutcom
     progress = progress or Progress()
     progress.begin_job(job.name, 0)  # stages read old and new rows: no one rate
     with ExitStack() as stack:
-        engine = stack.enter_context(_engine(job, progress, inline))
+        engine = stack.enter_context(_engine(job, progress, inline, plan))
         with clock.stage("prefix_check"):
             check = update.verify_prefix(plan, old.state, old.attrs, job.update, engine, out, live)
         if rows_done == plan.rows:
@@ -833,7 +873,7 @@ def _replace_held(job: Job, label: str, progress: Progress | None, inline: bool)
     bounds = records["matrix"]["bounds"]
     positions = update.block_range(bounds, first, stop, f"segment {label!r}")
     with ExitStack() as stack:
-        engine = stack.enter_context(_engine(job, progress or Progress(), inline))
+        engine = stack.enter_context(_engine(job, progress or Progress(), inline, plan))
         with clock.stage("factor"):
             rows = update.rows_plan(plan, first, stop, old.state["column_scale"])
             new = update.factor_rows(rows, engine, "replace")
@@ -1149,8 +1189,10 @@ def _fingerprints(job: Job, plan: BlockPlan, engine: Engine) -> dict[str, Any]:
     present = {name: ref for name, ref in refs.items() if ref is not None}
     sources = tuple((ref, name == "matrix" and plan.sparse) for name, ref in present.items())
     bounds = plan.bounds
-    tasks = [task(storage.block_digests, sources, start, stop) for start, stop in bounds]
-    per_block = engine.compute(tasks, "fingerprint inputs")
+    calls = [(storage.block_digests, sources, start, stop) for start, stop in bounds]
+    edges = np.asarray(bounds, dtype=np.int64)  # hashed as one array, not 2 numbers a block
+    digests = map_pass("digests", calls, (storage.block_digests, sources, edges))
+    (per_block,) = engine.compute([digests], "fingerprint inputs")
     return {
         name: storage.input_record(
             ref, csr, shapes[name], bounds, [digests[i] for digests in per_block]

@@ -301,7 +301,9 @@ class ClusterSpec:
         (``auto``, the default) picks threads, the faster layout for dense and CSR input
         alike on the measurements in the README.
     scheduler : str
-        ``distributed`` (default): a ``LocalCluster`` or the cluster at ``address``;
+        ``auto`` (default): ``threads`` for a small job that would run on the embedded
+        cluster (:func:`rowfold.cluster.choose_scheduler`), else ``distributed``;
+        ``distributed``: a ``LocalCluster`` or the cluster at ``address``;
         ``threads``: Dask's threaded scheduler inside this process (no dashboard, no worker
         restarts, less start-up and per-task overhead).
     dashboard : str or None
@@ -321,7 +323,7 @@ class ClusterSpec:
     workers: int | None = None
     threads_per_worker: int | None = None
     processes: bool | None = None
-    scheduler: str = "distributed"
+    scheduler: str = "auto"
     dashboard: str | None = None
     timeout: float = 10.0
     worker_timeout: float = 60.0
@@ -1059,7 +1061,7 @@ CLUSTER_KEYS = (
     "worker_timeout",
     "stall_timeout",
 )
-SCHEDULERS = ("distributed", "threads")
+SCHEDULERS = ("auto", "distributed", "threads")
 
 
 def _merge_profile(doc: _Doc, base: Path) -> None:
@@ -1102,7 +1104,7 @@ def _parse_cluster(doc: _Doc, base: Path) -> ClusterSpec:
         workers=section.get("workers", _auto_or_count),
         threads_per_worker=section.get("threads_per_worker", _auto_or_count),
         processes=section.get("processes", _auto_or_flag),
-        scheduler=section.get("scheduler", _one_of(SCHEDULERS), "distributed"),
+        scheduler=section.get("scheduler", _one_of(SCHEDULERS), "auto"),
         dashboard=section.get("dashboard", _dashboard),
         timeout=section.get("timeout", _seconds, 10.0),
         worker_timeout=section.get("worker_timeout", _seconds, 60.0),

@@ -50,7 +50,7 @@ from rowfold.kernels import sparse as sparse_kernels
 from rowfold.kernels.fold import FOLD_ROWS
 from rowfold.kernels.gram import gram_upper, hermitian_from_upper
 from rowfold.kernels.householder import as_columns
-from rowfold.methods._graph import sum_tree, task
+from rowfold.methods._graph import PassGraph
 from rowfold.methods.base import Context, Engine, Factorization
 from rowfold.spec import MethodSpec
 
@@ -183,11 +183,16 @@ def gram_pass(
     sparse=True)``). The first pass (no factors) over a CSR input is always sparse.
     """
     if sparse and factors and isinstance(source, BlockPlan):
-        recipe = sparse_recipe(factors)
-        leaves = [task(sparse_gram_leaf, source, i, recipe) for i in range(source.blocks)]
+        leaf: Any = sparse_gram_leaf
+        recipe: Any = sparse_recipe(factors)
     else:
-        leaves = [task(gram_leaf, source, i, factors) for i in range(source.blocks)]
-    (total,) = engine.compute([sum_tree(leaves, add_gram_sums)], label)
+        leaf, recipe = gram_leaf, factors
+    graph = PassGraph("gram", leaf, add_gram_sums, source, recipe)
+    graph.share(source, "source")
+    graph.share(recipe, "factors")
+    calls = [(leaf, source, i, recipe) for i in range(source.blocks)]
+    root = graph.reduce(calls, 8, add_gram_sums, single_root=False)
+    (total,) = engine.compute([graph.output(root)], label)
     result: dict[str, Any] = total
     return result
 

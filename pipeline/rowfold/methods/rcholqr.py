@@ -21,7 +21,7 @@ import scipy.sparse
 from rowfold.blocks import BlockPlan, BlockSource, load_for_products
 from rowfold.errors import BreakdownError
 from rowfold.kernels import householder_r, metrics, positive_diagonal
-from rowfold.methods._graph import sum_tree, task
+from rowfold.methods._graph import sum_pass
 from rowfold.methods.base import Context, Factorization
 from rowfold.methods.cholesky import assemble, condition_estimate, more_passes
 from rowfold.spec import MethodSpec
@@ -86,10 +86,12 @@ def factor(plan: BlockPlan, spec: MethodSpec, ctx: Context) -> Factorization:
     """Run randomized CholeskyQR over the plan's row blocks."""
     engine = ctx.engine
     sketch_rows = spec.sketch_rows or 3 * plan.cols
-    leaves = [
-        task(sketch_leaf, plan, i, spec.sketch, sketch_rows, spec.seed) for i in range(plan.blocks)
+    calls = [
+        (sketch_leaf, plan, i, spec.sketch, sketch_rows, spec.seed) for i in range(plan.blocks)
     ]
-    (first,) = engine.compute([sum_tree(leaves, metrics.add_sums)], "rcholqr: pass 1 (sketch)")
+    inputs = (sketch_leaf, plan, spec.sketch, sketch_rows, spec.seed)
+    root = sum_pass("sketch", calls, metrics.add_sums, inputs)
+    (first,) = engine.compute([root], "rcholqr: pass 1 (sketch)")
     sketch_r, _ = householder_r(first["sketch"])
     preconditioner, _ = positive_diagonal(sketch_r)
     if not np.all(np.diagonal(preconditioner) > 0):

@@ -17,7 +17,7 @@ from rowfold.blocks import BlockPlan, BlockSource, load_for_products
 from rowfold.kernels import householder_q, householder_r, metrics, positive_diagonal, stacked_r
 from rowfold.kernels import sparse as sparse_kernels
 from rowfold.kernels.fold import folded_r
-from rowfold.methods._graph import task, tree_levels
+from rowfold.methods._graph import PassGraph, task
 from rowfold.methods.base import Checkpoints, Context, Engine, Factorization, LeafCheckpoint
 from rowfold.spec import MethodSpec
 
@@ -96,42 +96,60 @@ def fan_in_of(tree: str | int, leaves: int) -> int:
     return int(tree)
 
 
+def tree_depth(leaves: int, fan_in: int) -> int:
+    """Levels above the leaves of the tree :func:`rowfold.methods._graph.tree_levels` builds
+    (at least one)."""
+    depth, width = 1, -(-leaves // fan_in)
+    while width > 1:
+        depth, width = depth + 1, -(-width // fan_in)
+    return depth
+
+
 def factor(plan: BlockPlan, spec: MethodSpec, ctx: Context) -> Factorization:
     """Run Householder TSQR over the plan's row blocks."""
-    leaves: list[_Leaf] | None = None
+    leaves: _Leaves | None = None
     notes: list[str] = []
     if ctx.checkpoints is not None:
         leaves, notes = _checkpoint_leaves(plan, ctx.checkpoints, ctx.want_q)
     fact = factor_source(plan, spec.tree, ctx.engine, ctx.want_q, leaves=leaves)
     if leaves is not None:
-        fact.details["resumed_blocks"] = sum(1 for leaf in leaves if leaf.resumed)
+        fact.details["resumed_blocks"] = sum(1 for leaf in leaves.calls if leaf.resumed)
     if notes:
         fact.details["warnings"] = notes
     return fact
 
 
 class _Leaf:
-    """A leaf task and whether it comes from a checkpoint."""
+    """A leaf's call (function and arguments) and whether it comes from a checkpoint."""
 
-    def __init__(self, node: Any, resumed: bool) -> None:
-        self.node = node
+    def __init__(self, call: tuple[Any, ...], resumed: bool) -> None:
+        self.call = call
         self.resumed = resumed
+
+
+class _Leaves:
+    """Leaf calls that replace the default ones, and what they depend on (for the key)."""
+
+    def __init__(self, calls: list[_Leaf], inputs: tuple[Any, ...]) -> None:
+        self.calls = calls
+        self.inputs = inputs
 
 
 def _checkpoint_leaves(
     plan: BlockPlan, checkpoints: Checkpoints, keep_q: bool
-) -> tuple[list[_Leaf], list[str]]:
-    """Leaf tasks that save checkpoints, or load the ones a killed run left (the runner has
+) -> tuple[_Leaves, list[str]]:
+    """Leaf calls that save checkpoints, or load the ones a killed run left (the runner has
     removed those whose rows or job changed, or whose content does not match its digest),
     and the notes on those removed."""
     found, notes = checkpoints.leaves(plan.blocks)
-    leaves = []
+    calls = []
     for i, checkpoint in enumerate(found):
         if checkpoint.saved:
-            leaves.append(_Leaf(task(resumed_leaf, checkpoint), True))
+            calls.append(_Leaf((resumed_leaf, checkpoint), True))
         else:
-            leaves.append(_Leaf(task(checkpointed_leaf, plan, i, checkpoint, keep_q), False))
-    return leaves, notes
+            calls.append(_Leaf((checkpointed_leaf, plan, i, checkpoint, keep_q), False))
+    resumed = tuple(leaf.resumed for leaf in calls)
+    return _Leaves(calls, (tuple(found), resumed)), notes
 
 
 def factor_source(
@@ -140,25 +158,36 @@ def factor_source(
     engine: Engine,
     want_q: bool,
     label: str = "tsqr",
-    leaves: list[Any] | None = None,
+    leaves: _Leaves | None = None,
 ) -> Factorization:
     """Run Householder TSQR over any block source (the input, or a derived panel).
 
-    ``leaves`` may supply the leaf tasks (e.g. with checkpoints); by default each leaf
-    reads and factors one block of the source.
+    ``leaves`` may supply the leaf calls (e.g. with checkpoints); by default each leaf
+    reads and factors one block of the source. The leaves and the tree are one graph
+    layer (:class:`PassGraph`).
     """
+    fan_in = fan_in_of(tree, source.blocks if leaves is None else len(leaves.calls))
+    extra = () if leaves is None else leaves.inputs
+    graph = PassGraph("tsqr", leaf_factor, node_factor, source, want_q, fan_in, *extra)
+    graph.share(source, "source")
     if leaves is None:
-        leaves = [task(leaf_factor, source, i, want_q) for i in range(source.blocks)]
+        calls = [(leaf_factor, source, i, want_q) for i in range(source.blocks)]
     else:
-        leaves = [leaf.node if isinstance(leaf, _Leaf) else leaf for leaf in leaves]
-    fan_in = fan_in_of(tree, len(leaves))
-    levels = tree_levels(leaves, fan_in, lambda kids: task(node_factor, want_q, *kids))
-    if want_q:
-        levels = [levels[0], *_persist_levels(engine, levels[1:])]
-    (root,) = engine.compute([levels[-1][0]], f"{label}: factor row blocks")
+        calls = [leaf.call for leaf in leaves.calls]
+    if want_q:  # every node's Q factor is kept: no level is fused
+        nodes = [graph.call(*call) for call in calls]
+        levels = [
+            nodes,
+            *_persist_levels(engine, graph, graph.tree(nodes, fan_in, node_factor, True)[1:]),
+        ]
+        top = levels[-1][0]
+    else:
+        top = graph.output(graph.reduce(calls, fan_in, node_factor, False))
+    (root,) = engine.compute([top], f"{label}: factor row blocks")
     R, signs = positive_diagonal(root[0])
     qhb = None if root[1] is None else np.conj(signs)[:, None] * root[1]
     recipes = _leaf_transforms(levels, fan_in, np.diag(signs)) if want_q else []
+    depth = tree_depth(len(calls), fan_in)
     return Factorization(
         R=R,
         qhb=qhb,
@@ -166,13 +195,13 @@ def factor_source(
         q_recipes=recipes,
         passes=1,
         sums=metrics.FirstPassSums.of(root[3]),
-        details={"tree": tree, "tree_depth": len(levels) - 1},
+        details={"tree": tree, "tree_depth": depth},
     )
 
 
-def _persist_levels(engine: Engine, levels: list[list[Any]]) -> list[list[Any]]:
+def _persist_levels(engine: Engine, graph: PassGraph, levels: list[list[Any]]) -> list[list[Any]]:
     """Persist every internal node so its Q factor stays on the workers."""
-    flat = [node for level in levels for node in level]
+    flat = graph.outputs([node for level in levels for node in level])
     kept = iter(engine.persist(flat))
     return [[next(kept) for _ in level] for level in levels]
 
