@@ -94,9 +94,9 @@ OBSERVATION_TESTS = {
 
 
 def _special() -> Any:
-    """scipy.special, imported on first use; the distributions below are scipy.stats's own
-    formulas for ``chi2``, ``norm`` and ``t`` on the same special functions (scipy.stats
-    itself costs about 0.6 s to import, a tiny job's largest single cost)."""
+    """scipy.special, imported on first use. The distributions below use the standard
+    identities for chi-square, normal and Student t on its functions; scipy.stats itself
+    costs about 0.6 s to import, a tiny job's largest single cost (measured)."""
     from scipy import special
 
     return special
