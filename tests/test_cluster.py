@@ -334,7 +334,9 @@ def test_unreachable_scheduler_exits_4(tmp_path: Path, capsys: pytest.CaptureFix
     with socket.socket() as held:  # bound but not listening: connections are refused
         held.bind(("127.0.0.1", 0))
         address = f"tcp://127.0.0.1:{held.getsockname()[1]}"
-        job = write_job(tmp_path, prescribed(60, 3, 10.0), cluster={"address": address})
+        job = write_job(
+            tmp_path, prescribed(60, 3, 10.0), cluster={"address": address, "timeout": 2}
+        )
         status = main(["run", str(job)])
     err = capsys.readouterr().err
     assert status == 4, err
