@@ -635,42 +635,12 @@ def assemble_report(
     ``checked``; this is the one place the report is made from them.
     """
     sigma = metrics.singular_values(fact.R)
-    norm_a = float(sigma[0]) if sigma.size else 0.0
-    figures: dict[str, Any] = {
-        "orthogonality_loss": _orthogonality_loss(checked) if formed_q else None,
-        "factorization_residual": _factorization_residual(checked) if formed_q else None,
-        "gram_residual": metrics.gram_residual(fact.sums.gram, fact.R, plan.rows),
-        "r_condition": metrics.condition_from(sigma),
-    }
+    figures = _quality_figures(plan, fact, checked, formed_q, sigma)
     used = str(fact.details.get("method_used", job.method.name))
-    bound = published_bound(
-        used,
-        job.method.reorthogonalize,
-        plan.rows,
-        plan.cols,
-        figures["r_condition"],
-        np.dtype(plan.dtype),
-    )
-    loo = figures["orthogonality_loss"]
-    bound["measured"] = loo
-    bound["within"] = None if loo is None else bool(loo <= bound["value"])
     report: dict[str, Any] = {
-        "rowfold_version": __version__,
-        "name": job.name,
-        "job_file": str(job.source),
-        "method": job.method.name,
-        "method_used": used,
-        "method_details": fact.details,
-        "orthogonality_bound": bound,
-        "rows": plan.rows,
-        "cols": plan.cols,
-        "rhs_cols": plan.rhs_cols,
-        "dtype": plan.dtype,
-        "blocks": plan.blocks,
-        "rows_per_block": plan.per_block,
-        "passes_over_input": passes,
-        "seconds": {k: round(v, 4) for k, v in seconds.items()},
-        "peak_memory_bytes": peak_memory,
+        **_run_header(job, fact, used),
+        "orthogonality_bound": _bound_entry(job, plan, used, figures),
+        **_shape_entries(plan, passes, seconds, peak_memory),
         **figures,
         "r_singular_values": sigma,
         "r_diagonal": np.real(np.diagonal(fact.R)),
@@ -678,29 +648,9 @@ def assemble_report(
         "warnings": [],
         "output": str(job.resolved.get("output", {}).get("path", job.output.path)),
     }
-    if solution is not None and stats is not None:
-        report.update(_solution_figures(plan, solution, stats, checked, norm_a))
-    else:
-        report.update(
-            {
-                "solution_residual_norm": None,
-                "residual_std": None,
-                "normal_equations_residual": None,
-            }
-        )
-    if report["rank"] < plan.cols:
-        report["warnings"].append(
-            f"rank deficient: numerical rank {report['rank']} of {plan.cols} columns; "
-            "x is the least-squares solution of minimum norm in the scaled variables D x "
-            "(D: the power of two nearest each column norm); fix a datum "
-            "(input.fixed_columns) for a unique solution"
-        )
-    problem = metrics.gram_range_problem(fact.sums.gram, plan.rows)
-    if problem is not None:
-        report["warnings"].append(
-            f"A^H A {problem} in float64 at this scaling of A, so gram_residual is not "
-            "measured; solve.scale_columns: true brings the columns to norm about 1"
-        )
+    norm_a = float(sigma[0]) if sigma.size else 0.0
+    report.update(_answer_figures(plan, solution, stats, checked, norm_a))
+    report["warnings"].extend(_figure_warnings(plan, fact, report["rank"]))
     model = _global_test(job, plan, solution, stats)
     report.update(_model_figures(job, plan, model))
     reasons = _unmeasured_reasons(formed_q, figures["factorization_residual"], unmeasured)
@@ -716,6 +666,101 @@ def assemble_report(
     report["warnings"] = warnings
     cleaned: dict[str, Any] = _clean(_answer_first(report))
     return cleaned
+
+
+def _quality_figures(
+    plan: BlockPlan,
+    fact: Factorization,
+    checked: metrics.VerificationSums,
+    formed_q: bool,
+    sigma: np.ndarray,
+) -> dict[str, Any]:
+    """Loss of orthogonality and factorization residual (None unless Q was formed), the
+    Gram residual and the condition of R."""
+    return {
+        "orthogonality_loss": _orthogonality_loss(checked) if formed_q else None,
+        "factorization_residual": _factorization_residual(checked) if formed_q else None,
+        "gram_residual": metrics.gram_residual(fact.sums.gram, fact.R, plan.rows),
+        "r_condition": metrics.condition_from(sigma),
+    }
+
+
+def _bound_entry(job: Job, plan: BlockPlan, used: str, figures: dict[str, Any]) -> dict[str, Any]:
+    """The published bound on the loss of orthogonality of the method used, with the
+    measured loss and whether it held."""
+    bound = published_bound(
+        used,
+        job.method.reorthogonalize,
+        plan.rows,
+        plan.cols,
+        figures["r_condition"],
+        np.dtype(plan.dtype),
+    )
+    loo = figures["orthogonality_loss"]
+    bound["measured"] = loo
+    bound["within"] = None if loo is None else bool(loo <= bound["value"])
+    return bound
+
+
+def _run_header(job: Job, fact: Factorization, used: str) -> dict[str, Any]:
+    """Version, job name and file, and the method asked for and used."""
+    return {
+        "rowfold_version": __version__,
+        "name": job.name,
+        "job_file": str(job.source),
+        "method": job.method.name,
+        "method_used": used,
+        "method_details": fact.details,
+    }
+
+
+def _shape_entries(
+    plan: BlockPlan, passes: int, seconds: dict[str, float], peak_memory: int
+) -> dict[str, Any]:
+    """The problem's shape and blocks, the passes over the input, time and memory."""
+    return {
+        "rows": plan.rows,
+        "cols": plan.cols,
+        "rhs_cols": plan.rhs_cols,
+        "dtype": plan.dtype,
+        "blocks": plan.blocks,
+        "rows_per_block": plan.per_block,
+        "passes_over_input": passes,
+        "seconds": {k: round(v, 4) for k, v in seconds.items()},
+        "peak_memory_bytes": peak_memory,
+    }
+
+
+def _answer_figures(
+    plan: BlockPlan,
+    solution: Solution | None,
+    stats: Statistics | None,
+    checked: metrics.VerificationSums,
+    norm_a: float,
+) -> dict[str, Any]:
+    """The solution's figures, or None for each without a solution."""
+    if solution is not None and stats is not None:
+        return _solution_figures(plan, solution, stats, checked, norm_a)
+    return {"solution_residual_norm": None, "residual_std": None, "normal_equations_residual": None}
+
+
+def _figure_warnings(plan: BlockPlan, fact: Factorization, rank: int) -> list[str]:
+    """Warnings about the figures: rank deficiency, and a Gram out of float64's range."""
+    found = []
+    if rank < plan.cols:
+        found.append(
+            f"rank deficient: numerical rank {rank} of {plan.cols} columns; "
+            "x is the least-squares solution of minimum norm in the scaled variables D x "
+            "(D: the power of two nearest each column norm); fix a datum "
+            "(input.fixed_columns) for a unique solution"
+        )
+    problem = metrics.gram_range_problem(fact.sums.gram, plan.rows)
+    if problem is not None:
+        found.append(
+            f"A^H A {problem} in float64 at this scaling of A, so gram_residual is not "
+            "measured; solve.scale_columns: true brings the columns to norm about 1"
+        )
+    return found
 
 
 def _orthogonality_loss(sums: metrics.VerificationSums) -> float | None:

@@ -32,8 +32,8 @@ from rowfold import storage
 from rowfold.errors import InputError
 from rowfold.kernels.tree import reduce_factors, triangular
 
-FACTORS = "segments/factor"
-GRAMS = "segments/gram"
+FACTORS = storage.SEGMENT_FACTORS
+GRAMS = storage.SEGMENT_GRAMS
 
 # Figures that need Q or a pass over every covered row: after update, replace or retire
 # they describe no rows of the new answer, so they are not reported, and a gate on them is

@@ -4,7 +4,8 @@ Inputs are read by row range from HDF5 or Zarr, dense (:mod:`.inputs`) or as a C
 (:mod:`.csr`); results and reports are committed together (:mod:`.results`, with the
 protocol in :mod:`.commit` and one writer per output by :mod:`.locks`). Nothing here
 knows about Dask. Row-block digests of inputs (what ``update`` and ``run --resume`` check)
-are in :mod:`.digests`, first-pass checkpoints in :mod:`.checkpoints`.
+are in :mod:`.digests`, first-pass checkpoints in :mod:`.checkpoints`. What a result
+store holds under which names (answer, update state, segments) is :mod:`.result_store`.
 """
 
 from rowfold.storage.csr import (
@@ -36,6 +37,15 @@ from rowfold.storage.inputs import (
     write_arrays,
 )
 from rowfold.storage.locks import OutputBusyError
+from rowfold.storage.result_store import (
+    SEGMENT_FACTORS,
+    SEGMENT_GRAMS,
+    AnswerArrays,
+    StateArrays,
+    write_answer,
+    write_segments,
+    write_state,
+)
 from rowfold.storage.results import (
     ResultWriter,
     check_output_path,
@@ -55,6 +65,9 @@ from rowfold.storage.results import (
 from rowfold.storage.work import ScratchArray, ScratchFolder
 
 __all__ = [
+    "SEGMENT_FACTORS",
+    "SEGMENT_GRAMS",
+    "AnswerArrays",
     "ArrayInfo",
     "ArrayRef",
     "CsrInfo",
@@ -62,6 +75,7 @@ __all__ = [
     "ResultWriter",
     "ScratchArray",
     "ScratchFolder",
+    "StateArrays",
     "block_digests",
     "check_output_path",
     "claim_output",
@@ -91,7 +105,10 @@ __all__ = [
     "report_paths",
     "scratch_folder",
     "stored_records",
+    "write_answer",
     "write_arrays",
     "write_csr",
+    "write_segments",
+    "write_state",
     "write_text_atomic",
 ]
