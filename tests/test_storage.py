@@ -3,7 +3,10 @@
 :class:`InputContract` is the shared contract for dense inputs read by row range (DESIGN.md,
 ``storage/``); each backend (HDF5, Zarr formats 3 and 2, a Zarr zip store, a Zarr store at a
 ``memory://`` URL) subclasses it and says only
-how to write a file. Values are exact: reading rows must give back the very numbers written.
+how to write a file; each names the backend of :mod:`rowfold.storage.backends` that reads it,
+and the backend protocol itself is checked there too. :class:`CsrContract` is the same for a
+CSR group over each backend. Values are exact: reading rows must give back the very numbers
+written.
 :class:`TestResultWriter` checks that a result store appears only complete (DESIGN.md: "An
 output is written to a temporary sibling and renamed into place only when complete").
 """
@@ -24,13 +27,18 @@ from rowfold.errors import InputError, InputMissingError
 from rowfold.storage import (
     ArrayRef,
     ResultWriter,
+    backends,
     close_open_inputs,
     describe_array,
+    describe_csr,
+    read_csr_rows,
     read_result,
     read_rows,
     report_paths,
     write_arrays,
+    write_csr,
 )
+from rowfold.storage.digests import csr_digest
 
 ROWS, COLS, CHUNK = 23, 3, 5  # 23 = 4 full chunks of 5 and a ragged chunk of 3
 TMP_PREFIX = ".rowfold-tmp-"
@@ -64,9 +72,11 @@ RANGES = [
 
 
 class InputContract:
-    """Behaviour every dense input backend must show. Subclasses define :meth:`write`."""
+    """Behaviour every dense input backend must show. Subclasses define :meth:`write` and
+    name the :class:`~rowfold.storage.backends.InputBackend` that reads them."""
 
     suffix: ClassVar[str]
+    backend: ClassVar[type]
 
     def write(self, path: str, arrays: dict[str, np.ndarray], chunk_rows: int) -> None:
         """Write ``arrays`` (name -> array, names may hold '/') chunked by ``chunk_rows``."""
@@ -147,11 +157,40 @@ class InputContract:
         with pytest.raises(InputError, match="group"):
             describe_array(ArrayRef(path, "network"))
 
+    def test_backend_is_chosen_by_location(self, tmp_path: Path) -> None:
+        """One function picks the backend from the location alone."""
+        path, _ = self.make(tmp_path)
+        assert isinstance(backends.input_backend(ArrayRef(path, "network/A")), self.backend)
+
+    @pytest.mark.parametrize(("start", "stop"), RANGES)
+    def test_backend_reads_what_was_written(self, tmp_path: Path, start: int, stop: int) -> None:
+        """The protocol's own describe and read give back what was written, exactly."""
+        path, arrays = self.make(tmp_path)
+        ref = ArrayRef(path, "network/A")
+        backend = backends.input_backend(ref)
+        assert backend.describe(ref).shape == arrays["network/A"].shape
+        got = backend.read(ref, start, stop)
+        assert got.dtype == arrays["network/A"].dtype
+        np.testing.assert_array_equal(got, arrays["network/A"][start:stop])
+
+    def test_backend_stored_chunks_match_the_layout(self, tmp_path: Path) -> None:
+        """Stored chunks span the array's extent in chunks of the rows written per chunk,
+        and every chunk of a fully written array is present."""
+        path, arrays = self.make(tmp_path)
+        ref = ArrayRef(path, "network/A")
+        chunks = backends.input_backend(ref).stored_chunks(ref)
+        assert chunks.extent == arrays["network/A"].shape
+        assert chunks.shape == (CHUNK, COLS)
+        for row_chunk in range(-(-ROWS // CHUNK)):
+            _, stored = chunks.read((row_chunk, 0))
+            assert stored is not None and len(stored) > 0
+
 
 class TestHDF5Input(InputContract):
     """HDF5 through h5py, chunked by rows."""
 
     suffix = ".h5"
+    backend = backends.Hdf5Input
 
     def write(self, path: str, arrays: dict[str, np.ndarray], chunk_rows: int) -> None:
         with h5py.File(path, "w") as handle:
@@ -163,6 +202,7 @@ class ZarrInput(InputContract):
     """A Zarr store of a given format."""
 
     suffix = ".zarr"
+    backend = backends.ZarrInput
     zarr_format: ClassVar[Literal[2, 3]]
 
     def write(self, path: str, arrays: dict[str, np.ndarray], chunk_rows: int) -> None:
@@ -195,6 +235,7 @@ class TestZarrZipInput(InputContract):
     """A Zarr store inside one zip file (zarr's zip store), read through the same contract."""
 
     suffix = ".zarr.zip"
+    backend = backends.ZarrInput
 
     def write(self, path: str, arrays: dict[str, np.ndarray], chunk_rows: int) -> None:
         from zarr.storage import ZipStore
@@ -218,6 +259,136 @@ class TestMemoryUrlInput(ZarrInput):
 
     def location(self, folder: Path, stem: str) -> str:
         return f"memory://{folder.name}/{stem}{self.suffix}"
+
+
+# ---------------------------------------------------------------- CSR inputs
+
+CSR_SHAPE = (41, 6)
+CSR_RANGES = [
+    pytest.param(0, CSR_SHAPE[0], id="everything"),
+    pytest.param(3, 17, id="middle"),
+    pytest.param(CSR_SHAPE[0] - 1, CSR_SHAPE[0], id="last-row"),
+    pytest.param(9, 9, id="empty"),
+]
+
+
+def sparse_sample() -> Any:
+    """A sparse matrix with distinct stored values and some empty rows."""
+    import scipy.sparse as sp
+
+    rng = np.random.default_rng(11)
+    matrix = sp.random_array(CSR_SHAPE, density=0.3, rng=rng, format="csr")
+    matrix.data = np.arange(1, matrix.nnz + 1, dtype=np.float64) * 0.75
+    return matrix
+
+
+class CsrContract:
+    """Behaviour a CSR group shows over every backend holding its three arrays. Subclasses
+    give the suffix, the backend and how to change or drop one stored array in place."""
+
+    suffix: ClassVar[str]
+    backend: ClassVar[type]
+
+    def set_value(self, path: str, name: str, index: int, value: float) -> None:
+        """Overwrite entry ``index`` of the array ``name`` in place."""
+        raise NotImplementedError
+
+    def drop(self, path: str, name: str) -> None:
+        """Delete the array ``name``."""
+        raise NotImplementedError
+
+    def make(self, folder: Path) -> tuple[ArrayRef, Any]:
+        """Write a sparse matrix as the group ``network/A``; return (ref, matrix)."""
+        matrix = sparse_sample()
+        path = folder / f"sparse{self.suffix}"
+        write_csr(path, "network/A", matrix)
+        return ArrayRef(str(path), "network/A"), matrix
+
+    def teardown_method(self) -> None:
+        close_open_inputs()
+
+    def test_parts_are_read_by_the_backend(self, tmp_path: Path) -> None:
+        """The group's arrays come from the backend the location picks."""
+        ref, _ = self.make(tmp_path)
+        assert isinstance(backends.input_backend(ref), self.backend)
+
+    def test_describe(self, tmp_path: Path) -> None:
+        """Shape, value dtype and stored-value count, as written."""
+        ref, matrix = self.make(tmp_path)
+        info = describe_csr(ref)
+        assert info.shape == matrix.shape
+        assert np.dtype(info.dtype) == matrix.data.dtype
+        assert info.nnz == matrix.nnz
+
+    @pytest.mark.parametrize(("start", "stop"), CSR_RANGES)
+    def test_rows_exact(self, tmp_path: Path, start: int, stop: int) -> None:
+        """A row range reads back the very rows scipy.sparse slices from what was written."""
+        ref, matrix = self.make(tmp_path)
+        data, indices, indptr = read_csr_rows(ref, start, stop)
+        want = matrix[start:stop]
+        np.testing.assert_array_equal(indptr, want.indptr)
+        np.testing.assert_array_equal(indices, want.indices)
+        np.testing.assert_array_equal(data, want.data)
+        assert data.dtype == matrix.data.dtype
+
+    def test_digest_stable_across_reads(self, tmp_path: Path) -> None:
+        """The same rows digest the same, also after the handles are closed and reopened."""
+        ref, _ = self.make(tmp_path)
+        first = csr_digest(ref, 2, 30).digest
+        assert csr_digest(ref, 2, 30).digest == first
+        close_open_inputs()
+        assert csr_digest(ref, 2, 30).digest == first
+
+    def test_digest_sees_one_changed_value(self, tmp_path: Path) -> None:
+        """Changing one stored value changes the digest of the rows owning it only."""
+        ref, matrix = self.make(tmp_path)
+        entry = matrix.nnz // 2
+        row = int(np.searchsorted(matrix.indptr, entry, side="right")) - 1
+        owning, before = csr_digest(ref, row, row + 1), csr_digest(ref, 0, row)
+        close_open_inputs()
+        self.set_value(ref.path, "network/A/data", entry, -1.5)
+        assert csr_digest(ref, row, row + 1).digest != owning.digest
+        assert csr_digest(ref, 0, row).digest == before.digest
+
+    @pytest.mark.parametrize("part", ["data", "indices", "indptr"])
+    def test_missing_member(self, tmp_path: Path, part: str) -> None:
+        """A missing array is one line naming the file, the group and the array."""
+        ref, _ = self.make(tmp_path)
+        self.drop(ref.path, f"network/A/{part}")
+        with pytest.raises(InputError) as caught:
+            describe_csr(ref)
+        message = str(caught.value)
+        assert "\n" not in message
+        assert ref.describe() in message and f"missing {part}" in message
+
+
+class TestHdf5Csr(CsrContract):
+    """A CSR group in an HDF5 file."""
+
+    suffix = ".h5"
+    backend = backends.Hdf5Input
+
+    def set_value(self, path: str, name: str, index: int, value: float) -> None:
+        with h5py.File(path, "a") as handle:
+            handle[name][index] = value
+
+    def drop(self, path: str, name: str) -> None:
+        with h5py.File(path, "a") as handle:
+            del handle[name]
+
+
+class TestZarrCsr(CsrContract):
+    """A CSR group in a Zarr store."""
+
+    suffix = ".zarr"
+    backend = backends.ZarrInput
+
+    def set_value(self, path: str, name: str, index: int, value: float) -> None:
+        array: Any = zarr.open_group(path, mode="a")[name]
+        array[index] = value
+
+    def drop(self, path: str, name: str) -> None:
+        del zarr.open_group(path, mode="a")[name]
 
 
 # ---------------------------------------------------------------- result stores

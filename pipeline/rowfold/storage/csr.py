@@ -19,8 +19,7 @@ to the task that loads the block (:mod:`rowfold.blocks`).
 
 from __future__ import annotations
 
-import warnings
-from collections.abc import Callable
+from collections.abc import Callable, Mapping
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
@@ -30,7 +29,8 @@ import numpy as np
 
 from rowfold.errors import InputError
 from rowfold.storage import locations
-from rowfold.storage.chunks import require_hdf5_chunks, require_zarr_chunks, row_range
+from rowfold.storage.backends import ChunkCheck, input_backend
+from rowfold.storage.chunks import row_range
 from rowfold.storage.inputs import (
     _HDF5_LOCK,
     HDF5_SUFFIXES,
@@ -38,20 +38,12 @@ from rowfold.storage.inputs import (
     TEXT,
     ArrayInfo,
     ArrayRef,
-    _kept,
     _log_read,
     _missing,
-    _open_ref,
     describe_array,
     forget_input,
-    hdf5_file,
-    open_dataset,
     require_location,
 )
-
-# Checks that the chunks of one part of a CSR group covering a range are stored:
-# (part, lo, hi, describe) -> None, or InputError.
-ChunkCheck = Callable[[str, int, int, Callable[[int, int], str]], None]
 
 CSR_ARRAYS = ("data", "indices", "indptr")
 """The arrays a CSR group holds."""
@@ -95,21 +87,6 @@ class CsrInfo:
     chunk_rows: int | None = None
 
 
-def _members_hdf5(handle: Any, name: str) -> dict[str, Any] | None:
-    """Describe the object at ``name``: None for a dataset, else its arrays and attributes."""
-    obj = handle.get(name) if name not in ("", ".", "/") else handle
-    if obj is None:
-        raise KeyError(name)
-    if isinstance(obj, h5py.Dataset):
-        return None
-    arrays = {
-        key: (tuple(value.shape), value.dtype.str)
-        for key, value in obj.items()
-        if isinstance(value, h5py.Dataset)
-    }
-    return {"arrays": arrays, "shape": obj.attrs.get("shape"), **_encoding(obj.attrs)}
-
-
 def _encoding(attrs: Any) -> dict[str, Any]:
     """The group's encoding attributes (text; absent ones left out)."""
     found = {}
@@ -122,35 +99,23 @@ def _encoding(attrs: Any) -> dict[str, Any]:
     return found
 
 
-def _members_zarr(ref: ArrayRef) -> dict[str, Any] | None:
-    obj = _open_ref(ref)
-    if not hasattr(obj, "members"):
-        return None
-    arrays = {
-        key: (tuple(value.shape), np.dtype(value.dtype).str)
-        for key, value in obj.members()
-        if not hasattr(value, "members")
-    }
-    return {"arrays": arrays, "shape": obj.attrs.get("shape"), **_encoding(obj.attrs)}
-
-
 def _members(ref: ArrayRef) -> dict[str, Any] | None:
     """Open the file and describe ``ref``: None when it is a dataset (dense input)."""
     require_location(ref)
+    backend = input_backend(ref)
     try:
-        if ref.is_hdf5:
-            with _HDF5_LOCK, hdf5_file(ref.path, ref.storage_options) as handle:
-                return _members_hdf5(handle, ref.name)
-        with warnings.catch_warnings():
-            warnings.simplefilter("ignore")  # zarr warns about folders it cannot read
-            return _members_zarr(ref)
+        found = backend.group_members(ref, ("shape", *ENCODING))
     except KeyError:
         raise _missing(ref) from None
     except Exception as exc:
-        kind = "HDF5" if ref.is_hdf5 else "Zarr"
         raise InputError(
-            f"{ref.path}: cannot open as {kind} ({locations.failure(exc, ref.storage_options)})"
+            f"{ref.path}: cannot open as {backend.kind} "
+            f"({locations.failure(exc, ref.storage_options)})"
         ) from None
+    if found is None:
+        return None
+    arrays, attrs = found
+    return {"arrays": arrays, "shape": attrs.get("shape"), **_encoding(attrs)}
 
 
 def is_csr(ref: ArrayRef) -> bool:
@@ -240,7 +205,8 @@ def _check_group(ref: ArrayRef, members: dict[str, Any]) -> CsrInfo:
             f"{where}/indptr: expected m + 1 = {m + 1} entries (shape {list(shape)}), "
             f"found {arrays['indptr'][0][0]}"
         )
-    first, last = (int(v) for v in _read_slice(ref.part("indptr"), m))
+    indptr = ref.part("indptr")
+    first, last = input_backend(indptr).read_ends(indptr, m)
     if first != 0 or last != nnz:
         raise InputError(
             f"{where}/indptr: expected to run from 0 to nnz = {nnz}, found {first} .. {last}"
@@ -259,16 +225,6 @@ def _shape_attr(where: str, raw: Any) -> tuple[int, int]:
     if m < 0 or n < 0:
         raise InputError(f"{where}: attribute 'shape' must be >= 0, found [{m}, {n}]")
     return m, n
-
-
-def _read_slice(ref: ArrayRef, last: int) -> tuple[int, int]:
-    """Read entries 0 and ``last`` of a 1-D array (the ends of ``indptr``)."""
-    if ref.is_hdf5:
-        with _HDF5_LOCK, hdf5_file(ref.path, ref.storage_options) as handle:
-            dataset = handle[ref.name]
-            return int(dataset[0]), int(dataset[last])
-    array = _open_ref(ref)
-    return int(array[0]), int(array[last])
 
 
 def read_csr_rows(
@@ -302,15 +258,8 @@ def read_csr_rows(
     """
     _log_read(ref, start, stop, purpose)
     try:
-        if ref.is_hdf5:
-            with _HDF5_LOCK:
-                arrays = {
-                    part: open_dataset(ref.path, ref.part(part).name, ref.storage_options)
-                    for part in CSR_ARRAYS
-                }
-                return _read_from(arrays, start, stop, _hdf5_check(ref, arrays))
-        group = _open_ref(ref)
-        return _read_from(group, start, stop, _zarr_check(ref, group))
+        with input_backend(ref).csr_parts(ref) as (group, check):
+            return _read_from(group, start, stop, check)
     except InputError:
         raise
     except Exception as exc:
@@ -325,19 +274,11 @@ def require_csr_chunks(ref: ArrayRef, start: int, stop: int) -> None:
     missing (named by the matrix rows that own its entries); reads only ``indptr``."""
     if not ref.checks_chunks:
         return
-    if ref.is_hdf5:
-        with _HDF5_LOCK:
-            arrays = {
-                part: open_dataset(ref.path, ref.part(part).name, ref.storage_options)
-                for part in CSR_ARRAYS
-            }
-            _check_parts(arrays, start, stop, _hdf5_check(ref, arrays))
-        return
-    group = _open_ref(ref)
-    _check_parts(group, start, stop, _zarr_check(ref, group))
+    with input_backend(ref).csr_parts(ref) as (group, check):
+        _check_parts(group, start, stop, check)
 
 
-def _check_parts(group: Any, start: int, stop: int, check: ChunkCheck | None) -> None:
+def _check_parts(group: Mapping[str, Any], start: int, stop: int, check: ChunkCheck | None) -> None:
     """Run ``check`` over the indptr entries of rows ``[start, stop)`` and the value ranges
     they point to."""
     if check is None:
@@ -348,30 +289,6 @@ def _check_parts(group: Any, start: int, stop: int, check: ChunkCheck | None) ->
     if 0 <= lo <= hi:
         for part in ("data", "indices"):
             check(part, lo, hi, _entries(ptr, start, lo, hi))
-
-
-def _zarr_check(ref: ArrayRef, group: Any) -> ChunkCheck | None:
-    """Chunk checks for the parts of a Zarr CSR group, unless missing chunks are data."""
-    if not ref.checks_chunks:
-        return None
-
-    def check(part: str, lo: int, hi: int, describe: Callable[[int, int], str]) -> None:
-        require_zarr_chunks(group[part], ref.part(part).describe(), lo, hi, describe)
-
-    return check
-
-
-def _hdf5_check(ref: ArrayRef, arrays: dict[str, Any]) -> ChunkCheck | None:
-    """Chunk checks for the parts of an HDF5 CSR group (the caller holds the HDF5 lock)."""
-    if not ref.checks_chunks:
-        return None
-    signature = _kept(ref.path, ref.storage_options)[0]
-
-    def check(part: str, lo: int, hi: int, describe: Callable[[int, int], str]) -> None:
-        where = ref.part(part).describe()
-        require_hdf5_chunks(arrays[part], where, lo, hi, signature, describe)
-
-    return check
 
 
 def _entries(ptr: np.ndarray, start: int, lo: int, hi: int) -> Callable[[int, int], str]:
@@ -386,7 +303,7 @@ def _entries(ptr: np.ndarray, start: int, lo: int, hi: int) -> Callable[[int, in
 
 
 def _read_from(
-    group: Any, start: int, stop: int, check: ChunkCheck | None = None
+    group: Mapping[str, Any], start: int, stop: int, check: ChunkCheck | None = None
 ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     if check is not None:
         check("indptr", start, stop + 1, row_range)

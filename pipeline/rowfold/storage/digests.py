@@ -36,13 +36,11 @@ import numpy as np
 
 from rowfold.errors import InputError
 from rowfold.storage import locations
+from rowfold.storage.backends import StoredChunks, input_backend
 from rowfold.storage.csr import require_csr_chunks
 from rowfold.storage.inputs import (
-    _HDF5_LOCK,
     ArrayRef,
     _log_read,
-    _open_ref,
-    open_dataset,
     read_rows,
 )
 
@@ -84,25 +82,7 @@ def _csr_parts(ref: ArrayRef) -> dict[str, ArrayRef]:
 
 def array_layout(ref: ArrayRef) -> dict[str, Any]:
     """The on-disk layout of a dense array that its stored chunk bytes depend on."""
-    if ref.is_hdf5:
-        with _HDF5_LOCK:
-            dataset = open_dataset(ref.path, ref.name, ref.storage_options)
-            plist = dataset.id.get_create_plist()
-            filters = [list(plist.get_filter(i)[:3]) for i in range(plist.get_nfilters())]
-            layout = {
-                "format": "hdf5",
-                "dtype": dataset.dtype.str,
-                "tail": list(dataset.shape[1:]),
-                "chunks": list(dataset.chunks) if dataset.chunks else None,
-                "filters": [[int(c), int(f), [int(v) for v in values]] for c, f, values in filters],
-                "fill": np.asarray(dataset.fillvalue).tolist(),
-            }
-    else:
-        array = _zarr_array(ref)
-        meta = dict(array.metadata.to_dict())
-        for volatile in ("shape", "attributes"):
-            meta.pop(volatile, None)
-        layout = {"format": "zarr", "tail": list(array.shape[1:]), "metadata": meta}
+    layout = input_backend(ref).layout(ref)
     normal: dict[str, Any] = json.loads(json.dumps(layout, sort_keys=True, default=str))
     return normal
 
@@ -133,64 +113,14 @@ def layout_change(old: dict[str, Any], new: dict[str, Any]) -> str | None:
 # ---------------------------------------------------------------- chunk access
 
 
-def _zarr_array(ref: ArrayRef) -> Any:
-    return _open_ref(ref)
-
-
-class _Chunks:
-    """Stored chunks of one dense array: the chunk shape and a reader of one chunk's bytes.
-
-    ``shape`` is None when the array has no chunks whose bytes can be read as stored (a
-    contiguous HDF5 dataset, a Zarr chunk grid that is not regular).
-    """
-
-    def __init__(self, ref: ArrayRef) -> None:
-        self.ref = ref
-        self.shape: tuple[int, ...] | None = None
-        self.extent: tuple[int, ...] = ()
-        if ref.is_hdf5:
-            with _HDF5_LOCK:
-                dataset = open_dataset(ref.path, ref.name, ref.storage_options)
-                self.extent = tuple(dataset.shape)
-                self.shape = tuple(dataset.chunks) if dataset.chunks else None
-            return
-        self._array = _zarr_array(ref)
-        self.extent = tuple(self._array.shape)
-        grid = getattr(self._array.metadata, "chunk_grid", None)
-        chunk_shape = getattr(grid, "chunk_shape", None)
-        if chunk_shape is not None and len(self.extent) > 0:
-            self.shape = tuple(int(c) for c in chunk_shape)
-
-    def coordinates(self, row_chunk: int) -> Iterator[tuple[int, ...]]:
-        """Chunk grid coordinates of the chunks in one chunk-row, in C order."""
-        assert self.shape is not None
-        tails = [
-            range(math.ceil(e / c)) for e, c in zip(self.extent[1:], self.shape[1:], strict=True)
-        ]
-        for tail in itertools.product(*tails):
-            yield (row_chunk, *tail)
-
-    def read(self, coords: tuple[int, ...]) -> tuple[bytes, bytes | None]:
-        """(header, stored bytes or None when the chunk was never written)."""
-        assert self.shape is not None
-        header = b"C" + np.asarray(coords, dtype="<i8").tobytes()
-        if self.ref.is_hdf5:
-            offset = tuple(i * c for i, c in zip(coords, self.shape, strict=True))
-            with _HDF5_LOCK:
-                dataset = open_dataset(self.ref.path, self.ref.name, self.ref.storage_options)
-                try:
-                    mask, data = dataset.id.read_direct_chunk(offset)
-                except RuntimeError:  # the chunk's storage was never allocated
-                    return header, None
-            return header + np.asarray([mask], dtype="<u4").tobytes(), bytes(data)
-        from zarr.core.buffer import default_buffer_prototype
-        from zarr.core.sync import sync
-
-        array = self._array
-        key = array.metadata.encode_chunk_key(coords)
-        full = f"{array.path}/{key}" if array.path else key
-        buffer = sync(array.store.get(full, prototype=default_buffer_prototype()))
-        return header, None if buffer is None else buffer.to_bytes()
+def _coordinates(chunks: StoredChunks, row_chunk: int) -> Iterator[tuple[int, ...]]:
+    """Chunk grid coordinates of the chunks in one chunk-row, in C order."""
+    assert chunks.shape is not None
+    tails = [
+        range(math.ceil(e / c)) for e, c in zip(chunks.extent[1:], chunks.shape[1:], strict=True)
+    ]
+    for tail in itertools.product(*tails):
+        yield (row_chunk, *tail)
 
 
 def _update_decoded(digest: Any, ref: ArrayRef, start: int, stop: int) -> int:
@@ -208,7 +138,7 @@ def range_digest(ref: ArrayRef, start: int, stop: int) -> RangeDigest:
     """Digest rows ``[start, stop)`` of a dense array (see the module docstring)."""
     stop = max(start, stop)
     digest = blake3.blake3(_VERSION + np.asarray([start, stop], dtype="<i8").tobytes())
-    chunks = _Chunks(ref)
+    chunks = input_backend(ref).stored_chunks(ref)
     if chunks.shape is None or not chunks.extent:
         decoded = _update_decoded(digest, ref, start, stop)
         return RangeDigest(digest.hexdigest(), 0, decoded)
@@ -221,7 +151,7 @@ def range_digest(ref: ArrayRef, start: int, stop: int) -> RangeDigest:
     _log_read(ref, first * size, last * size, "digest-chunks")
     try:
         for row_chunk in range(first, last):
-            for coords in chunks.coordinates(row_chunk):
+            for coords in _coordinates(chunks, row_chunk):
                 header, data = chunks.read(coords)
                 digest.update(header + (b"A" if data is None else b"S"))
                 if data is not None:

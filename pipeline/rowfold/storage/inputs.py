@@ -21,10 +21,12 @@ import numpy as np
 
 from rowfold.errors import InputError, InputMissingError
 from rowfold.storage import locations
-from rowfold.storage.chunks import FILL_VALUE, require_hdf5_chunks, require_zarr_chunks
+from rowfold.storage.chunks import FILL_VALUE
 
 if TYPE_CHECKING:
     from zarr.core.array_spec import ArrayConfigParams
+
+    from rowfold.storage.backends import InputBackend
 
 HDF5_SUFFIXES = (".h5", ".hdf5", ".nc")  # NetCDF-4 is HDF5
 ZARR_SUFFIXES = (".zarr",)
@@ -165,21 +167,18 @@ def require_location(ref: ArrayRef) -> None:
         raise InputMissingError(f"{ref.path}: input {what} not found (input.path)")
 
 
+def _backend(ref: ArrayRef) -> InputBackend:
+    """The backend reading ``ref`` (:mod:`.backends` builds on this module, hence imported
+    here)."""
+    from rowfold.storage.backends import input_backend
+
+    return input_backend(ref)
+
+
 def _list_names(path: str, options: str = "") -> list[str]:
     """List array names in a file, for 'dataset not found' messages."""
-    names: list[str] = []
-    if Path(path).suffix.lower() in HDF5_SUFFIXES:
-        with _HDF5_LOCK, hdf5_file(path, options) as handle:
-            handle.visititems(
-                lambda name, obj: names.append(name) if isinstance(obj, h5py.Dataset) else None
-            )
-        return names
-    root = _open_zarr(path, options)
-    if hasattr(root, "arrays"):
-        for name, _ in root.members(max_depth=None):
-            if hasattr(root[name], "shape") and not hasattr(root[name], "members"):
-                names.append(name)
-    return names
+    ref = ArrayRef(path, "", storage_options=options)
+    return _backend(ref).array_names(ref)
 
 
 def _missing(ref: ArrayRef) -> InputMissingError:
@@ -200,40 +199,9 @@ def _missing(ref: ArrayRef) -> InputMissingError:
 def _broken_link(ref: ArrayRef) -> str | None:
     """Describe the link that leaves ``ref.name`` dangling, if one does."""
     try:
-        return _broken_hdf5_link(ref) if ref.is_hdf5 else _broken_zarr_link(ref)
+        return _backend(ref).broken_link(ref)
     except Exception:  # a courtesy in an error message
         return None
-
-
-def _broken_zarr_link(ref: ArrayRef) -> str | None:
-    """A symbolic link inside the store (e.g. the array's folder) that points nowhere."""
-    folder = Path(ref.path)
-    for part in (p for p in ref.name.split("/") if p):
-        folder = folder / part
-        if folder.is_symlink() and not folder.exists():
-            return (
-                f"{part} is a broken symbolic link to {os.readlink(folder)} "
-                "(which does not exist); restore the target"
-            )
-    return None
-
-
-def _broken_hdf5_link(ref: ArrayRef) -> str | None:
-    """A soft or external link on the way to ``ref.name`` whose target is missing."""
-    with _HDF5_LOCK, hdf5_file(ref.path, ref.storage_options) as handle:
-        where = ""
-        for part in (p for p in ref.name.split("/") if p):
-            where = f"{where}/{part}"
-            link = handle.get(where, getlink=True)
-            dangling = handle.get(where) is None  # ``in`` is true for a dangling link
-            if isinstance(link, h5py.SoftLink) and dangling:
-                return f"{where} is a soft link to {link.path}, which does not exist"
-            if isinstance(link, h5py.ExternalLink) and dangling:
-                return (
-                    f"{where} is an external link to {link.filename}:{link.path}, which "
-                    "cannot be opened (is the file missing or moved?)"
-                )
-    return None
 
 
 def describe_array(ref: ArrayRef) -> ArrayInfo:
@@ -247,41 +215,19 @@ def describe_array(ref: ArrayRef) -> ArrayInfo:
         When the file cannot be read as HDF5 or Zarr.
     """
     require_location(ref)
+    backend = _backend(ref)
     try:
-        if ref.is_hdf5:
-            return _describe_hdf5(ref)
-        with warnings.catch_warnings():
-            warnings.simplefilter("ignore")  # zarr warns about folders it cannot read
-            return _describe_zarr(ref)
+        return backend.describe(ref)
     except (InputError, InputMissingError):
         raise
     except KeyError:
         raise _missing(ref) from None
     except Exception as exc:
-        kind = "HDF5" if ref.is_hdf5 else "Zarr"
+        reason = locations.failure(exc, ref.storage_options)
         raise InputError(
-            f"{ref.path}: cannot open as {kind} ({locations.failure(exc, ref.storage_options)}); "
+            f"{ref.path}: cannot open as {backend.kind} ({reason}); "
             "check input.path and input.storage_options"
         ) from None
-
-
-def _describe_hdf5(ref: ArrayRef) -> ArrayInfo:
-    with _HDF5_LOCK, hdf5_file(ref.path, ref.storage_options) as handle:
-        obj = handle.get(ref.name)
-        if obj is None:
-            raise KeyError(ref.name)
-        if not isinstance(obj, h5py.Dataset):
-            raise InputError(f"{ref.describe()}: expected a dataset, found a group")
-        chunks = obj.chunks
-        return ArrayInfo(ref, tuple(obj.shape), obj.dtype.str, chunks[0] if chunks else None)
-
-
-def _describe_zarr(ref: ArrayRef) -> ArrayInfo:
-    obj = _open_ref(ref)
-    if not hasattr(obj, "chunks") or not hasattr(obj, "dtype"):
-        raise InputError(f"{ref.describe()}: expected an array, found a group")
-    chunks = obj.chunks
-    return ArrayInfo(ref, tuple(obj.shape), np.dtype(obj.dtype).str, chunks[0] if chunks else None)
 
 
 def read_rows(ref: ArrayRef, start: int, stop: int, purpose: str = "data") -> np.ndarray:
@@ -304,17 +250,7 @@ def read_rows(ref: ArrayRef, start: int, stop: int, purpose: str = "data") -> np
     """
     _log_read(ref, start, stop, purpose)
     try:
-        if ref.is_hdf5:
-            with _HDF5_LOCK:
-                dataset = open_dataset(ref.path, ref.name, ref.storage_options)
-                if ref.checks_chunks:
-                    signature = _kept(ref.path, ref.storage_options)[0]
-                    require_hdf5_chunks(dataset, ref.describe(), start, stop, signature)
-                return np.asarray(dataset[start:stop])
-        obj = _open_ref(ref)
-        if ref.checks_chunks:
-            require_zarr_chunks(obj, ref.describe(), start, stop)
-        return np.asarray(obj[start:stop])
+        return _backend(ref).read(ref, start, stop)
     except InputError:
         raise
     except Exception as exc:
@@ -341,11 +277,7 @@ def read_names(ref: ArrayRef) -> list[str]:
             f"{list(info.shape)}"
         )
     try:
-        if ref.is_hdf5:
-            with _HDF5_LOCK, hdf5_file(ref.path, ref.storage_options) as handle:
-                values = handle[ref.name][...]
-        else:
-            values = np.asarray(_open_ref(ref)[...])
+        values = _backend(ref).read_all(ref)
     except Exception as exc:
         raise InputError(
             f"{ref.describe()}: cannot read the parameter names "

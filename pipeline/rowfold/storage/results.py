@@ -27,6 +27,7 @@ from rowfold import testhooks
 from rowfold.errors import OutputError, RowfoldError, RunError
 from rowfold.storage import commit as protocol
 from rowfold.storage import layout
+from rowfold.storage.backends import ResultStore, open_result_store
 from rowfold.storage.inputs import _HDF5_LOCK, HDF5_SUFFIXES
 from rowfold.storage.locks import OutputBusyError, output_lock
 
@@ -255,18 +256,6 @@ def scratch_folder(path: Path) -> Iterator[Path]:
         protocol.remove_entry(folder)
 
 
-def _hdf5_attr(value: Any) -> Any:
-    """An HDF5 attribute value: a list of integers as an integer array, other containers
-    as JSON text (HDF5 attributes hold no nested data)."""
-    if isinstance(value, list | tuple) and all(
-        isinstance(v, int | np.integer) and not isinstance(v, bool) for v in value
-    ):
-        return np.asarray(value, dtype=np.int64)
-    if isinstance(value, dict | list | tuple):
-        return layout.to_json_text(value)
-    return value
-
-
 class ResultWriter:
     """Write one result store (and its reports) in staging and commit them together.
 
@@ -281,8 +270,7 @@ class ResultWriter:
 
     def __init__(self, path: Path) -> None:
         self.path = path
-        self.is_hdf5 = path.suffix.lower() in HDF5_SUFFIXES
-        self._handle: Any = None
+        self._store: ResultStore | None = None
         self._staging: protocol.Staging | None = None
         self._files: list[str] = []
         self._claim = ExitStack()
@@ -311,13 +299,13 @@ class ResultWriter:
 
     def _open_staged(self) -> None:
         self._staging = protocol.Staging(self.path)
-        target = self._staging.part(self.path.name)
-        if self.is_hdf5:
-            self._handle = h5py.File(target, "x")
-        else:
-            import zarr
+        self._store = open_result_store(self.path, self._staging.part(self.path.name))
 
-            self._handle = zarr.open_group(str(target), mode="w-")
+    @property
+    def store(self) -> ResultStore:
+        """The staged store being written."""
+        assert self._store is not None, "the writer is not open"
+        return self._store
 
     def __exit__(
         self,
@@ -325,11 +313,11 @@ class ResultWriter:
         exc: BaseException | None,
         tb: TracebackType | None,
     ) -> None:
-        if self._handle is not None:
+        if self._store is not None:
             try:
                 self._close()
             except OSError:  # the staged store is discarded anyway
-                self._handle = None
+                self._store = None
         if self._staging is not None:
             self._staging.discard()  # kept when past the commit point: recovery completes it
             self._staging = None
@@ -341,84 +329,35 @@ class ResultWriter:
             ) from None
 
     def _close(self) -> None:
-        if self.is_hdf5 and self._handle is not None:
-            with _HDF5_LOCK:
-                self._handle.close()
-        self._handle = None
+        if self._store is not None:
+            self._store.close()
+        self._store = None
 
     def create(self, name: str, shape: tuple[int, ...], dtype: Any, chunk_rows: int) -> None:
         """Create an empty array to be filled by :meth:`write_rows`."""
         chunks = (max(1, min(chunk_rows, shape[0] or 1)), *shape[1:])
-        dims = self._dimensions(name, shape)
-        if self.is_hdf5:
-            with _HDF5_LOCK:
-                created = self._handle.create_dataset(name, shape=shape, dtype=dtype, chunks=chunks)
-                created.attrs.update(layout.array_attrs(name))
-        else:
-            self._handle.create_array(
-                name,
-                shape=shape,
-                dtype=dtype,
-                chunks=chunks,
-                dimension_names=dims,
-                attributes=layout.array_attrs(name),
-            )
+        self.store.create(name, shape, dtype, chunks, self._dimensions(name, shape))
 
     def write_rows(self, name: str, start: int, block: np.ndarray) -> None:
         """Write ``block`` into rows ``start .. start + len(block)`` of array ``name``."""
-        if self.is_hdf5:
-            with _HDF5_LOCK:
-                self._handle[name][start : start + block.shape[0]] = block
-        else:
-            self._handle[name][start : start + block.shape[0]] = block
+        self.store.write_rows(name, start, block)
         testhooks.reached("writer:rows")
 
     def read_rows(self, name: str, start: int, stop: int) -> np.ndarray:
         """Read back rows of an array written earlier in this store."""
-        if self.is_hdf5:
-            with _HDF5_LOCK:
-                return np.asarray(self._handle[name][start:stop])
-        return np.asarray(self._handle[name][start:stop])
+        return self.store.read_rows(name, start, stop)
 
     def put(self, name: str, array: np.ndarray) -> None:
         """Write a whole (small) array, with its dimension names and what it holds."""
         array = np.asarray(array)
-        dims = self._dimensions(name, array.shape)
-        if self.is_hdf5:
-            with _HDF5_LOCK:
-                created = self._handle.create_dataset(name, data=array)
-                created.attrs.update(layout.array_attrs(name))
-        else:
-            created = self._handle.create_array(
-                name,
-                shape=array.shape,
-                dtype=array.dtype,
-                dimension_names=dims,
-                attributes=layout.array_attrs(name),
-            )
-            created[...] = array
+        self.store.put(name, array, self._dimensions(name, array.shape))
 
     def put_labels(self, dimension: str, labels: Sequence[str]) -> None:
         """Write text labels along a dimension (a coordinate: the parameter names)."""
         self._dimensions(dimension, (len(labels),), (dimension,))
         self._labelled.add(dimension)
         values = np.array(list(labels), dtype=object)
-        attrs = {"long_name": f"parameter name along {dimension}"}
-        if self.is_hdf5:
-            with _HDF5_LOCK:
-                created = self._handle.create_dataset(
-                    dimension, data=values, dtype=h5py.string_dtype()
-                )
-                created.attrs.update(attrs)
-        else:
-            created = self._handle.create_array(
-                dimension,
-                shape=values.shape,
-                dtype=str,
-                dimension_names=[dimension],
-                attributes=attrs,
-            )
-            created[...] = values.astype(str)
+        self.store.put_labels(dimension, values, {"long_name": f"parameter name along {dimension}"})
 
     def _dimensions(
         self, name: str, shape: tuple[int, ...], dims: tuple[str, ...] | None = None
@@ -435,12 +374,7 @@ class ResultWriter:
 
     def set_attrs(self, attrs: dict[str, Any]) -> None:
         """Set store attributes: native JSON values in Zarr, JSON text for containers in HDF5."""
-        if self.is_hdf5:
-            clean = {key: _hdf5_attr(value) for key, value in attrs.items()}
-            with _HDF5_LOCK:
-                self._handle.attrs.update(clean)
-        else:
-            self._handle.attrs.update({key: layout.json_value(v) for key, v in attrs.items()})
+        self.store.set_attrs(attrs)
 
     def add_file(self, final: Path, text: str) -> None:
         """Stage a text file (a report, beside the store) to be committed with the store."""
@@ -461,12 +395,10 @@ class ResultWriter:
         """
         assert self._staging is not None, "the writer is not open"
         self.set_attrs({"rowfold_commit": self.commit_id})
-        if self.is_hdf5:
-            with _HDF5_LOCK:
-                layout.attach_scales(self._handle, self._sizes, self._arrays, self._labelled)
+        store = self.store
+        store.finish(self._sizes, self._arrays, self._labelled)
         self._close()
-        if not self.is_hdf5:
-            layout.consolidate(self._staging.part(self.path.name))
+        store.closed(self._staging.part(self.path.name))
         staging = self._staging
         try:
             staging.commit([self.path.name, *self._files])
