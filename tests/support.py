@@ -71,6 +71,32 @@ def write_job(
     return path
 
 
+def factor_in_memory(
+    A: Any,
+    b: Any = None,
+    method: str = "tsqr",
+    rows_per_block: int | None = None,
+    q: bool = False,
+    **options: Any,
+) -> tuple[dict[str, np.ndarray], dict[str, Any]]:
+    """Factor A (and solve for b) through the Python API, in memory, on Dask's threaded
+    scheduler: the staged input is a memory:// store (rowfold.api), nothing goes through
+    a job file. Returns the arrays by store name (``R``, ``Q`` when ``q``, ``x`` with b)
+    and the report, as :func:`read_store` and ``RunOutcome.report`` give them."""
+    import rowfold
+
+    keys: dict[str, Any] = {"method": method, "q": q, "scheduler": "threads", **options}
+    if rows_per_block is not None:
+        keys["rows_per_block"] = rows_per_block
+    result: Any = rowfold.qr(A, **keys) if b is None else rowfold.lstsq(A, b, **keys)
+    got = {"R": np.asarray(result.R)}
+    if result.Q is not None:
+        got["Q"] = np.asarray(result.Q.compute())
+    if b is not None:
+        got["x"] = np.asarray(result.x)
+    return got, dict(result.report)
+
+
 def lapack_r(A: np.ndarray) -> np.ndarray:
     """numpy/LAPACK R with its signs normalised to a non-negative real diagonal."""
     R = np.linalg.qr(A, mode="r")

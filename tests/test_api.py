@@ -409,3 +409,75 @@ def test_a_temporary_store_gets_its_json_report_but_no_html_page(
     fit = rowfold.lstsq(A, b, scratch=tmp_path, **IN_PROCESS)
     assert fit.residual_sd is not None
     assert seen == [(True, False)]
+
+
+def staged_stores(monkeypatch: pytest.MonkeyPatch) -> list[str]:
+    """Where each call's in-memory inputs are staged (recorded, then written as usual)."""
+    from rowfold.storage import arrays
+
+    seen: list[str] = []
+    original = arrays.stage_dense
+
+    def recording(store: object, given: dict[str, object]) -> None:
+        seen.append(str(store))
+        original(store, given)  # type: ignore[arg-type]
+
+    monkeypatch.setattr(arrays, "stage_dense", recording)
+    return seen
+
+
+@pytest.mark.parametrize("kind", ["numpy", "csr"])
+def test_in_process_workers_read_a_memory_store_that_is_removed_after(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch, kind: str
+) -> None:
+    """Threads of this process (the threaded scheduler, or the default embedded cluster of
+    threads) read the staged input from a memory:// store, gone after the call; nothing
+    is staged in the scratch folder."""
+    import fsspec
+
+    seen = staged_stores(monkeypatch)
+    A, b = problem()
+    given_A, given_b = as_kind(kind, A, b, tmp_path)
+    fits = [
+        rowfold.lstsq(given_A, given_b, scratch=tmp_path, **IN_PROCESS),
+        rowfold.lstsq(given_A, given_b, scratch=tmp_path, cluster={"workers": 1}),
+    ]
+    assert len(seen) == 2 and all(s.startswith("memory://") for s in seen)
+    assert len(set(seen)) == 2, "each call stages into a store of its own"
+    memory = fsspec.filesystem("memory")
+    assert not [s for s in seen if memory.exists(s.removeprefix("memory://"))]
+    assert not list(tmp_path.rglob("input.zarr")) and not list(tmp_path.glob("rowfold-*"))
+    for fit in fits:
+        assert_matches_lapack(fit, A, b)
+
+
+def test_worker_processes_read_the_staged_copy_on_disk(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    """Worker processes cannot see this process's memory: the input is staged on disk in
+    the scratch folder (and removed after), and the answer meets the same LAPACK bounds
+    as an in-memory staging does (tests/bounds.py: Wedin 1973; Higham 2002, Thm 20.1)."""
+    seen = staged_stores(monkeypatch)
+    A, b = problem()
+    cluster = {"processes": True, "workers": 1, "threads_per_worker": 1}
+    on_disk = rowfold.lstsq(A, b, scratch=tmp_path, cluster=cluster)
+    in_memory = rowfold.lstsq(A, b, scratch=tmp_path, **IN_PROCESS)
+    assert seen[0].startswith(str(tmp_path)) and seen[0].endswith("input.zarr")
+    assert seen[1].startswith("memory://")
+    assert not list(tmp_path.glob("rowfold-*")), "the temporary folder is removed"
+    for fit in (on_disk, in_memory):
+        assert_matches_lapack(fit, A, b)
+
+
+def test_a_large_input_is_staged_on_disk_even_for_threads(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    """Above api.MEMORY_STAGING_BYTES the copy goes to disk (it would double the caller's
+    memory); the limit lowered here so the test stays small."""
+    from rowfold import api
+
+    monkeypatch.setattr(api, "MEMORY_STAGING_BYTES", 1024)
+    seen = staged_stores(monkeypatch)
+    A, b = problem()
+    assert_matches_lapack(rowfold.lstsq(A, b, scratch=tmp_path, **IN_PROCESS), A, b)
+    assert seen and seen[0].startswith(str(tmp_path))

@@ -4,11 +4,15 @@ The job runner is the core; these functions are one more client of it, beside th
 ``lstsq`` and ``qr`` build a job document from their arguments and validate it with the
 job file's own parser (:func:`rowfold.spec.job_from_data`), so their options are the job
 file's keys with the same names, the same defaults and the same messages. An in-memory
-``A`` (numpy, dask, scipy.sparse or an xarray DataArray) is first written into a Zarr store
-in a temporary folder, row block by row block (a dask array by its own tasks, never whole),
-and read back from there by the runner like any input: that costs one extra write of A.
-The result store goes into the same folder and is removed when the result no longer needs
-it (at once, unless Q or row arrays are read lazily from it).
+``A`` (numpy, dask, scipy.sparse or an xarray DataArray) is first written into a Zarr store,
+row block by row block (a dask array by its own tasks, never whole), and read back from there
+by the runner like any input: that costs one extra write of A. When every worker is a thread
+of this process (no scheduler given, no active client, ``cluster.processes`` not true) and
+the staged arrays hold at most :data:`MEMORY_STAGING_BYTES`, that store is a unique
+``memory://`` store (fsspec's in-process file system), removed right after the run;
+otherwise it is ``input.zarr`` in a temporary folder. The result store goes into a
+temporary folder and is removed when the result no longer needs it (at once, unless Q or
+row arrays are read lazily from it).
 
 The work runs where a job runs (:func:`rowfold.cluster.open_engine`): the caller's active
 ``distributed.Client`` first, then Dask's ``scheduler-address``, else an embedded cluster.
@@ -46,6 +50,10 @@ __all__ = ["LstsqResult", "QRResult", "lstsq", "open_result", "qr", "run"]
 GIVEN_INPUT_KEYS = ("path", "matrix", "rhs", "weights")
 # Names of the staged arrays inside the temporary input store.
 STAGED = {"matrix": "A", "rhs": "b", "weights": "w"}
+# Largest staged input (bytes of A, b and weights as given) copied into a memory:// store
+# rather than onto disk: the copy doubles the memory the caller's arrays already take, so
+# beyond this the disk copy is kept (our choice; a dask array may not fit in memory at all).
+MEMORY_STAGING_BYTES = 256 * 2**20
 
 
 def _option_table() -> dict[str, str]:
@@ -366,15 +374,53 @@ def _factor(
     defaults: Mapping[str, Mapping[str, Any]],
 ) -> QRResult:
     """Stage the input, run the job in a temporary folder, read the result back."""
+    from rowfold.storage.arrays import memory_store, remove_memory_store
+
     source = _source(label, A, b, weights)
     folder = _temporary(label, scratch)
+    staged: str | None = None
     try:
         job = _job(label, source, method, options, defaults, Path(folder.name))
-        _check_reachable(label, job, source, scratch)
-        return _run_staged(job, source, folder)
+        if _stage_in_memory(job.cluster, source):
+            staged = memory_store()
+            job = _job(label, source, method, options, defaults, Path(folder.name), staged)
+        else:
+            _check_reachable(label, job, source, scratch)
+        return _run_staged(job, source, folder, staged)
     except BaseException:
         folder.cleanup()
         raise
+    finally:
+        if staged is not None:
+            remove_memory_store(staged)
+
+
+def _stage_in_memory(cluster: spec.ClusterSpec, source: _Source) -> bool:
+    """Whether the staged arrays go into a ``memory://`` store: every worker is a thread
+    of this process (Dask's threaded scheduler, or an embedded cluster of threads: no
+    address, scheduler file, active client or configured scheduler, ``cluster.processes``
+    not true) and they hold at most :data:`MEMORY_STAGING_BYTES`."""
+    if source.on_disk or _staged_bytes(source) > MEMORY_STAGING_BYTES:
+        return False
+    from rowfold.cluster import active_client, configured_address, remote_scheduler
+
+    if cluster.processes or remote_scheduler(cluster) is not None:
+        return False
+    if cluster.scheduler == "threads":
+        return True
+    given = cluster.address or cluster.scheduler_file
+    return not given and active_client() is None and configured_address() is None
+
+
+def _staged_bytes(source: _Source) -> int:
+    """Bytes of the arrays to stage (a sparse matrix: its stored values and indices)."""
+    total = 0
+    for array in source.arrays.values():
+        if _is_sparse(array):
+            total += int(array.data.nbytes + array.indices.nbytes + array.indptr.nbytes)
+        else:
+            total += int(np.prod(array.shape, dtype=np.int64)) * np.dtype(array.dtype).itemsize
+    return total
 
 
 def _temporary(label: str, scratch: str | Path | None) -> tempfile.TemporaryDirectory[str]:
@@ -391,12 +437,14 @@ def _job(
     options: Mapping[str, Any],
     defaults: Mapping[str, Mapping[str, Any]],
     folder: Path,
+    staged: str | None = None,
 ) -> spec.Job:
-    """The job document of one call, validated by the job file's parser."""
+    """The job document of one call, validated by the job file's parser (an in-memory
+    input staged at ``staged``, a ``memory://`` URL, or else in ``folder``)."""
     doc: dict[str, Any] = copy.deepcopy({key: dict(value) for key, value in defaults.items()})
     section = dict(source.section)
     if not source.on_disk:
-        section["path"] = str(folder / "input.zarr")
+        section["path"] = staged or str(folder / "input.zarr")
     if source.names is not None:
         section["parameter_names"] = list(source.names)
     doc["name"] = label
@@ -429,13 +477,18 @@ def _check_reachable(label: str, job: spec.Job, source: _Source, scratch: Any) -
         )
 
 
-def _run_staged(job: spec.Job, source: _Source, folder: tempfile.TemporaryDirectory[str]) -> Any:
-    """Write the staged arrays, run the job and read its result (the folder kept alive by
-    the lazy arrays that read from it, or removed now)."""
+def _run_staged(
+    job: spec.Job,
+    source: _Source,
+    folder: tempfile.TemporaryDirectory[str],
+    staged: str | None = None,
+) -> Any:
+    """Write the staged arrays (at ``staged``, or in the folder), run the job and read its
+    result (the folder kept alive by the lazy arrays that read from it, or removed now)."""
     from rowfold import runner
     from rowfold.storage import arrays as staging
 
-    store = Path(folder.name) / "input.zarr"
+    store: Path | str = staged or Path(folder.name) / "input.zarr"
     dense = dict(source.arrays)
     if source.sparse:
         staging.stage_csr(store, STAGED["matrix"], dense.pop("matrix"))

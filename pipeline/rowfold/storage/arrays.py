@@ -19,8 +19,9 @@ from typing import Any
 import h5py
 import numpy as np
 
-from rowfold.storage.csr import write_csr
+from rowfold.storage.csr import ENCODING, WRITE_CHUNK, write_csr
 from rowfold.storage.inputs import _HDF5_LOCK, HDF5_SUFFIXES, KEEP_EVERY_CHUNK
+from rowfold.storage.locations import is_url
 
 # Bytes per stored row block of a staged matrix (common practice: chunks of tens of MB
 # keep the per-chunk overhead small and several blocks fit in any worker's memory).
@@ -34,9 +35,9 @@ def staged_rows(shape: tuple[int, ...], itemsize: int) -> int:
     return int(min(max(shape[0], 1), rows))
 
 
-def stage_dense(store: Path, arrays: dict[str, Any]) -> None:
-    """Write numpy or dask arrays (name -> array) into the Zarr store ``store``, in row
-    blocks of :func:`staged_rows`.
+def stage_dense(store: Path | str, arrays: dict[str, Any]) -> None:
+    """Write numpy or dask arrays (name -> array) into the Zarr store ``store`` (a local
+    path or an fsspec URL such as ``memory://...``), in row blocks of :func:`staged_rows`.
 
     The dask arrays are rechunked to whole rows and stored by their own tasks, each task
     writing one block, in one graph: what they share (``b = A[:, 0] * 2``) is computed once.
@@ -69,9 +70,45 @@ def stage_dense(store: Path, arrays: dict[str, Any]) -> None:
         da.store(sources, targets, lock=False)
 
 
-def stage_csr(store: Path, name: str, matrix: Any) -> None:
-    """Write a scipy.sparse matrix as the CSR group ``name`` of the Zarr store ``store``."""
-    write_csr(store, name, matrix)
+def stage_csr(store: Path | str, name: str, matrix: Any) -> None:
+    """Write a scipy.sparse matrix as the CSR group ``name`` of the Zarr store ``store``
+    (a local path, or an fsspec URL: then written here in the layout ``write_csr`` uses)."""
+    if not is_url(str(store)):
+        write_csr(store, name, matrix)
+        return
+    import scipy.sparse as sp
+    import zarr
+
+    csr = sp.csr_array(matrix)
+    group = zarr.open_group(str(store), mode="a")
+    created = group.require_group(name)
+    created.attrs.update({"shape": [int(v) for v in csr.shape], **ENCODING})
+    for part in ("data", "indices", "indptr"):
+        values = np.asarray(getattr(csr, part))
+        target: Any = group.create_array(
+            f"{name}/{part}",
+            shape=values.shape,
+            dtype=values.dtype,
+            chunks=(WRITE_CHUNK,),
+            config=KEEP_EVERY_CHUNK,
+        )
+        target[...] = values
+
+
+def memory_store() -> str:
+    """A fresh, unique ``memory://`` URL for a staged store (fsspec's in-process file
+    system: readable by this process's threads only)."""
+    return f"memory://rowfold-staged-{uuid.uuid4().hex}/input.zarr"
+
+
+def remove_memory_store(url: str) -> None:
+    """Remove a staged ``memory://`` store and everything below it (nothing if absent)."""
+    import fsspec
+
+    fs, root = fsspec.core.url_to_fs(url)
+    top = root.rsplit("/", 1)[0] if "/" in root.strip("/") else root
+    if fs.exists(top):
+        fs.rm(top, recursive=True)
 
 
 def _is_dask(array: Any) -> bool:
