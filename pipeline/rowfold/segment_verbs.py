@@ -20,11 +20,17 @@ from rowfold.kernels.metrics import FirstPassSums, VerificationSums
 from rowfold.methods import tsqr
 from rowfold.methods.base import Engine, Factorization
 from rowfold.planning import input_paths, parameter_names, plan_job
-from rowfold.provenance import provenance
-from rowfold.report import CAUTION
 from rowfold.solve import solve, statistics
 from rowfold.spec import Job
-from rowfold.stages import Answer, Clock, ResultState, RunOutcome, commit, fingerprints
+from rowfold.stages import (
+    Answer,
+    Clock,
+    ResultState,
+    RunOutcome,
+    commit,
+    fingerprints,
+    run_record,
+)
 from rowfold.url_results import segments_on_url
 
 STALE_Q_TEXT = "not formed by update; run `rowfold run` to form Q again"
@@ -369,12 +375,7 @@ def _segments_report(
         "warnings": [*change.extra.get("warnings", []), *_update_warnings(job, change.verb)],
         "segments": coverage,
         "q_state": STALE_Q_TEXT,
-        "inputs": storage.public_record(change.inputs),
-        "provenance": {
-            **provenance(started, time.time()),
-            "scheduler": getattr(engine, "origin", None),
-        },
-        "caution": CAUTION,
+        **run_record(change.inputs, engine, started),
         **answer_entry(plan, answer.solution, answer.stats, answer.scale, answer.names),
     }
     if plan.fixed_columns:

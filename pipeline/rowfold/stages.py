@@ -303,6 +303,19 @@ class RunReportParts:
     passes: int
 
 
+def run_record(inputs: dict[str, Any], engine: Engine, started: float) -> dict[str, Any]:
+    """The report entries every verb adds: the inputs' records (digests left out), the
+    provenance with the engine that ran, and the caution."""
+    return {
+        "inputs": storage.public_record(inputs),
+        "provenance": {
+            **provenance(started, time.time()),
+            "scheduler": getattr(engine, "origin", None),
+        },
+        "caution": CAUTION,
+    }
+
+
 def run_report(
     job: Job,
     plan: BlockPlan,
@@ -326,12 +339,7 @@ def run_report(
     extra.update(answer_entry(plan, answer.solution, verified.stats, answer.scale, answer.names))
     step = {"verb": "run", "rows_read": [[0, plan.rows]], "rows_read_count": plan.rows}
     extra["segments"] = segments.coverage(state.segments, [], step, recomputed=True)
-    extra["inputs"] = storage.public_record(state.input_digests)
-    extra["provenance"] = {
-        **provenance(started, time.time()),
-        "scheduler": getattr(engine, "origin", None),
-    }
-    extra["caution"] = CAUTION
+    extra.update(run_record(state.input_digests, engine, started))
     return quality.assemble_report(
         job=job,
         plan=plan,
