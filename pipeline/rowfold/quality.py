@@ -714,10 +714,8 @@ def _run_header(job: Job, fact: Factorization, used: str) -> dict[str, Any]:
     }
 
 
-def _shape_entries(
-    plan: BlockPlan, passes: int, seconds: dict[str, float], peak_memory: int
-) -> dict[str, Any]:
-    """The problem's shape and blocks, the passes over the input, time and memory."""
+def plan_shape(plan: BlockPlan) -> dict[str, Any]:
+    """The problem's shape and row blocks, as the report and ``check`` give them."""
     return {
         "rows": plan.rows,
         "cols": plan.cols,
@@ -725,6 +723,15 @@ def _shape_entries(
         "dtype": plan.dtype,
         "blocks": plan.blocks,
         "rows_per_block": plan.per_block,
+    }
+
+
+def _shape_entries(
+    plan: BlockPlan, passes: int, seconds: dict[str, float], peak_memory: int
+) -> dict[str, Any]:
+    """The problem's shape and blocks, the passes over the input, time and memory."""
+    return {
+        **plan_shape(plan),
         "passes_over_input": passes,
         "seconds": {k: round(v, 4) for k, v in seconds.items()},
         "peak_memory_bytes": peak_memory,

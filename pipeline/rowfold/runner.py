@@ -32,6 +32,7 @@ from rowfold.planning import (
     validate_job,
     wants_q,
 )
+from rowfold.quality import plan_shape
 from rowfold.segment_verbs import NoNewRowsError, replace_job, retire_job, update_job
 from rowfold.spec import METHOD_NAMES, Job, load_job
 from rowfold.stages import (
@@ -217,12 +218,7 @@ def check_job(job: Job) -> dict[str, Any]:
     return {
         "job": job.name,
         "input": str(job.input.path),
-        "rows": plan.rows,
-        "cols": plan.cols,
-        "rhs_cols": plan.rhs_cols,
-        "dtype": plan.dtype,
-        "blocks": plan.blocks,
-        "rows_per_block": plan.per_block,
+        **plan_shape(plan),
         "method": job.method.name,
         "output": str(job.output.path),
         "warnings": block_warnings(plan),
